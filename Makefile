@@ -1,0 +1,39 @@
+# rim-invert: `make demo` runs the main job on the bundled demo data, `make test` runs the tests.
+# Each target creates .venv with a Python >= 3.12 and installs what it needs first.
+SHELL := /bin/bash
+VENV := .venv
+STAMP := $(VENV)/.installed
+
+# Find a Python >= 3.12 that really runs: python3.13 / python3.12 on PATH, then pyenv's versions,
+# then plain python3. A pyenv shim that is on PATH but fails is skipped because we run it.
+PYTHON ?= $(shell for c in python3.13 python3.12 \
+	$$(ls -d $$(pyenv root 2>/dev/null)/versions/3.1[2-9]*/bin/python3 2>/dev/null | sort -rV) python3; do \
+	  if command -v $$c >/dev/null 2>&1 && $$c -c 'import sys; sys.exit(0 if sys.version_info >= (3, 12) else 1)' >/dev/null 2>&1; then \
+	    echo $$c; break; fi; done)
+
+.PHONY: demo test test-all bench clean venv
+
+venv: $(STAMP)
+
+$(STAMP): pyproject.toml
+	@if [ -z "$(PYTHON)" ]; then \
+	  echo "rim-invert needs Python >= 3.12 and none was found (tried python3.13, python3.12, pyenv versions, python3). Install one, or run: make PYTHON=/path/to/python3.12"; \
+	  exit 1; fi
+	@echo "Using $(PYTHON) ($$($(PYTHON) --version))"
+	$(PYTHON) -m venv $(VENV)
+	$(VENV)/bin/python -m pip install --quiet --upgrade pip
+	$(VENV)/bin/python -m pip install --quiet -e '.[test]'
+	@touch $(STAMP)
+
+demo: $(STAMP)
+	$(VENV)/bin/rim-invert demo --out demo-output
+
+test: $(STAMP)
+	$(VENV)/bin/python -m pytest -q -m "not slow" tests
+	$(VENV)/bin/python -m pytest -q -m "slow" tests
+
+bench: $(STAMP)
+	for b in bench/bench_*.py; do $(VENV)/bin/python $$b || exit 1; done
+
+clean:
+	rm -rf $(VENV) demo-output .pytest_cache build *.egg-info
