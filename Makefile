@@ -29,8 +29,7 @@ demo: $(STAMP)
 	$(VENV)/bin/rim-invert demo --out demo-output
 
 test: $(STAMP)
-	$(VENV)/bin/python -m pytest -q -m "not slow" tests
-	$(VENV)/bin/python -m pytest -q -m "slow" tests
+	$(VENV)/bin/python -m pytest -q tests
 
 bench: $(STAMP)
 	for b in bench/bench_*.py; do $(VENV)/bin/python $$b || exit 1; done

@@ -1,0 +1,38 @@
+"""rim-invert: the harmonic field in a disk from rim and interior sensor readings.
+
+Cite the methods you use (see the ``References`` section of each stage) and this package as
+"rim-invert, version 0.1".
+"""
+
+from ._validation import InputError
+from .domain import Disk, DomainError, arc_harmonic_measure, poisson_kernel
+from .prior import SmoothnessPrior, truncation_degree
+from .problem import Estimate, LinearProblem, PointSummary
+from .readings import Readings, load_layout, load_points, load_readings
+from .stages import RULES, FitWarning, Tikhonov, tikhonov
+from .workflow import fit, make_domain
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "Disk",
+    "DomainError",
+    "Estimate",
+    "FitWarning",
+    "InputError",
+    "LinearProblem",
+    "PointSummary",
+    "RULES",
+    "Readings",
+    "SmoothnessPrior",
+    "Tikhonov",
+    "arc_harmonic_measure",
+    "fit",
+    "load_layout",
+    "load_points",
+    "load_readings",
+    "make_domain",
+    "poisson_kernel",
+    "tikhonov",
+    "truncation_degree",
+]

@@ -1,0 +1,120 @@
+"""Writing a fit's files: summary.json, boundary.csv, query.csv, field.csv and figures.
+
+Everything is written into a staging folder beside the output folder and moved into place only
+when all files are complete, so an error never leaves a half-written set that looks finished.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import tempfile
+from contextlib import contextmanager
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["staged_output", "summary_dict", "write_fit_outputs", "CAUTIONS", "to_jsonable"]
+
+CAUTIONS = (
+    "The model assumes a steady, source-free, homogeneous and isotropic field in the region "
+    "(the field is harmonic); heat sources, transients or material changes inside break it.",
+    "Estimates are no substitute for certified instrumentation.",
+    "Where safety is at stake, defer to local codes and licensed practice before acting on an "
+    "estimate.",
+)
+
+
+@contextmanager
+def staged_output(out_dir):
+    """Yield a staging folder; on success move its files into ``out_dir``.
+
+    On an exception the staging folder is removed and ``out_dir`` is left as it was.
+    """
+    out = Path(out_dir)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    stage = Path(tempfile.mkdtemp(prefix=f".{out.name}.staging-", dir=out.parent))
+    try:
+        yield stage
+        out.mkdir(parents=True, exist_ok=True)
+        for f in sorted(stage.iterdir()):
+            os.replace(f, out / f.name)
+    finally:
+        shutil.rmtree(stage, ignore_errors=True)
+
+
+def to_jsonable(obj):
+    """Convert numpy scalars/arrays and non-finite floats to JSON-safe values."""
+    if isinstance(obj, dict) or hasattr(obj, "items"):
+        return {str(k): to_jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [to_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return to_jsonable(obj.tolist())
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        v = float(obj)
+        return v if math.isfinite(v) else None
+    if isinstance(obj, (np.bool_,)):
+        return bool(obj)
+    return obj
+
+
+def summary_dict(estimate, problem, readings, *, level, extra=None):
+    """The content of summary.json for a fit."""
+    d = {
+        "method": estimate.method,
+        "level": level,
+        **dict(estimate.info),
+        "domain": problem.domain.describe(),
+        "readings": {
+            "source": readings.source,
+            "n_sensors": int(len(readings.value)),
+            "n_used": int(problem.n_readings),
+            "n_gaps": int(readings.n_gaps),
+            "gap_sensors": [str(s) for s in problem.gap_sensor],
+            "sigma": "given per reading" if readings.sigma is not None else "not given",
+        },
+        "warnings": list(estimate.warnings),
+        "cautions": list(CAUTIONS),
+    }
+    if extra:
+        d.update(extra)
+    return to_jsonable(d)
+
+
+def _write_csv(frame, path):
+    frame.to_csv(path, index=False, float_format="%.10g")
+
+
+def write_fit_outputs(stage_dir, estimate, problem, readings, *, level=0.9, query=None,
+                      grid=81, summary_extra=None):
+    """Write summary.json, boundary.csv, field.csv and (with ``query``) query.csv.
+
+    Parameters
+    ----------
+    stage_dir : Path
+        Folder to write into (normally from :func:`staged_output`).
+    query : tuple (points, labels), optional
+    grid : int, default=81
+        Interior grid is ``grid`` x ``grid`` over the bounding square, points inside only.
+    """
+    stage_dir = Path(stage_dir)
+    _write_csv(estimate.boundary(360, level), stage_dir / "boundary.csv")
+    if query is not None:
+        pts, labels = query
+        s = estimate.at(pts, level)
+        cols = {"label": labels, "x": pts[:, 0], "y": pts[:, 1]}
+        if pts.shape[1] == 3:
+            cols["z"] = pts[:, 2]
+        _write_csv(s.to_frame(**cols), stage_dir / "query.csv")
+    pts, cols = estimate.domain.field_grid(grid)
+    s = estimate.at(pts, level)
+    _write_csv(s.to_frame(**cols), stage_dir / "field.csv")
+    summary = summary_dict(estimate, problem, readings, level=level, extra=summary_extra)
+    with open(stage_dir / "summary.json", "w") as fh:
+        json.dump(summary, fh, indent=2)
+    return summary

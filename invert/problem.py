@@ -1,0 +1,300 @@
+r"""The linear problem every stage solves, and the one result type every stage returns.
+
+Notes
+-----
+Readings are linear in the coefficient vector :math:`c`: :math:`y = G c + \varepsilon`,
+:math:`\varepsilon \sim N(0, \operatorname{diag}(\sigma_i^2))`. A stage sees only ``G``, ``y``,
+``sigma`` and the per-column degrees and rim eigenvalues; it never knows the shape of the
+region. The domain object is carried along, untouched, so that an :class:`Estimate` can answer
+at any point.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from types import MappingProxyType
+
+import numpy as np
+from scipy import linalg, stats
+
+from ._validation import check_level
+
+__all__ = ["LinearProblem", "Estimate", "PointSummary"]
+
+
+@dataclass(frozen=True)
+class LinearProblem:
+    """Readings written as ``y = G c + noise``.
+
+    Parameters
+    ----------
+    G : ndarray of shape (n_readings, n_coef)
+        Design matrix of the observed readings.
+    y : ndarray of shape (n_readings,)
+        Observed values (gaps removed).
+    sigma : ndarray of shape (n_readings,) or None
+        Noise sd per reading; None means one common, unknown level to be estimated (the
+        stages then work with unit weights and scale by the estimate).
+    degrees : ndarray of int, shape (n_coef,)
+        Degree of each column.
+    eigenvalues : ndarray of shape (n_coef,)
+        Rim Laplacian eigenvalue of each column's degree (for the smoothness prior).
+    domain : object
+        Carried to the estimate; used only to evaluate results at points.
+    sensor : ndarray of str, shape (n_readings,)
+    points : ndarray of shape (n_readings, dim)
+    gap_sensor, gap_points : ndarray
+        Sensors that gave no reading, kept on record for diagnostics.
+    notes : tuple of str
+        Facts about how the problem was built (e.g. points snapped onto the rim).
+    """
+
+    G: np.ndarray
+    y: np.ndarray
+    sigma: np.ndarray | None
+    degrees: np.ndarray
+    eigenvalues: np.ndarray
+    domain: object = None
+    sensor: np.ndarray = None
+    points: np.ndarray = None
+    gap_sensor: np.ndarray = field(default_factory=lambda: np.array([], dtype=str))
+    gap_points: np.ndarray = None
+    notes: tuple = ()
+
+    def __post_init__(self):
+        G = np.asarray(self.G, dtype=float)
+        y = np.asarray(self.y, dtype=float)
+        if G.ndim != 2 or y.shape != (G.shape[0],):
+            raise ValueError(f"G and y do not match: G has shape {G.shape}, y has shape {y.shape}.")
+        if self.sigma is not None:
+            s = np.asarray(self.sigma, dtype=float)
+            if s.shape != y.shape or not np.all(s > 0):
+                raise ValueError("sigma must be positive with one entry per reading.")
+            object.__setattr__(self, "sigma", s)
+        object.__setattr__(self, "G", G)
+        object.__setattr__(self, "y", y)
+        if self.sensor is None:
+            object.__setattr__(self, "sensor", np.array([f"r{i}" for i in range(y.size)]))
+
+    @property
+    def n_readings(self) -> int:
+        """Number of observed readings ``m``."""
+        return self.G.shape[0]
+
+    @property
+    def n_coef(self) -> int:
+        """Number of coefficients ``p``."""
+        return self.G.shape[1]
+
+    @property
+    def weights(self) -> np.ndarray:
+        """``1/sigma`` per reading (ones when the noise level is unknown)."""
+        return np.ones(self.n_readings) if self.sigma is None else 1.0 / self.sigma
+
+    @classmethod
+    def from_readings(cls, readings, domain):
+        """Build the problem from a :class:`~invert.readings.Readings` snapshot.
+
+        Gaps are dropped from ``G`` and ``y`` but kept in ``gap_sensor``/``gap_points``.
+        """
+        n_snapped = readings.check_domain(domain)
+        obs = readings.observed
+        G = domain.design(readings.points[obs])
+        notes = []
+        if n_snapped:
+            notes.append(f"{n_snapped} sensor position(s) lay just outside the rim (within the "
+                         f"relative tolerance) and were taken to be on the rim")
+        return cls(
+            G=G,
+            y=readings.value[obs],
+            sigma=None if readings.sigma is None else readings.sigma[obs],
+            degrees=domain.degrees,
+            eigenvalues=domain.eigenvalues,
+            domain=domain,
+            sensor=readings.sensor[obs],
+            points=readings.points[obs],
+            gap_sensor=readings.sensor[~obs],
+            gap_points=readings.points[~obs],
+            notes=tuple(notes),
+        )
+
+    def subset(self, keep):
+        """The same problem restricted to the readings in ``keep`` (mask or indices)."""
+        keep = np.asarray(keep)
+        return LinearProblem(
+            self.G[keep], self.y[keep], None if self.sigma is None else self.sigma[keep],
+            self.degrees, self.eigenvalues, self.domain, self.sensor[keep],
+            None if self.points is None else self.points[keep], self.gap_sensor,
+            self.gap_points, self.notes,
+        )
+
+
+@dataclass(frozen=True)
+class PointSummary:
+    """Posterior summary at points: mean, sd and central interval at ``level``."""
+
+    mean: np.ndarray
+    sd: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    level: float
+
+    def to_frame(self, **columns):
+        """A pandas DataFrame with the given leading columns then mean, sd, lower, upper."""
+        import pandas as pd
+
+        data = dict(columns)
+        data.update(mean=self.mean, sd=self.sd, lower=self.lower, upper=self.upper)
+        return pd.DataFrame(data)
+
+
+@dataclass(frozen=True, eq=False)
+class Estimate:
+    r"""Result of any stage: the coefficient posterior (Gaussian or draws) and its metadata.
+
+    Parameters
+    ----------
+    mean : ndarray of shape (n_coef,)
+        Posterior mean (or point estimate) of the coefficients.
+    cov : ndarray of shape (n_coef, n_coef) or None
+        Posterior covariance, for Gaussian results.
+    draws : ndarray of shape (n_draws, n_coef) or None
+        Posterior draws, for sampled results; summaries then use the draws.
+    domain : object
+        Evaluates the field at points (``design``, ``field``).
+    method : str
+        The stage that produced the estimate.
+    noise_sd : float or None
+        Noise sd used or estimated for a new reading (adds to predictive intervals).
+    df : float or None
+        Degrees of freedom of a Student-t posterior (``cov`` is then its scale matrix and
+        intervals use t quantiles); None for a Gaussian posterior.
+    info : mapping
+        Chosen parameters and fit statistics, as written to ``summary.json``.
+    warnings : tuple of str
+        Everything the user should know about this fit.
+
+    Notes
+    -----
+    For a Gaussian result the field at points with design :math:`H` has mean :math:`H\bar c`
+    and covariance :math:`H \Sigma H^\top`; the central interval at level :math:`\ell` is
+    :math:`\bar u \pm z_{(1+\ell)/2}\,\mathrm{sd}`; with ``df`` set, the scale is
+    :math:`\sqrt{h^\top\Sigma h}` and :math:`z` is the Student-t quantile. For draws, the interval is the pair of
+    empirical quantiles :math:`(1\mp\ell)/2`.
+    """
+
+    mean: np.ndarray
+    cov: np.ndarray | None = None
+    draws: np.ndarray | None = None
+    domain: object = None
+    method: str = ""
+    noise_sd: float | None = None
+    df: float | None = None
+    info: dict = field(default_factory=dict)
+    warnings: tuple = ()
+
+    def __post_init__(self):
+        object.__setattr__(self, "mean", np.asarray(self.mean, dtype=float))
+        object.__setattr__(self, "info", MappingProxyType(dict(self.info)))
+        object.__setattr__(self, "warnings", tuple(self.warnings))
+        if self.cov is None and self.draws is None:
+            raise ValueError("An Estimate needs either cov or draws.")
+        root = None
+        if self.cov is not None:
+            cov = 0.5 * (self.cov + self.cov.T)
+            w, V = linalg.eigh(cov)
+            root = V * np.sqrt(np.clip(w, 0, None))  # cov = root @ root.T
+            object.__setattr__(self, "cov", cov)
+        object.__setattr__(self, "_root", root)
+
+    # --- coefficient level -----------------------------------------------------------------
+    @property
+    def sd_coef(self) -> np.ndarray:
+        """Posterior sd of each coefficient."""
+        if self.draws is not None:
+            return self.draws.std(axis=0, ddof=1)
+        return np.sqrt(np.clip(np.diag(self.cov), 0, None) * self._var_factor)
+
+    @property
+    def _var_factor(self) -> float:
+        # Variance of a Student-t is scale^2 * df / (df - 2).
+        if self.df is None:
+            return 1.0
+        return self.df / (self.df - 2) if self.df > 2 else np.inf
+
+    def sample(self, n_draws, rng=None) -> np.ndarray:
+        """Coefficient draws, shape (n_draws, n_coef): resampled draws or Gaussian draws."""
+        rng = np.random.default_rng(rng)
+        if self.draws is not None:
+            return self.draws[rng.integers(0, len(self.draws), n_draws)]
+        z = rng.standard_normal((n_draws, self._root.shape[1]))
+        if self.df is not None:
+            z = z * np.sqrt(self.df / rng.chisquare(self.df, (n_draws, 1)))
+        return self.mean + z @ self._root.T
+
+    # --- field level -----------------------------------------------------------------------
+    def values(self, points) -> np.ndarray:
+        """Posterior mean of the field at ``points``."""
+        if self.draws is not None:
+            return self.domain.field(self.draws.mean(axis=0), points)
+        return self.domain.field(self.mean, points)
+
+    def at(self, points, level=0.9, *, predictive=False, block=8192) -> PointSummary:
+        """Mean, sd and central ``level`` interval of the field at ``points``.
+
+        Parameters
+        ----------
+        points : array_like of shape (n_points, dim)
+        level : float, default=0.9
+            Probability of the central interval.
+        predictive : bool, default=False
+            Include the noise of a new reading (``noise_sd``) in sd and interval.
+        block : int, default=8192
+            Points evaluated per block (bounds memory on large grids).
+        """
+        level = check_level(level, where="Estimate.at")
+        points = np.asarray(points, dtype=float)
+        n = len(points)
+        mean, sd = np.empty(n), np.empty(n)
+        lower, upper = np.empty(n), np.empty(n)
+        q = [(1 - level) / 2, (1 + level) / 2]
+        noise = float(self.noise_sd or 0.0) if predictive else 0.0
+        for start in range(0, n, block):
+            sl = slice(start, start + block)
+            H = self.domain.design(points[sl])
+            if self.draws is not None:
+                U = self.draws @ H.T
+                if noise:
+                    rng = np.random.default_rng(start)
+                    U = U + noise * rng.standard_normal(U.shape)
+                mean[sl] = U.mean(axis=0)
+                sd[sl] = U.std(axis=0, ddof=1)
+                lo, hi = np.quantile(U, q, axis=0)
+                lower[sl], upper[sl] = lo, hi
+            else:
+                m = H @ self.mean
+                scale = np.sqrt(np.sum((H @ self._root) ** 2, axis=1) + noise**2)
+                if self.df is None:
+                    z = stats.norm.ppf(q[1])
+                else:
+                    z = stats.t.ppf(q[1], self.df)
+                mean[sl], sd[sl] = m, scale * np.sqrt(self._var_factor)
+                lower[sl], upper[sl] = m - z * scale, m + z * scale
+        return PointSummary(mean, sd, lower, upper, level)
+
+    def cov_at(self, points) -> np.ndarray:
+        """Posterior covariance of the field between ``points``."""
+        H = self.domain.design(points)
+        if self.draws is not None:
+            return np.atleast_2d(np.cov(self.draws @ H.T, rowvar=False))
+        A = H @ self._root
+        return A @ A.T * self._var_factor
+
+    def boundary(self, n=360, level=0.9):
+        """Rim profile on the domain's rim grid as a pandas DataFrame.
+
+        Columns are the domain's grid columns (``theta_deg`` for a disk) followed by ``mean``,
+        ``sd``, ``lower`` and ``upper``.
+        """
+        pts, cols = self.domain.rim_grid(n)
+        return self.at(pts, level).to_frame(**cols)

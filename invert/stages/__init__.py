@@ -1,0 +1,6 @@
+"""Inference stages. Each takes a :class:`~invert.problem.LinearProblem` and returns an
+:class:`~invert.problem.Estimate`; none knows the shape of the region."""
+
+from .tikhonov import RULES, FitWarning, Tikhonov, tikhonov
+
+__all__ = ["Tikhonov", "tikhonov", "RULES", "FitWarning"]

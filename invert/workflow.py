@@ -1,0 +1,102 @@
+"""One-call fitting for notebooks and the command line.
+
+``fit`` turns readings (a DataFrame, a CSV path or a :class:`~invert.readings.Readings`) into an
+:class:`~invert.problem.Estimate`: it builds the domain with a truncation degree chosen from the
+prior, the linear problem, and runs the chosen stage.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from .domain import Disk
+from .prior import truncation_degree
+from .problem import LinearProblem
+from .readings import Readings, load_readings
+
+__all__ = ["fit", "make_domain", "as_readings", "run_stage", "METHODS"]
+
+METHODS = ("tikhonov",)
+
+
+def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
+    """A domain whose truncation degree leaves a negligible share of prior variance out.
+
+    Parameters
+    ----------
+    radius : float
+    center : sequence of float, optional
+    kind : {"disk"}
+    s : float, default=2.0
+        Smoothness order used to choose the truncation (see :func:`~invert.prior.truncation_degree`).
+    n_modes : int, optional
+        Force the truncation degree.
+    """
+    if kind != "disk":
+        raise ValueError(f"The 'kind' parameter must be 'disk'. Got {kind!r} instead.")
+    center = (0.0, 0.0) if center is None else tuple(center)
+    probe = Disk(radius, center, 0)
+    N = n_modes if n_modes is not None else truncation_degree(probe, s)
+    return Disk(radius, center, N)
+
+
+def as_readings(data, *, dim=2) -> Readings:
+    """Readings from a DataFrame, a CSV path, or a Readings object."""
+    if isinstance(data, Readings):
+        return data
+    if isinstance(data, (str, Path)):
+        return load_readings(data, dim=dim)
+    return Readings.from_frame(data, dim=dim)
+
+
+def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence", s=2.0,
+        n_modes=None, **options):
+    """Fit readings and return an :class:`~invert.problem.Estimate`.
+
+    Parameters
+    ----------
+    readings : pandas.DataFrame, str, Path or Readings
+        Columns ``x, y, value`` and optional ``sigma, sensor`` (a blank value is a gap).
+    radius : float, default=1.0
+    center : (float, float), optional
+    method : {"tikhonov"}, default="tikhonov"
+    rule : str, default="evidence"
+        Parameter-choice rule for the Tikhonov stage.
+    s : float, default=2.0
+        Smoothness order of the prior.
+    n_modes : int, optional
+        Truncation degree; chosen from ``s`` when omitted.
+    **options
+        Passed to the stage.
+
+    Examples
+    --------
+    >>> import numpy as np, pandas as pd
+    >>> th = np.linspace(0, 2 * np.pi, 16, endpoint=False)
+    >>> df = pd.DataFrame({"x": np.cos(th), "y": np.sin(th), "value": 20 + np.cos(th),
+    ...                    "sigma": 0.05})
+    >>> est = fit(df, radius=1.0)
+    >>> round(float(est.at([[0.0, 0.0]]).mean[0]), 1)
+    20.0
+    """
+    if method not in METHODS:
+        raise ValueError(f"The 'method' parameter of fit must be one of {METHODS}. "
+                         f"Got {method!r} instead.")
+    r = as_readings(readings)
+    domain = make_domain(radius, center, s=s, n_modes=n_modes)
+    problem = LinearProblem.from_readings(r, domain)
+    if method == "tikhonov":
+        options = {"rule": rule, **options}
+    return run_stage(problem, method, s=s, **options)
+
+
+def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
+    """Run the named stage on a problem and return its Estimate.
+
+    This is the one place that maps method names to stage classes; new stages register here.
+    """
+    if method == "tikhonov":
+        from .stages import Tikhonov
+
+        return Tikhonov(s=s, **options).fit(problem)
+    raise ValueError(f"The 'method' parameter must be one of {METHODS}. Got {method!r} instead.")
