@@ -114,6 +114,10 @@ def write_fit_outputs(stage_dir, estimate, problem, readings, *, level=0.9, quer
     pts, cols = estimate.domain.field_grid(grid)
     s = estimate.at(pts, level)
     _write_csv(s.to_frame(**cols), stage_dir / "field.csv")
+    if estimate.extras.get("sensor_table") is not None:
+        _write_csv(estimate.extras["sensor_table"], stage_dir / "sensors.csv")
+    if estimate.extras.get("posterior") is not None:
+        estimate.extras["posterior"].to_netcdf(stage_dir / "posterior.nc", engine="h5netcdf")
     summary = summary_dict(estimate, problem, readings, level=level, extra=summary_extra)
     with open(stage_dir / "summary.json", "w") as fh:
         json.dump(summary, fh, indent=2)

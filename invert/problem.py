@@ -173,6 +173,11 @@ class Estimate:
         Chosen parameters and fit statistics, as written to ``summary.json``.
     warnings : tuple of str
         Everything the user should know about this fit.
+    extras : mapping
+        Stage-specific artefacts written beside the standard files when present:
+        ``"posterior"`` (an arviz/xarray DataTree, written as ``posterior.nc``) and
+        ``"sensor_table"`` (a pandas DataFrame with one row per sensor, written as
+        ``sensors.csv``).
 
     Notes
     -----
@@ -192,6 +197,7 @@ class Estimate:
     df: float | None = None
     info: dict = field(default_factory=dict)
     warnings: tuple = ()
+    extras: dict = field(default_factory=dict)
 
     def __post_init__(self):
         object.__setattr__(self, "mean", np.asarray(self.mean, dtype=float))
