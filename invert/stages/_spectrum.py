@@ -15,7 +15,8 @@ take the thin SVD :math:`\tilde A = U \operatorname{diag}(s_i) V^\top`, :math:`\
 
 The equivalent Gaussian posterior of :math:`\tilde x` (noise variance 1 after whitening, prior
 variance :math:`1/\alpha`) has covariance
-:math:`I/\alpha - V \operatorname{diag}(s_i^2/(\alpha(s_i^2+\alpha)))V^\top`.
+:math:`V \operatorname{diag}(1/(s_i^2+\alpha)) V^\top + V_0 V_0^\top/\alpha`, with
+:math:`V_0` spanning the null space of :math:`\tilde A`.
 
 References
 ----------
@@ -44,9 +45,13 @@ class Spectrum:
         self.m = problem.n_readings
         A = (w[:, None] * problem.G) * self.d[None, :]
         yt = w * problem.y
-        U, s, Vt = linalg.svd(A, full_matrices=False, lapack_driver="gesdd")
-        keep = s > s[0] * 1e-13 if s.size else s.astype(bool)
-        self.U, self.s, self.Vt = U[:, keep], s[keep], Vt[keep]
+        U, s, Vt = linalg.svd(A, full_matrices=True, lapack_driver="gesdd")
+        k = int(np.sum(s > s[0] * 1e-13)) if s.size else 0
+        self.U, self.s, self.Vt = U[:, :k], s[:k], Vt[:k]
+        # Rows k: of the full V^T span the null space of A~ (prior-only directions). Keeping
+        # them lets the covariance be formed as a sum of positive terms, without the
+        # cancellation of I/alpha - (...) that loses digits on the broad mean level.
+        self.Vt_null = Vt[k:]
         self.beta = self.U.T @ yt
         # Residual outside the range of U, formed directly (never as ||y||^2 - ||beta||^2).
         self.r_perp2 = float(np.sum((yt - self.U @ self.beta) ** 2))
@@ -91,11 +96,15 @@ class Spectrum:
     def cov(self, alpha, noise_var=1.0):
         """Posterior covariance of ``c`` for one alpha, in units where the given sigmas (or
         the common noise level) are scaled by ``noise_var``."""
+        B, h = self.cov_factor(alpha)
+        return noise_var * ((B * h) @ B.T)
+
+    def cov_factor(self, alpha):
+        """``(B, h)`` with posterior covariance ``B diag(h) B^T`` (noise variance 1)."""
         alpha = float(alpha)
-        s2 = self.s**2
-        p = self.d.size
-        C = np.eye(p) / alpha - (self.Vt.T * (s2 / (alpha * (s2 + alpha)))) @ self.Vt
-        return noise_var * (self.d[:, None] * C * self.d[None, :])
+        Vt = np.vstack([self.Vt, self.Vt_null])
+        h = np.concatenate([1.0 / (self.s**2 + alpha), np.full(len(self.Vt_null), 1.0 / alpha)])
+        return self.d[:, None] * Vt.T, h
 
     def quad_and_logdet(self, alpha):
         r"""``y~^T C^{-1} y~`` and ``log|C|`` for :math:`C = \tilde A\tilde A^\top/\alpha + I`."""
@@ -129,5 +138,7 @@ class Spectrum:
         # range when it stands far above the rest.
         core = s[1:] if s.size > 1 and s[0] > 30 * s[1] else s
         hi = core.max() ** 2 * 1e2
-        lo = max(core.min() ** 2 * 1e-2, hi * 1e-14)
+        # At least 14 decades below the top, so that nearly exact data (tiny sigma) still find
+        # their optimum inside the range; at most 24 (double precision).
+        lo = max(min(core.min() ** 2 * 1e-2, hi * 1e-14), hi * 1e-24)
         return np.logspace(np.log10(lo), np.log10(hi), n)
