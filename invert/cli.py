@@ -108,7 +108,7 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
     from .readings import load_points, load_readings
 
     level = check_level(level)
-    readings = load_readings(readings_path)
+    readings = load_readings(readings_path, center=center)
     domain = workflow.make_domain(radius, center, s=smoothness, n_modes=n_modes)
     problem = LinearProblem.from_readings(readings, domain)
     q = None

@@ -73,11 +73,11 @@ class Readings:
         return n_snapped
 
     @classmethod
-    def from_frame(cls, frame, *, source="<DataFrame>", dim=2):
+    def from_frame(cls, frame, *, source="<DataFrame>", dim=2, center=None):
         """Build readings from a pandas DataFrame with the READINGS.csv columns."""
         header = [str(c).strip().lower() for c in frame.columns]
         rows = [["" if _isblank(v) else str(v) for v in rec] for rec in frame.itertuples(False)]
-        return _from_cells(header, rows, np.arange(2, len(rows) + 2), source, dim)
+        return _from_cells(header, rows, np.arange(2, len(rows) + 2), source, dim, center)
 
 
 def _isblank(v):
@@ -87,12 +87,13 @@ def _isblank(v):
         return False
 
 
-def load_readings(path, *, dim=2) -> Readings:
+def load_readings(path, *, dim=2, center=None) -> Readings:
     """Load READINGS.csv.
 
     Columns: ``x,y`` (and ``z`` when ``dim=3``) or ``r,theta_deg`` (disk only), ``value``;
     optional ``sigma`` and ``sensor``. A blank ``value`` is a gap. Lines starting with ``#`` are
-    comments.
+    comments. ``r,theta_deg`` are relative to ``center`` (default the origin); ``x,y`` are in
+    the frame in which ``center`` is given.
 
     Raises
     ------
@@ -102,7 +103,7 @@ def load_readings(path, *, dim=2) -> Readings:
     """
     source = Path(path).name
     header, rows, numbers = read_table(path, source=source)
-    return _from_cells(header, rows, numbers, source, dim)
+    return _from_cells(header, rows, numbers, source, dim, center)
 
 
 def _column(header, rows, numbers, source, name, *, allow_blank=False):
@@ -112,7 +113,7 @@ def _column(header, rows, numbers, source, name, *, allow_blank=False):
     )
 
 
-def _positions(header, rows, numbers, source, dim):
+def _positions(header, rows, numbers, source, dim, center=None):
     axes = ["x", "y", "z"][:dim]
     if all(a in header for a in axes):
         return np.column_stack([_column(header, rows, numbers, source, a) for a in axes])
@@ -123,17 +124,18 @@ def _positions(header, rows, numbers, source, dim):
         if bad.size:
             raise InputError(source, f"must be >= 0, got {r[bad[0]]:g}", row=int(numbers[bad[0]]),
                              column="r")
-        return np.column_stack([r * np.cos(t), r * np.sin(t)])
+        c = (0.0, 0.0) if center is None else center
+        return np.column_stack([c[0] + r * np.cos(t), c[1] + r * np.sin(t)])
     missing = [a for a in axes if a not in header]
     alt = " (or r,theta_deg)" if dim == 2 else ""
     raise InputError(source, f"missing required column(s) {', '.join(missing)}{alt}; "
                      f"found {', '.join(header) or 'none'}")
 
 
-def _from_cells(header, rows, numbers, source, dim):
+def _from_cells(header, rows, numbers, source, dim, center=None):
     if not rows:
         raise InputError(source, "has a header but no rows")
-    points = _positions(header, rows, numbers, source, dim)
+    points = _positions(header, rows, numbers, source, dim, center)
     if "value" not in header:
         raise InputError(source, f"missing required column 'value'; found {', '.join(header)}")
     value = _column(header, rows, numbers, source, "value", allow_blank=True)
