@@ -5,6 +5,7 @@ Cite the methods you use (see the ``References`` section of each stage) and this
 """
 
 from ._validation import InputError
+from .ball import Ball, ball_poisson_kernel, poisson_kernel_nd, real_sph_harm
 from .domain import Disk, DomainError, arc_harmonic_measure, poisson_kernel
 from .prior import SmoothnessPrior, truncation_degree
 from .problem import Estimate, LinearProblem, PointSummary
@@ -15,6 +16,7 @@ from .workflow import fit, make_domain
 __version__ = "0.1.0"
 
 __all__ = [
+    "Ball",
     "Disk",
     "DomainError",
     "Estimate",
@@ -27,6 +29,9 @@ __all__ = [
     "SmoothnessPrior",
     "Tikhonov",
     "arc_harmonic_measure",
+    "ball_poisson_kernel",
+    "poisson_kernel_nd",
+    "real_sph_harm",
     "fit",
     "load_layout",
     "load_points",

@@ -26,14 +26,33 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
     ----------
     radius : float
     center : sequence of float, optional
-    kind : {"disk"}
+    kind : {"disk", "ball"}
     s : float, default=2.0
         Smoothness order used to choose the truncation (see :func:`~invert.prior.truncation_degree`).
     n_modes : int, optional
         Force the truncation degree.
+
+    Notes
+    -----
+    For a ball the omitted-variance tail on the sphere decays slowly, so the truncation uses
+    ``tol=BALL_TRUNCATION_TOL`` (5e-3) and is capped at ``BALL_MAX_DEGREE`` (20, i.e. 441
+    columns); see :mod:`invert.ball` for the reasons. ``s`` must exceed 1 on the sphere.
     """
+    if kind == "ball":
+        from .ball import BALL_MAX_DEGREE, BALL_TRUNCATION_TOL, Ball
+
+        if not s > 1:
+            raise ValueError(f"The 's' parameter must be > 1 for a ball (finite pointwise prior "
+                             f"variance on the sphere). Got {s!r} instead.")
+        center = (0.0, 0.0, 0.0) if center is None else tuple(center)
+        if len(center) != 3:
+            raise ValueError(f"The 'center' of a ball must have 3 coordinates. Got {center}.")
+        probe = Ball(radius, center, 0)
+        L = n_modes if n_modes is not None else truncation_degree(
+            probe, s, tol=BALL_TRUNCATION_TOL, maximum=BALL_MAX_DEGREE)
+        return Ball(radius, center, L)
     if kind != "disk":
-        raise ValueError(f"The 'kind' parameter must be 'disk'. Got {kind!r} instead.")
+        raise ValueError(f"The 'kind' parameter must be 'disk' or 'ball'. Got {kind!r} instead.")
     center = (0.0, 0.0) if center is None else tuple(center)
     probe = Disk(radius, center, 0)
     N = n_modes if n_modes is not None else truncation_degree(probe, s)
@@ -50,7 +69,7 @@ def as_readings(data, *, dim=2) -> Readings:
 
 
 def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence", s=2.0,
-        n_modes=None, **options):
+        n_modes=None, kind="disk", **options):
     """Fit readings and return an :class:`~invert.problem.Estimate`.
 
     Parameters
@@ -66,6 +85,8 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
         Smoothness order of the prior.
     n_modes : int, optional
         Truncation degree; chosen from ``s`` when omitted.
+    kind : {"disk", "ball"}, default="disk"
+        The region; a ball reads ``x, y, z`` positions (see :class:`~invert.ball.Ball`).
     **options
         Passed to the stage.
 
@@ -82,8 +103,8 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
     if method not in METHODS:
         raise ValueError(f"The 'method' parameter of fit must be one of {METHODS}. "
                          f"Got {method!r} instead.")
-    r = as_readings(readings)
-    domain = make_domain(radius, center, s=s, n_modes=n_modes)
+    r = as_readings(readings, dim=3 if kind == "ball" else 2)
+    domain = make_domain(radius, center, kind=kind, s=s, n_modes=n_modes)
     problem = LinearProblem.from_readings(r, domain)
     if method == "tikhonov":
         options = {"rule": rule, **options}
