@@ -75,6 +75,8 @@ def summary_dict(estimate, problem, readings, *, level, extra=None):
             "n_sensors": int(len(readings.value)),
             "n_used": int(problem.n_readings),
             "n_gaps": int(readings.n_gaps),
+            "n_on_rim": int(problem.domain.locate(problem.points)[1].sum())
+            if problem.points is not None and len(problem.points) else 0,
             "gap_sensors": [str(s) for s in problem.gap_sensor],
             "sigma": "given per reading" if readings.sigma is not None else "not given",
         },
