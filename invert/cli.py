@@ -58,6 +58,16 @@ def _add_fit_options(p):
     p.add_argument("--noise-sd", type=_positive("--noise-sd"), default=None,
                    help="fix the common noise sd instead of estimating it (with --lam)")
     p.add_argument("--grid", type=int, default=81, help="interior grid size (default: 81)")
+    _add_report_options(p)
+
+
+def _add_report_options(p, threshold=None, unit="", length_unit=""):
+    p.add_argument("--threshold", type=float, default=threshold,
+                   help="report the probability that the value exceeds this, as a map and "
+                        f"anywhere in the region (default: {threshold})")
+    p.add_argument("--unit", default=unit, help=f"unit of the values (default: {unit!r})")
+    p.add_argument("--length-unit", default=length_unit,
+                   help=f"unit of the coordinates and radius (default: {length_unit!r})")
 
 
 def _methods():
@@ -84,6 +94,25 @@ def build_parser():
     p.add_argument("--out", type=Path, default=Path("demo-output"))
     p.add_argument("--method", default="tikhonov", choices=_methods())
     p.add_argument("--seed", type=int, default=0)
+    _add_report_options(p, threshold=95.0, unit="°C", length_unit="m")
+
+    p = sub.add_parser("advise", help="rank new sensor positions and failed sensors to repair")
+    p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
+    p.add_argument("--radius", type=_positive("--radius"), required=True)
+    p.add_argument("--out", type=Path, required=True, help="output folder")
+    p.add_argument("--center", type=float, nargs=2, metavar=("X", "Y"), default=None)
+    p.add_argument("--count", type=int, default=5, help="new sensors to choose (default: 5)")
+    p.add_argument("--candidates", type=Path,
+                   help="POINTS.csv of candidate positions (default: every degree on the rim "
+                        "and rings at 1/4, 1/2, 3/4 of the radius)")
+    p.add_argument("--query", type=Path,
+                   help="POINTS.csv: reduce the variance at these points instead of over the disk")
+    p.add_argument("--min-spacing", type=float, default=None,
+                   help="minimum angle between new sensors, degrees (default: half the sensor "
+                        "spacing)")
+    p.add_argument("--method", default="tikhonov", choices=_methods())
+    p.add_argument("--smoothness", type=float, default=2.0)
+    p.add_argument("--seed", type=int, default=0)
     return parser
 
 
@@ -100,7 +129,7 @@ def _fit_options(args):
 
 def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query=None,
             level=0.9, seed=0, smoothness=2.0, n_modes=None, grid=81, figures=False,
-            stage_options=None, say=print):
+            stage_options=None, say=print, threshold=None, unit="", length_unit=""):
     """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict."""
     from . import workflow
     from .outputs import staged_output, write_fit_outputs
@@ -124,24 +153,45 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
         warnings.simplefilter("ignore")
         estimate = workflow.run_stage(problem, method, s=smoothness, seed=seed,
                                       **(stage_options or {}))
+    estimate, diag = _diagnose(estimate, problem, level, threshold, seed)
     with staged_output(out) as stage:
         summary = write_fit_outputs(stage, estimate, problem, readings, level=level, query=q,
-                                    grid=grid, summary_extra={"seed": seed})
+                                    grid=grid, summary_extra={"seed": seed, "unit": unit,
+                                                              "length_unit": length_unit,
+                                                              "diagnostics": diag.to_dict()})
         if figures:
-            from .report import write_figures
+            from .report import write_report
 
-            write_figures(stage, estimate, problem, readings, level=level)
+            write_report(stage, estimate, problem, readings, level=level, unit=unit,
+                         length_unit=length_unit, threshold=threshold, diagnostics=diag,
+                         query=q, summary=summary)
     for w in summary["warnings"]:
         say(f"warning: {w}")
     return summary
+
+
+def _diagnose(estimate, problem, level, threshold, seed):
+    # Diagnostics of the fit; a failed model check goes first in the estimate's warnings.
+    import dataclasses
+
+    from .diagnose import diagnose
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        diag = diagnose(estimate, problem, level=level, threshold=threshold, rng=seed)
+    if diag.warnings:
+        estimate = dataclasses.replace(estimate,
+                                       warnings=tuple(diag.warnings) + tuple(estimate.warnings))
+    return estimate, diag
 
 
 def _cmd_fit(args):
     summary = run_fit(args.readings, radius=args.radius, out=args.out, center=args.center,
                       method=args.method, query=args.query, level=args.level, seed=args.seed,
                       smoothness=args.smoothness, n_modes=args.n_modes, grid=args.grid,
-                      figures=True, stage_options=_fit_options(args))
-    print(f"fit ({summary['method']}) written to {args.out}/")
+                      figures=True, stage_options=_fit_options(args), threshold=args.threshold,
+                      unit=args.unit, length_unit=args.length_unit)
+    print(f"fit ({summary['method']}) written to {args.out}/ (report: {args.out}/report.html)")
 
 
 def _cmd_demo(args):
@@ -151,20 +201,72 @@ def _cmd_demo(args):
     with resources.as_file(data / "demo_readings.csv") as rpath, \
             resources.as_file(data / "demo_query.csv") as qpath:
         summary = run_fit(rpath, radius=0.25, out=args.out, method=args.method, query=qpath,
-                          seed=args.seed, figures=True)
+                          seed=args.seed, figures=True, threshold=args.threshold,
+                          unit=args.unit, length_unit=args.length_unit)
     print("Demo (synthetic data: a heated circular plate, radius 0.25 m, 32 rim thermocouples "
           "with a failed harness and drop-outs, 4 interior probes).")
     print(f"method {summary['method']}, rule {summary.get('rule')}, "
           f"{summary['readings']['n_used']} readings used, {summary['readings']['n_gaps']} gaps")
     print(f"Output written to {args.out}/ (summary.json, boundary.csv, query.csv, field.csv, "
           f"figures)")
+    print(f"Report: {args.out}/report.html")
+
+
+def _cmd_advise(args):
+    from . import workflow
+    from .advise import advise
+    from .outputs import staged_output, to_jsonable
+    from .problem import LinearProblem
+    from .readings import load_points, load_readings
+
+    def points(path):
+        if path is None:
+            return None
+        pts, _, rows = load_points(path)
+        try:
+            domain.locate(pts)
+        except Exception as exc:  # DomainError: name the row
+            i = getattr(exc, "index", 0) or 0
+            raise InputError(Path(path).name, str(exc), row=int(rows[i])) from None
+        return pts
+
+    if args.count < 1:
+        raise ValueError(f"--count must be >= 1, got {args.count}")
+    readings = load_readings(args.readings, center=args.center)
+    domain = workflow.make_domain(args.radius, args.center, s=args.smoothness)
+    problem = LinearProblem.from_readings(readings, domain)
+    cand, query = points(args.candidates), points(args.query)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        estimate = workflow.run_stage(problem, args.method, s=args.smoothness, seed=args.seed)
+    adv = advise(estimate, problem, count=args.count, candidates=cand, query=query,
+                 min_spacing_deg=args.min_spacing)
+    cframe, rframe = adv.to_frames()
+    import json
+
+    with staged_output(args.out) as stage:
+        cframe.to_csv(stage / "candidates.csv", index=False, float_format="%.10g")
+        rframe.to_csv(stage / "repair.csv", index=False, float_format="%.10g")
+        with open(stage / "advice.json", "w") as fh:
+            json.dump(to_jsonable({"target": adv.target, "target_before": adv.target_before,
+                                   "noise_sd": adv.noise_sd,
+                                   "min_spacing_deg": adv.min_spacing_deg,
+                                   "method": estimate.method}), fh, indent=2)
+    print(f"target: {adv.target}, now {adv.target_before:.4g}")
+    if len(rframe):
+        print(f"repair first: {rframe['sensor'][0]} (cuts it by {rframe['reduction'][0]:.3g})")
+    r0 = cframe.iloc[0]
+    where = f"rim at {r0['theta_deg']:.1f} deg" if r0["position"] == "rim" else \
+        f"interior at ({r0['x']:.4g}, {r0['y']:.4g})"
+    print(f"best new sensor: {where} (cuts it by {r0['reduction']:.3g})")
+    print(f"written to {args.out}/ (candidates.csv, repair.csv, advice.json)")
 
 
 def main(argv=None):
     """Entry point of the ``rim-invert`` command."""
     args = build_parser().parse_args(argv)
     try:
-        {"fit": _cmd_fit, "demo": _cmd_demo}[args.command](args)
+        {"fit": _cmd_fit, "demo": _cmd_demo, "advise": _cmd_advise}[args.command](args)
     except InputError as exc:
         print(f"rim-invert: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
