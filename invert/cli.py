@@ -87,7 +87,11 @@ def build_parser():
     p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=float, nargs=2, metavar=("X", "Y"), default=None)
+    p.add_argument("--center", type=float, nargs="+", metavar="C", default=None,
+                   help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
+    p.add_argument("--domain", default="disk", choices=["disk", "ball"],
+                   help="region: disk (readings x,y) or ball (readings x,y,z; boundary.csv on "
+                        "a latitude/longitude grid) (default: disk)")
     _add_fit_options(p)
 
     p = sub.add_parser("demo", help="run the main job on the bundled synthetic demo data")
@@ -113,7 +117,37 @@ def build_parser():
     p.add_argument("--method", default="tikhonov", choices=_methods())
     p.add_argument("--smoothness", type=float, default=2.0)
     p.add_argument("--seed", type=int, default=0)
+
+    _add_batch_parser(sub)
     return parser
+
+
+def _add_batch_parser(sub):
+    p = sub.add_parser("batch", help="reanalyse a log of frames (per frame or Kalman smoothing)")
+    p.add_argument("log", type=Path, help="LOG.csv or LOG.parquet: time + one column per sensor")
+    p.add_argument("--layout", type=Path, required=True, help="LAYOUT.csv: sensor,x,y[,sigma]")
+    p.add_argument("--radius", type=_positive("--radius"), required=True)
+    p.add_argument("--out", type=Path, required=True, help="output folder")
+    p.add_argument("--center", type=float, nargs=2, metavar=("X", "Y"), default=None)
+    p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] (default: the centre)")
+    p.add_argument("--assimilate", action="store_true",
+                   help="Kalman filter + RTS smoother over time instead of per-frame fits")
+    p.add_argument("--engine", default="local", choices=["local", "dask"])
+    p.add_argument("--scheduler", default=None, help="address of an existing dask scheduler")
+    p.add_argument("--format", default="parquet", choices=["csv", "parquet"], dest="fmt")
+    p.add_argument("--resume", action="store_true", help="continue an interrupted run in --out")
+    p.add_argument("--lam", type=_positive("--lam"), default=None,
+                   help="fixed regularisation parameter (e.g. from a fit's summary.json)")
+    p.add_argument("--noise-sd", type=_positive("--noise-sd"), default=None,
+                   help="fixed common noise sd (with --lam, when the layout has no sigma)")
+    p.add_argument("--calibrate", action="store_true",
+                   help="estimate lam (and the noise sd) once on the log (default without --lam)")
+    p.add_argument("--time-scale", type=_positive("--time-scale"), default=None,
+                   help="fix the time scale of the dynamics (default: maximum likelihood)")
+    p.add_argument("--level", type=float, default=0.9)
+    p.add_argument("--smoothness", type=float, default=2.0)
+    p.add_argument("--n-modes", type=int, default=None)
+    p.add_argument("--chunk-rows", type=int, default=65536, help="frames per chunk")
 
 
 def _fit_options(args):
@@ -129,20 +163,26 @@ def _fit_options(args):
 
 def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query=None,
             level=0.9, seed=0, smoothness=2.0, n_modes=None, grid=81, figures=False,
-            stage_options=None, say=print, threshold=None, unit="", length_unit=""):
-    """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict."""
+            stage_options=None, say=print, threshold=None, unit="", length_unit="",
+            domain="disk"):
+    """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict.
+
+    ``domain="ball"`` reads x,y,z positions and fits a :class:`~invert.ball.Ball`."""
     from . import workflow
     from .outputs import staged_output, write_fit_outputs
     from .problem import LinearProblem
     from .readings import load_points, load_readings
 
     level = check_level(level)
-    readings = load_readings(readings_path, center=center)
-    domain = workflow.make_domain(radius, center, s=smoothness, n_modes=n_modes)
+    dim = 3 if domain == "ball" else 2
+    if center is not None and len(center) != dim:
+        raise ValueError(f"--center needs {dim} numbers for a {domain}, got {len(center)}")
+    readings = load_readings(readings_path, dim=dim, center=center)
+    domain = workflow.make_domain(radius, center, kind=domain, s=smoothness, n_modes=n_modes)
     problem = LinearProblem.from_readings(readings, domain)
     q = None
     if query is not None:
-        pts, labels, rows = load_points(query)
+        pts, labels, rows = load_points(query, dim=dim)
         try:
             domain.locate(pts)
         except Exception as exc:  # DomainError: name the row of the query file
@@ -190,7 +230,7 @@ def _cmd_fit(args):
                       method=args.method, query=args.query, level=args.level, seed=args.seed,
                       smoothness=args.smoothness, n_modes=args.n_modes, grid=args.grid,
                       figures=True, stage_options=_fit_options(args), threshold=args.threshold,
-                      unit=args.unit, length_unit=args.length_unit)
+                      unit=args.unit, length_unit=args.length_unit, domain=args.domain)
     print(f"fit ({summary['method']}) written to {args.out}/ (report: {args.out}/report.html)")
 
 
@@ -262,11 +302,29 @@ def _cmd_advise(args):
     print(f"written to {args.out}/ (candidates.csv, repair.csv, advice.json)")
 
 
+def _cmd_batch(args):
+    from .batch import run_batch
+
+    if args.calibrate and args.lam is not None:
+        raise ValueError("--calibrate and --lam exclude each other")
+    summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
+                        query=args.query, assimilate=args.assimilate, engine=args.engine,
+                        scheduler=args.scheduler, fmt=args.fmt, resume=args.resume,
+                        lam=args.lam, noise_sd=args.noise_sd, level=args.level,
+                        smoothness=args.smoothness, n_modes=args.n_modes, center=args.center,
+                        time_scale=args.time_scale, chunk_rows=args.chunk_rows)
+    f = summary["frames"]
+    print(f"batch ({summary['method']}, {summary['engine']}): {f['total']} frames, "
+          f"{f.get('ok', 0)} ok, {f.get('no-data', 0)} no-data, {f.get('rejected', 0)} "
+          f"rejected; written to {args.out}/")
+
+
 def main(argv=None):
     """Entry point of the ``rim-invert`` command."""
     args = build_parser().parse_args(argv)
     try:
-        {"fit": _cmd_fit, "demo": _cmd_demo, "advise": _cmd_advise}[args.command](args)
+        {"fit": _cmd_fit, "demo": _cmd_demo, "advise": _cmd_advise,
+         "batch": _cmd_batch}[args.command](args)
     except InputError as exc:
         print(f"rim-invert: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT

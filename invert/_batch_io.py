@@ -1,0 +1,382 @@
+"""Reading logged frames in bounded chunks and writing batch outputs part by part.
+
+pandas and pyarrow live here (and in :mod:`invert.batch`); the numerical stages never see them.
+
+A log is CSV or Parquet: one time column (named ``time``, any case, else the first column) and
+one column per sensor id; a blank or NaN cell is a missing reading. Every record comes back as a
+frame, with a rejection reason when it cannot be used (text in a number, an unparseable time, a
+row with the wrong number of cells), so nothing is silently dropped.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from ._validation import InputError
+
+#: Cells read as missing readings (pyarrow's defaults cover these and more).
+_NULLS = ["", "NaN", "nan", "NA", "N/A", "null", "NULL", "None", "-nan", "#N/A"]
+
+
+@dataclass
+class Chunk:
+    """One chunk of frames, in log order.
+
+    Attributes
+    ----------
+    frame : ndarray of int64, shape (L,)
+        0-based record number in the log (``-1`` for malformed lines found by the CSV parser).
+    t : ndarray of float, shape (L,)
+        Time in seconds (numeric logs: the number as written); NaN when unparseable.
+    Y : ndarray of shape (L, n_sensors)
+        Readings in layout order; NaN where missing (or where the cell was rejected).
+    reason : ndarray of object, shape (L,)
+        Rejection reason or None.
+    """
+
+    frame: np.ndarray
+    t: np.ndarray
+    Y: np.ndarray
+    reason: np.ndarray
+
+    def __len__(self):
+        return len(self.t)
+
+
+def log_signature(path):
+    """Size and modification time of the log (a resumed run must see the same file)."""
+    st = os.stat(path)
+    return {"path": str(Path(path).resolve()), "size": st.st_size, "mtime_ns": st.st_mtime_ns}
+
+
+class LogReader:
+    """Iterate over a log in chunks of about ``chunk_rows`` frames.
+
+    Parameters
+    ----------
+    path : str or Path
+        ``.parquet``/``.pq`` files are read with ``pyarrow.parquet.ParquetFile.iter_batches``,
+        anything else as CSV with the streaming ``pyarrow.csv.open_csv`` reader.
+    sensors : sequence of str
+        Sensor ids from the layout; the log's sensor columns must be among them.
+    chunk_rows : int, default=65536
+    """
+
+    def __init__(self, path, sensors, *, chunk_rows=65536):
+        self.path = Path(path)
+        self.source = self.path.name
+        self.sensors = [str(s) for s in sensors]
+        self.chunk_rows = int(chunk_rows)
+        if not self.path.exists():
+            raise InputError(self.source, "file not found")
+        self.is_parquet = self.path.suffix.lower() in (".parquet", ".pq")
+        names = self._names()
+        clean = [str(n).strip() for n in names]
+        lower = [c.lower() for c in clean]
+        self.time_index = lower.index("time") if "time" in lower else 0
+        self.raw_names = list(names)
+        self.time_name = self.raw_names[self.time_index]
+        cols = [c for i, c in enumerate(clean) if i != self.time_index]
+        known = set(self.sensors)
+        for c in cols:
+            if c not in known:
+                raise InputError(self.source, f"sensor '{c}' is not in the layout",
+                                 column=c)
+        seen = set()
+        for c in cols:
+            if c in seen:
+                raise InputError(self.source, f"sensor column '{c}' appears twice", column=c)
+            seen.add(c)
+        self.missing_sensors = [s for s in self.sensors if s not in seen]
+        pos = {s: j for j, s in enumerate(self.sensors)}
+        self.columns = [(self.raw_names[i], pos[c]) for i, c in
+                        ((i, clean[i]) for i in range(len(clean)) if i != self.time_index)]
+        self.time_kind = None  # "number" or "datetime", fixed by the first parseable cell
+
+    def _names(self):
+        if self.is_parquet:
+            import pyarrow.parquet as pq
+
+            try:
+                return pq.ParquetFile(self.path).schema_arrow.names
+            except Exception as exc:  # noqa: BLE001 - any read failure is bad input
+                raise InputError(self.source, f"cannot be read as Parquet ({exc})") from None
+        # leading lines starting with '#' are comments (e.g. a SYNTHETIC label)
+        self.skip_rows = 0
+        with open(self.path, encoding="utf-8-sig", errors="replace") as fh:
+            first = fh.readline()
+            while first.lstrip().startswith("#"):
+                self.skip_rows += 1
+                first = fh.readline()
+        if not first.strip():
+            raise InputError(self.source, "the file is empty (no header)")
+        import csv
+
+        return next(csv.reader([first]))
+
+    # --- raw batches ---------------------------------------------------------------------------
+    def _batches(self):
+        import pyarrow as pa
+
+        if self.is_parquet:
+            import pyarrow.parquet as pq
+
+            pf = pq.ParquetFile(self.path)
+            for b in pf.iter_batches(batch_size=self.chunk_rows):
+                yield b, []
+            return
+        import pyarrow.csv as pcsv
+
+        bad = []
+
+        def on_invalid(row):
+            bad.append((row.number, row.text))
+            return "skip"
+
+        # ~ bytes per row from the first lines, so that a block holds about chunk_rows rows
+        with open(self.path, "rb") as fh:
+            head = fh.read(1 << 16)
+        lines = max(head.count(b"\n"), 1)
+        block = int(min(max(len(head) / lines * self.chunk_rows, 1 << 16), 1 << 30))
+        opts = pcsv.ReadOptions(block_size=block, use_threads=True, encoding="utf8",
+                                skip_rows=self.skip_rows)
+        conv = pcsv.ConvertOptions(column_types={n: pa.string() for n in self.raw_names},
+                                   strings_can_be_null=True, null_values=_NULLS,
+                                   quoted_strings_can_be_null=True)
+        parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
+        try:
+            reader = pcsv.open_csv(self.path, read_options=opts, parse_options=parse,
+                                   convert_options=conv)
+        except pa.ArrowInvalid as exc:
+            raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
+        while True:
+            try:
+                b = reader.read_next_batch()
+            except StopIteration:
+                if bad:
+                    yield None, bad[:]
+                return
+            except pa.ArrowInvalid as exc:
+                raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
+            got, bad[:] = bad[:], []
+            yield b, got
+
+    def __iter__(self):
+        start = 0
+        for batch, malformed in self._batches():
+            if batch is not None and batch.num_rows:
+                ch = self._convert(batch, start)
+                start += batch.num_rows
+            else:
+                ch = None
+            if malformed:
+                extra = self._malformed(malformed)
+                ch = extra if ch is None else _concat(ch, extra)
+            if ch is not None:
+                yield ch
+
+    # --- conversion -----------------------------------------------------------------------------
+    def _malformed(self, rows):
+        n = len(rows)
+        reason = np.array([f"malformed row (wrong number of cells)"
+                           + (f" at line {num}" if num is not None and num >= 0 else "")
+                           for num, _ in rows], dtype=object)
+        t = np.full(n, np.nan)
+        for i, (_, text) in enumerate(rows):
+            cell = (text or "").split(",")[self.time_index] if text else ""
+            t[i] = self._time_cells(np.array([cell.strip()], dtype=object))[0][0]
+        return Chunk(np.full(n, -1, np.int64), t, np.full((n, len(self.sensors)), np.nan), reason)
+
+    def _convert(self, batch, start):
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        L = batch.num_rows
+        Y = np.full((L, len(self.sensors)), np.nan)
+        reason = np.full(L, None, dtype=object)
+        for name, j in self.columns:
+            col = batch.column(name)
+            if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
+                vals = col.cast(pa.float64()).to_numpy(zero_copy_only=False)
+                bad = np.zeros(L, bool)
+            else:
+                if not pa.types.is_string(col.type):
+                    col = col.cast(pa.string())
+                try:
+                    vals = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
+                    bad = np.zeros(L, bool)
+                except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+                    vals, bad = _parse_cells(col)
+            vals = np.asarray(vals, float)
+            nonfinite = np.isinf(vals)
+            if bad.any() or nonfinite.any():
+                text = col.to_pylist() if bad.any() or nonfinite.any() else None
+                for i in np.flatnonzero(bad | nonfinite):
+                    if reason[i] is None:
+                        what = "non-numeric" if bad[i] else "non-finite"
+                        reason[i] = f"{what} cell in column '{name.strip()}': {text[i]!r}"
+                vals = np.where(bad | nonfinite, np.nan, vals)
+            Y[:, j] = vals
+        t, tbad = self._time_column(batch.column(self.time_name))
+        for i in np.flatnonzero(tbad):
+            if reason[i] is None:
+                reason[i] = "unparseable time" if tbad[i] == 1 else "missing time"
+        return Chunk(np.arange(start, start + L, dtype=np.int64), t, Y, reason)
+
+    def _time_column(self, col):
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        if pa.types.is_timestamp(col.type) or pa.types.is_date(col.type):
+            self.time_kind = self.time_kind or "datetime"
+            ns = col.cast(pa.timestamp("ns")).cast(pa.int64()).to_numpy(zero_copy_only=False)
+            t = np.asarray(ns, float) / 1e9
+            null = np.asarray(col.is_null().to_numpy(zero_copy_only=False))
+            t[null] = np.nan
+            if self.time_kind != "datetime":
+                return np.full(len(t), np.nan), np.ones(len(t), np.int8)
+            return t, null.astype(np.int8) * 2
+        if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
+            self.time_kind = self.time_kind or "number"
+            t = np.asarray(col.cast(pa.float64()).to_numpy(zero_copy_only=False), float)
+            bad = np.where(np.isnan(t), 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
+            if self.time_kind != "number":
+                return np.full(len(t), np.nan), np.ones(len(t), np.int8)
+            return np.where(bad == 0, t, np.nan), bad
+        if not pa.types.is_string(col.type):
+            col = col.cast(pa.string())
+        if self.time_kind in (None, "number"):
+            try:
+                t = np.asarray(pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False), float)
+                if self.time_kind is None and np.isfinite(t).any():
+                    self.time_kind = "number"
+                if self.time_kind == "number":
+                    null = np.asarray(col.is_null().to_numpy(zero_copy_only=False))
+                    bad = np.where(null, 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
+                    return np.where(bad == 0, t, np.nan), bad
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+                pass
+        cells = np.array(col.to_pylist(), dtype=object)
+        return self._time_cells(cells)
+
+    def _time_cells(self, cells):
+        """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
+        import pandas as pd
+
+        n = len(cells)
+        t = np.full(n, np.nan)
+        bad = np.zeros(n, np.int8)
+        text = np.array(["" if c is None else str(c).strip() for c in cells], dtype=object)
+        blank = np.array([x == "" or x in _NULLS for x in text])
+        bad[blank] = 2
+        num = pd.to_numeric(pd.Series(text), errors="coerce").to_numpy(float)
+        if self.time_kind is None:
+            first = next((i for i in range(n) if not blank[i]), None)
+            if first is not None:
+                self.time_kind = "number" if np.isfinite(num[first]) else "datetime"
+        if self.time_kind == "number":
+            ok = np.isfinite(num) & ~blank
+            t[ok] = num[ok]
+        elif self.time_kind == "datetime":
+            dt = pd.to_datetime(pd.Series(text), errors="coerce", format="ISO8601", utc=True)
+            ok = dt.notna().to_numpy() & ~blank
+            ns = dt.astype("int64", errors="ignore") if ok.all() else None
+            vals = np.array([d.value if o else 0 for d, o in zip(dt, ok, strict=True)]) \
+                if ns is None else np.asarray(ns, np.int64)
+            t[ok] = vals[ok] / 1e9
+        else:
+            ok = np.zeros(n, bool)
+        bad[~ok & ~blank] = 1
+        return t, bad
+
+
+def _parse_cells(col):
+    """Numbers from a string column cell by cell; ``bad`` marks non-blank non-numbers."""
+    import pandas as pd
+
+    s = pd.Series(col.to_pylist(), dtype=object)
+    blank = s.isna().to_numpy()
+    vals = pd.to_numeric(s.str.strip(), errors="coerce").to_numpy(float)
+    bad = np.isnan(vals) & ~blank
+    # literal NaN spellings are missing readings, not bad cells
+    low = s.str.strip().str.lower()
+    bad &= ~low.isin([v.lower() for v in _NULLS]).to_numpy()
+    return vals, bad
+
+
+def _concat(a, b):
+    return Chunk(np.concatenate([a.frame, b.frame]), np.concatenate([a.t, b.t]),
+                 np.vstack([a.Y, b.Y]), np.concatenate([a.reason, b.reason]))
+
+
+# --- outputs -------------------------------------------------------------------------------------
+def write_table(table, path, fmt):
+    """Write a pyarrow table to ``path`` atomically (temporary file, then ``os.replace``)."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    _write(table, tmp, fmt)
+    os.replace(tmp, path)
+
+
+def _write(table, path, fmt):
+    if fmt == "parquet":
+        import pyarrow.parquet as pq
+
+        pq.write_table(table, path)
+    else:
+        import pyarrow.csv as pcsv
+
+        pcsv.write_csv(_plain(table), path)
+
+
+def _plain(table):
+    """Dictionary columns as plain strings (the CSV writer wants plain types)."""
+    import pyarrow as pa
+
+    cols = [c.cast(c.type.value_type) if pa.types.is_dictionary(c.type) else c
+            for c in table.columns]
+    return pa.table(cols, names=table.column_names)
+
+
+def merge_parts(parts, path, fmt):
+    """Concatenate part files (in order) into ``path``, atomically."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    if fmt == "parquet":
+        import pyarrow.parquet as pq
+
+        writer = None
+        try:
+            for p in parts:
+                t = pq.read_table(p)
+                if writer is None:
+                    writer = pq.ParquetWriter(tmp, t.schema)
+                writer.write_table(t)
+        finally:
+            if writer is not None:
+                writer.close()
+    else:
+        with open(tmp, "wb") as out:
+            for i, p in enumerate(parts):
+                with open(p, "rb") as fh:
+                    if i:
+                        fh.readline()  # header once
+                    shutil.copyfileobj(fh, out, 1 << 22)
+    os.replace(tmp, path)
+
+
+def write_json(obj, path):
+    """Write JSON atomically."""
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
+    with open(tmp, "w") as fh:
+        json.dump(obj, fh, indent=2)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)

@@ -1,0 +1,670 @@
+r"""Reanalysis of logged frames: per-frame inversion or Kalman smoothing, resumable, local or Dask.
+
+``run_batch`` reads the log in chunks (bounded memory), gives every input frame one row in
+``frames.<fmt>`` (``time, frame, status, reason, n_used, centre_mean, centre_sd, chi2``) and
+writes ``query.<fmt>`` (``time, label, mean, sd, lower, upper``) for the frames with an estimate.
+
+Static mode
+    Each frame is the Tikhonov fit with fixed parameters (``Tikhonov(rule="fixed", lam=...,
+    noise_sd=...)``). For fixed parameters the posterior mean is linear in the observed readings,
+    :math:`\bar u_q = H_q M_P y_o`, and the sds do not depend on them, so frames that share a
+    drop-out pattern :math:`P` share one factorisation: :math:`H_q M_P` and the sds are computed
+    once per pattern from the same standard-form SVD as ``rim-invert fit``
+    (:class:`~invert.stages._spectrum.Spectrum`), and the work per frame is a matrix product,
+    vectorised over the frames of a chunk. Parameters are given (``lam``, ``noise_sd``, e.g. from
+    a fit's summary.json) or estimated once on the log by maximising the evidence pooled over a
+    sample of frames with the most common pattern (Bishop 2006, §3.5).
+Assimilation
+    Kalman filter and RTS smoother over the coefficients (:mod:`invert.stages.assimilate`); the
+    filtered segments are spilled to disk so memory stays bounded.
+
+Frame statuses: ``ok``; ``no-data`` (no reading; in assimilation the frame still gets the
+smoothed estimate); ``rejected`` with a reason (duplicate time, time out of order, non-numeric or
+non-finite cell, unparseable or missing time, malformed row, fewer than 2 readings in static
+mode). Times must increase; a frame whose time is not after the last accepted one is rejected.
+
+Resume: chunk outputs are written as part files (temporary file, then ``os.replace``) under
+``OUT/.batch-work`` with a manifest updated the same way after each chunk; a rerun with
+``resume=True`` continues after the last completed chunk, and the merged result is identical.
+
+References
+----------
+.. [1] C. M. Bishop, *Pattern Recognition and Machine Learning*, Springer, 2006, §3.5.
+.. [2] S. Särkkä, *Bayesian Filtering and Smoothing*, Cambridge University Press, 2013.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import pickle
+import shutil
+import sys
+import threading
+import time as _time
+from collections import OrderedDict
+from pathlib import Path
+
+import numpy as np
+from scipy import optimize, stats
+
+from . import _batch_io as bio
+from ._validation import InputError, check_level
+from .outputs import CAUTIONS, to_jsonable
+from .prior import SmoothnessPrior
+from .problem import LinearProblem
+from .stages._spectrum import Spectrum
+
+__all__ = ["run_batch", "StaticInverter", "pooled_evidence_fit", "frame_statuses"]
+
+#: Test-only: seconds to sleep after each chunk, so a test can kill a run part-way.
+_DELAY_ENV = "RIM_INVERT_TEST_CHUNK_DELAY"
+_WORK = ".batch-work"
+
+
+# --- statuses ----------------------------------------------------------------------------------
+def frame_statuses(chunk, last_time, *, min_readings=1):
+    """Status of each frame of a chunk, given the last accepted time before it.
+
+    Returns
+    -------
+    status : ndarray of str
+    reason : ndarray of object
+    accepted : ndarray of bool
+        Frames with a usable time (ok or no-data).
+    last_time : float
+        Last accepted time after the chunk.
+    """
+    L = len(chunk)
+    reason = chunk.reason.copy()
+    valid = np.array([r is None for r in reason], bool)
+    t = chunk.t
+    # a valid frame is accepted iff its time exceeds every earlier valid time (rejected ones
+    # never raise the running maximum, since they do not exceed it)
+    prior = np.where(valid, t, -np.inf)
+    run = np.maximum.accumulate(np.concatenate([[last_time], prior]))[:-1]
+    dup = valid & (t == run)
+    back = valid & (t < run)
+    for i in np.flatnonzero(dup):
+        reason[i] = "duplicate time"
+    for i in np.flatnonzero(back):
+        reason[i] = "time out of order (earlier than a previous frame)"
+    accepted = valid & ~dup & ~back
+    n_used = np.isfinite(chunk.Y).sum(axis=1)
+    few = accepted & (n_used > 0) & (n_used < min_readings)
+    for i in np.flatnonzero(few):
+        reason[i] = f"only {n_used[i]} reading(s); a fit needs at least {min_readings}"
+    status = np.where(accepted & ~few, np.where(n_used > 0, "ok", "no-data"), "rejected")
+    accepted &= ~few
+    new_last = float(np.max(t[accepted])) if accepted.any() else last_time
+    return status.astype(object), reason, accepted, max(new_last, last_time)
+
+
+# --- static inversion ----------------------------------------------------------------------------
+class StaticInverter:
+    r"""Per-frame Tikhonov inversion with fixed parameters, one factorisation per pattern.
+
+    Parameters
+    ----------
+    domain : Disk
+    points : ndarray of shape (n_sensors, 2)
+        Sensor positions in layout order.
+    sigma : ndarray of shape (n_sensors,) or None
+        Per-sensor noise sd (known noise) or None (common level ``noise_sd``).
+    lam : float
+        Regularisation parameter :math:`\alpha`.
+    noise_sd : float or None
+        Common noise sd when ``sigma`` is None.
+    query : ndarray of shape (n_query, 2)
+    s : float, default=2.0
+    level : float, default=0.9
+    max_patterns : int, default=50000
+        Size of the pattern cache (least recently used patterns are dropped).
+
+    Notes
+    -----
+    For the observed set :math:`o` of a pattern, with :math:`W_o = \operatorname{diag}(1/
+    \sigma_o)`, prior sd pattern :math:`D` and the SVD :math:`W_oG_oD = U\,\mathrm{diag}(s)V^\top`,
+    the coefficients are :math:`c = D V \operatorname{diag}(f/s) U^\top W_o y_o = M y_o` with
+    :math:`f = s^2/(s^2+\alpha)` and the covariance is that of :meth:`Spectrum.cov`; the whitened
+    residual is :math:`W_o(I - G_oM)y_o`, so :math:`\chi^2 = \|W_o(I-G_oM)y_o\|^2/\sigma^2`.
+    """
+
+    def __init__(self, domain, points, sigma, lam, noise_sd, query, *, s=2.0, level=0.9,
+                 max_patterns=50000):
+        self.domain = domain
+        self.points = np.asarray(points, float)
+        self.sigma = None if sigma is None else np.asarray(sigma, float)
+        self.lam = float(lam)
+        self.noise_sd = noise_sd
+        self.noise_var = 1.0 if sigma is not None else float(noise_sd) ** 2
+        self.query = np.asarray(query, float)
+        self.s = s
+        self.level = level
+        self.z = float(stats.norm.ppf((1 + level) / 2))
+        self.G = domain.design(self.points)
+        self.Hq = domain.design(self.query)
+        self.prior_sd = np.sqrt(SmoothnessPrior(s=s).shape(domain.eigenvalues, domain.degrees))
+        self.max_patterns = max_patterns
+        self._cache = OrderedDict()
+        self._lock = threading.Lock()
+        self.n_factorised = 0
+
+    def __getstate__(self):
+        d = dict(self.__dict__)
+        d["_cache"], d["_lock"] = OrderedDict(), None
+        return d
+
+    def __setstate__(self, d):
+        self.__dict__.update(d)
+        self._lock = threading.Lock()
+
+    def _pattern(self, key, obs):
+        with self._lock:
+            hit = self._cache.get(key)
+            if hit is not None:
+                self._cache.move_to_end(key)
+                return hit
+        idx = np.flatnonzero(obs)
+        problem = LinearProblem(self.G[idx], np.zeros(idx.size),
+                                None if self.sigma is None else self.sigma[idx],
+                                self.domain.degrees, self.domain.eigenvalues, self.domain)
+        spec = Spectrum(problem, self.prior_sd)
+        f = spec._f(self.lam)[:, 0]
+        w = problem.weights
+        # c = D V diag(f/s) U^T W y  (Spectrum.coef written as a matrix acting on y)
+        Mc = ((spec.d[:, None] * spec.Vt.T) * (f / spec.s)[None, :]) @ (spec.U.T * w[None, :])
+        cov = spec.cov(self.lam, self.noise_var)
+        Mq = self.Hq @ Mc
+        qsd = np.sqrt(np.clip(np.einsum("ij,jk,ik->i", self.Hq, cov, self.Hq), 0, None))
+        Rw = w[:, None] * (np.eye(idx.size) - self.G[idx] @ Mc)
+        entry = (idx, Mq, qsd, Mc[0], float(np.sqrt(max(cov[0, 0], 0))), Rw)
+        with self._lock:
+            self._cache[key] = entry
+            self.n_factorised += 1
+            if len(self._cache) > self.max_patterns:
+                self._cache.popitem(last=False)
+        return entry
+
+    def solve(self, Y):
+        """Estimates for frames ``Y`` (rows with at least one reading).
+
+        Returns
+        -------
+        qmean, qsd : ndarray of shape (n_frames, n_query)
+        centre_mean, centre_sd, chi2 : ndarray of shape (n_frames,)
+        """
+        L = len(Y)
+        nq = len(self.query)
+        qmean, qsd = np.empty((L, nq)), np.empty((L, nq))
+        cmean, csd, chi2 = np.empty(L), np.empty(L), np.empty(L)
+        obs = np.isfinite(Y)
+        packed = np.packbits(obs, axis=1)
+        keys, inverse = np.unique(packed, axis=0, return_inverse=True)
+        inverse = inverse.ravel()
+        order = np.argsort(inverse, kind="stable")
+        bounds = np.flatnonzero(np.diff(inverse[order])) + 1
+        for grp in np.split(order, bounds):
+            if grp.size == 0:
+                continue
+            g0 = grp[0]
+            idx, Mq, sd, c0, c0sd, Rw = self._pattern(keys[inverse[g0]].tobytes(), obs[g0])
+            Yo = Y[np.ix_(grp, idx)]
+            qmean[grp] = Yo @ Mq.T
+            qsd[grp] = sd
+            cmean[grp] = Yo @ c0
+            csd[grp] = c0sd
+            r = Yo @ Rw.T
+            chi2[grp] = np.einsum("ij,ij->i", r, r) / self.noise_var
+        return qmean, qsd, cmean, csd, chi2
+
+
+def pooled_evidence_fit(G, Y, sigma, prior_sd, *, n_grid=200):
+    r"""Regularisation parameter (and noise sd) maximising the evidence pooled over frames.
+
+    All frames share one design ``G`` (one drop-out pattern). With the standard-form SVD of
+    :class:`~invert.stages._spectrum.Spectrum`, frame :math:`j` has
+    :math:`q_j(\alpha) = \sum_i \beta_{ij}^2/g_i + r_{\perp j}`, :math:`g_i = 1 + s_i^2/\alpha`;
+    the pooled log-evidence is :math:`-\frac12\sum_j (q_j + \log|C|)` with known noise, and with
+    one unknown noise level :math:`\hat\sigma^2 = \sum_j q_j/(nm)` profiled out (Bishop 2006,
+    §3.5; the per-frame form is :meth:`Spectrum.log_evidence`).
+
+    Returns
+    -------
+    lam : float
+    noise_sd : float or None
+        None when ``sigma`` is given.
+    """
+    G = np.asarray(G, float)
+    Y = np.atleast_2d(np.asarray(Y, float))
+    n, m = Y.shape
+    problem = LinearProblem(G, Y[0], sigma, np.zeros(G.shape[1]), np.zeros(G.shape[1]))
+    spec = Spectrum(problem, prior_sd)
+    w = problem.weights
+    Yt = Y * w[None, :]
+    B = spec.U.T @ Yt.T                       # (k, n)
+    rperp = np.sum((Yt.T - spec.U @ B) ** 2, axis=0)
+    known = sigma is not None
+
+    def score(alpha):
+        alpha = np.atleast_1d(alpha)
+        g = 1 + spec.s[:, None] ** 2 / alpha[None, :]
+        quad = np.einsum("kn,ka->a", B**2, 1 / g) + rperp.sum()
+        logdet = np.sum(np.log(g), axis=0)
+        if known:
+            return -0.5 * (quad + n * logdet)
+        return -0.5 * (n * m * np.log(quad / (n * m)) + n * logdet)
+
+    grid = spec.alpha_grid(n_grid)
+    sc = score(grid)
+    i = int(np.argmax(sc))
+    lo, hi = np.log(grid[max(i - 1, 0)]), np.log(grid[min(i + 1, n_grid - 1)])
+    res = optimize.minimize_scalar(lambda la: -score(np.exp(la))[0], bounds=(lo, hi),
+                                   method="bounded", options={"xatol": 1e-8})
+    alpha = float(np.exp(res.x)) if -res.fun >= sc[i] else float(grid[i])
+    if known:
+        return alpha, None
+    g = 1 + spec.s**2 / alpha
+    quad = float(np.sum(B**2 / g[:, None]) + rperp.sum())
+    return alpha, float(np.sqrt(quad / (n * m)))
+
+
+# --- helpers -----------------------------------------------------------------------------------
+def _progress(total=None):
+    from tqdm.auto import tqdm
+
+    return tqdm(total=total, unit="frame", unit_scale=True, disable=not sys.stderr.isatty(),
+                desc="batch", smoothing=0.1)
+
+
+def _time_array(t, kind):
+    import pyarrow as pa
+
+    if kind == "datetime":
+        ns = np.where(np.isfinite(t), np.round(np.nan_to_num(t) * 1e9), 0).astype(np.int64)
+        return pa.array(ns, type=pa.int64(), mask=~np.isfinite(t)).cast(pa.timestamp("ns", "UTC"))
+    return pa.array(t, type=pa.float64(), mask=~np.isfinite(t))
+
+
+def _frames_table(chunk, status, reason, n_used, cmean, csd, chi2, kind):
+    import pyarrow as pa
+
+    def col(v):
+        return pa.array(v, type=pa.float64(), mask=~np.isfinite(v))
+
+    return pa.table({
+        "time": _time_array(chunk.t, kind),
+        "frame": pa.array(chunk.frame),
+        "status": pa.array(status.astype(str).tolist(), type=pa.string()),
+        "reason": pa.array([None if r is None else str(r) for r in reason], type=pa.string()),
+        "n_used": pa.array(n_used.astype(np.int64)),
+        "centre_mean": col(cmean),
+        "centre_sd": col(csd),
+        "chi2": col(chi2),
+    })
+
+
+def _query_table(t, labels, qmean, qsd, z, kind):
+    import pyarrow as pa
+
+    L, nq = qmean.shape
+    tt = np.repeat(t, nq)
+    lab = pa.DictionaryArray.from_arrays(pa.array(np.tile(np.arange(nq, dtype=np.int32), L)),
+                                         pa.array([str(x) for x in labels]))
+    m, s = qmean.ravel(), qsd.ravel()
+    return pa.table({"time": _time_array(tt, kind), "label": lab, "mean": m, "sd": s,
+                     "lower": m - z * s, "upper": m + z * s})
+
+
+def _empty_query(kind):
+    import pyarrow as pa
+
+    return _query_table(np.empty(0), ["x"], np.empty((0, 1)), np.empty((0, 1)), 1.0, kind)
+
+
+def _sleep_for_tests():
+    d = os.environ.get(_DELAY_ENV)
+    if d:
+        _time.sleep(float(d))
+
+
+# --- the job -----------------------------------------------------------------------------------
+class _Work:
+    """The resumable working folder: part files, spilled segments and the manifest."""
+
+    def __init__(self, out, signature, resume):
+        self.out = Path(out)
+        self.dir = self.out / _WORK
+        self.signature = signature
+        man = self.dir / "manifest.json"
+        self.manifest = None
+        if resume and man.exists():
+            with open(man) as fh:
+                m = json.load(fh)
+            if m.get("signature") != signature:
+                raise ValueError(f"{self.dir}: the interrupted run used another log or other "
+                                 f"options; rerun without --resume to start afresh")
+            self.manifest = m
+        else:
+            shutil.rmtree(self.dir, ignore_errors=True)
+        self.dir.mkdir(parents=True, exist_ok=True)
+        if self.manifest is None:
+            self.manifest = {"signature": signature, "done": {}, "hyper": None}
+            self.save()
+
+    def save(self):
+        bio.write_json(to_jsonable(self.manifest), self.dir / "manifest.json")
+
+    def part(self, name, i, fmt):
+        return self.dir / f"{name}-{i:06d}.{fmt}"
+
+    def dump(self, obj, name):
+        path = self.dir / name
+        tmp = path.with_name(f".{path.name}.tmp")
+        with open(tmp, "wb") as fh:
+            pickle.dump(obj, fh, protocol=pickle.HIGHEST_PROTOCOL)
+        os.replace(tmp, path)
+
+    def load(self, name):
+        with open(self.dir / name, "rb") as fh:
+            return pickle.load(fh)
+
+
+def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine="local",
+              scheduler=None, fmt="parquet", resume=False, lam=None, noise_sd=None,
+              level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
+              chunk_rows=65536, steady_tol=1e-10, calibration_frames=2000, ml_frames=20000,
+              n_workers=2, say=print):
+    """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
+
+    Parameters
+    ----------
+    log : str or Path
+        CSV or Parquet log (time column + one column per sensor).
+    layout : str or Path
+        LAYOUT.csv: ``sensor,x,y[,sigma]``.
+    radius : float
+    out : str or Path
+    query : str or Path, optional
+        POINTS.csv; default the centre of the disk (label ``centre``).
+    assimilate : bool, default=False
+        Kalman filter + RTS smoother instead of per-frame inversion.
+    engine : {"local", "dask"}
+    scheduler : str, optional
+        Address of an existing dask scheduler (else a loopback LocalCluster is started).
+    fmt : {"parquet", "csv"}
+    resume : bool
+        Continue an interrupted run in ``out``.
+    lam, noise_sd : float, optional
+        Fixed parameters (as ``rim-invert fit --lam --noise-sd``); estimated on the log when
+        ``lam`` is None.
+    time_scale : float, optional
+        Fix the time scale of the dynamics (assimilation); else maximum likelihood.
+    chunk_rows : int
+        Frames per chunk.
+
+    Returns
+    -------
+    dict
+        The summary written to summary.json.
+    """
+    from . import workflow
+    from .readings import load_layout, load_points
+
+    level = check_level(level, where="batch")
+    if engine not in ("local", "dask"):
+        raise ValueError(f"The 'engine' parameter of batch must be one of ('local', 'dask'). "
+                         f"Got {engine!r} instead.")
+    if fmt not in ("parquet", "csv"):
+        raise ValueError(f"The 'format' parameter of batch must be one of ('csv', 'parquet'). "
+                         f"Got {fmt!r} instead.")
+    if noise_sd is not None and lam is None:
+        raise ValueError("--noise-sd goes with --lam (both fixed, e.g. from a fit summary)")
+    sensors, points, sigma, _ = load_layout(layout)
+    domain = workflow.make_domain(radius, center, s=smoothness, n_modes=n_modes)
+    try:
+        domain.locate(points)
+    except Exception as exc:  # DomainError names the index
+        i = getattr(exc, "index", 0) or 0
+        raise InputError(Path(layout).name, str(exc), row=i + 2) from None
+    if query is not None:
+        qpts, qlabels, qrows = load_points(query)
+        try:
+            domain.locate(qpts)
+        except Exception as exc:
+            i = getattr(exc, "index", 0) or 0
+            raise InputError(Path(query).name, str(exc), row=int(qrows[i])) from None
+    else:
+        qpts, qlabels = np.array([list(domain.center)]), np.array(["centre"])
+    if lam is not None and sigma is None and noise_sd is None:
+        raise ValueError("--lam needs --noise-sd when the layout has no 'sigma' column")
+    reader = bio.LogReader(log, sensors, chunk_rows=chunk_rows)
+    options = {
+        "layout": hashlib.sha256(Path(layout).read_bytes()).hexdigest(),
+        "query": None if query is None else hashlib.sha256(Path(query).read_bytes()).hexdigest(),
+        "radius": radius, "center": list(domain.center), "n_modes": domain.n_modes,
+        "s": smoothness, "lam": lam, "noise_sd": noise_sd, "assimilate": bool(assimilate),
+        "time_scale": time_scale, "fmt": fmt, "chunk_rows": chunk_rows, "level": level,
+        "steady_tol": steady_tol,
+    }
+    signature = {"log": bio.log_signature(log), "options": options}
+    out = Path(out)
+    work = _Work(out, signature, resume)
+    t_start = _time.perf_counter()
+    ctx = {"reader": reader, "domain": domain, "points": points, "sigma": sigma,
+           "sensors": sensors, "qpts": qpts, "qlabels": qlabels, "level": level,
+           "s": smoothness, "fmt": fmt, "work": work, "lam": lam, "noise_sd": noise_sd,
+           "calibration_frames": calibration_frames, "engine": engine,
+           "scheduler": scheduler, "n_workers": n_workers}
+    client = cluster = None
+    if engine == "dask":
+        client, cluster = _dask_client(scheduler, n_workers)
+    try:
+        ctx["client"] = client
+        hyper = _hyperparameters(ctx)
+        if assimilate:
+            from .stages.assimilate import CoefficientDynamics
+
+            noise_var = sigma**2 if sigma is not None else np.full(len(sensors),
+                                                                 hyper["noise_sd"] ** 2)
+            tau2 = (1.0 if sigma is not None else hyper["noise_sd"] ** 2) / hyper["lam"]
+            shape = SmoothnessPrior(s=smoothness).shape(domain.eigenvalues, domain.degrees)
+            model = CoefficientDynamics.from_prior(domain.design(points), noise_var, shape,
+                                                   domain.degrees, tau2=tau2, time_scale=1.0)
+            from . import _batch_assim
+
+            extra = _batch_assim.run(ctx, model, time_scale, steady_tol, ml_frames)
+        else:
+            extra = _run_static(ctx, hyper)
+        n_chunks = work.manifest["n_chunks"]
+        counts = work.manifest["counts"]
+        _merge(work, n_chunks, out, fmt, reader.time_kind or "number")
+    finally:
+        if client is not None:
+            client.close()
+        if cluster is not None:
+            cluster.close()
+    elapsed = _time.perf_counter() - t_start
+    summary = {
+        "command": "batch",
+        "method": "kalman-smoother" if assimilate else "tikhonov (fixed per frame)",
+        "engine": engine,
+        "log": str(Path(log).name),
+        "format": fmt,
+        "level": level,
+        "lam": hyper["lam"],
+        "noise_sd": hyper["noise_sd"],
+        "s": smoothness,
+        "hyperparameters": hyper["how"],
+        "domain": domain.describe(),
+        "sensors": {"n": len(sensors), "missing_from_log": reader.missing_sensors,
+                    "sigma": "given per sensor" if sigma is not None else "common (noise_sd)"},
+        "frames": {"total": int(sum(counts.values())), **{k: int(v) for k, v in counts.items()}},
+        "rejections": work.manifest.get("reasons", {}),
+        "query_labels": [str(x) for x in qlabels],
+        "seconds": elapsed,
+        **extra,
+        "warnings": ([f"sensor(s) {', '.join(reader.missing_sensors)} of the layout have no "
+                      f"column in the log; treated as always missing"]
+                     if reader.missing_sensors else []),
+        "cautions": list(CAUTIONS),
+    }
+    summary = to_jsonable(summary)
+    bio.write_json(summary, out / "summary.json")
+    shutil.rmtree(work.dir, ignore_errors=True)
+    return summary
+
+
+def _dask_client(scheduler, n_workers):
+    from dask.distributed import Client, LocalCluster
+
+    if scheduler:
+        return Client(scheduler), None
+    cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=False,
+                           host="127.0.0.1", dashboard_address=None)
+    return Client(cluster), cluster
+
+
+def _hyperparameters(ctx):
+    """Fixed, or estimated once on the first chunk (stored in the manifest for resumes)."""
+    work = ctx["work"]
+    if work.manifest.get("hyper"):
+        return work.manifest["hyper"]
+    sigma = ctx["sigma"]
+    if ctx["lam"] is not None:
+        hyper = {"lam": float(ctx["lam"]),
+                 "noise_sd": None if sigma is not None else float(ctx["noise_sd"]),
+                 "how": "fixed by the user"}
+    else:
+        first = next(iter(ctx["reader"]), None)
+        if first is None:
+            raise InputError(ctx["reader"].source, "has no frames")
+        _, _, acc, _ = frame_statuses(first, -np.inf, min_readings=2)
+        Y = first.Y[acc & (np.isfinite(first.Y).sum(1) >= 2)]
+        if not len(Y):
+            raise InputError(ctx["reader"].source, "no frame in the first chunk has 2 readings; "
+                             "give --lam and --noise-sd")
+        obs = np.isfinite(Y)
+        keys, inv, cnt = np.unique(np.packbits(obs, axis=1), axis=0, return_inverse=True,
+                                   return_counts=True)
+        inv = inv.ravel()
+        # most common pattern among those with the most readings seen often enough
+        nread = obs[[np.flatnonzero(inv == g)[0] for g in range(len(keys))]].sum(1)
+        best = int(np.lexsort((-nread, -cnt))[0])
+        rows = np.flatnonzero(inv == best)[: ctx["calibration_frames"]]
+        idx = np.flatnonzero(obs[rows[0]])
+        dom = ctx["domain"]
+        prior_sd = np.sqrt(SmoothnessPrior(s=ctx["s"]).shape(dom.eigenvalues, dom.degrees))
+        G = dom.design(ctx["points"][idx])
+        lam, nsd = pooled_evidence_fit(G, Y[np.ix_(rows, idx)],
+                                       None if sigma is None else sigma[idx], prior_sd)
+        hyper = {"lam": lam, "noise_sd": nsd,
+                 "how": f"pooled evidence (type-II maximum likelihood) over {len(rows)} frames "
+                        f"of the first chunk sharing the most common drop-out pattern "
+                        f"({idx.size} readings)"}
+    work.manifest["hyper"] = hyper
+    work.save()
+    return hyper
+
+
+def _count(work, status, reason):
+    counts = work.manifest.setdefault("counts", {})
+    reasons = work.manifest.setdefault("reasons", {})
+    vals, n = np.unique(status.astype(str), return_counts=True)
+    for v, c in zip(vals, n, strict=True):
+        counts[v] = counts.get(v, 0) + int(c)
+    for r in reason:
+        if r is not None:
+            key = str(r).split(":")[0].split(" at line")[0]
+            reasons[key] = reasons.get(key, 0) + 1
+
+
+def _static_chunk(inverter, chunk, last_time, kind, fmt):
+    """Everything for one chunk: statuses, estimates, the two tables."""
+    status, reason, acc, last = frame_statuses(chunk, last_time, min_readings=2)
+    n_used = np.isfinite(chunk.Y).sum(axis=1)
+    L = len(chunk)
+    cmean, csd, chi2 = np.full(L, np.nan), np.full(L, np.nan), np.full(L, np.nan)
+    ok = status == "ok"
+    if ok.any():
+        qm, qs, cm, cs, c2 = inverter.solve(chunk.Y[ok])
+        cmean[ok], csd[ok], chi2[ok] = cm, cs, c2
+        qtab = _query_table(chunk.t[ok], inverter.query_labels, qm, qs, inverter.z, kind)
+    else:
+        qtab = None
+    ftab = _frames_table(chunk, status, reason, n_used, cmean, csd, chi2, kind)
+    return ftab, qtab, status, reason, last
+
+
+def _run_static(ctx, hyper):
+    reader, work, fmt = ctx["reader"], ctx["work"], ctx["fmt"]
+    inverter = StaticInverter(ctx["domain"], ctx["points"], ctx["sigma"], hyper["lam"],
+                              hyper["noise_sd"], ctx["qpts"], s=ctx["s"], level=ctx["level"])
+    inverter.query_labels = ctx["qlabels"]
+    done = work.manifest["done"].get("static", 0)
+    last_time = work.manifest.get("last_time", -np.inf)
+    last_time = -np.inf if last_time is None else last_time
+    client = ctx.get("client")
+    bar = _progress()
+    pending = []
+
+    def finish(i, result, n):
+        nonlocal last_time
+        ftab, qtab, status, reason, _ = result
+        bio.write_table(ftab, work.part("frames", i, fmt), fmt)
+        bio.write_table(qtab if qtab is not None else _empty_query(reader.time_kind or "number"),
+                        work.part("query", i, fmt), fmt)
+        _count(work, status, reason)
+        work.manifest["done"]["static"] = i + 1
+        work.manifest["last_time"] = result[4]
+        work.manifest["n_chunks"] = i + 1
+        work.save()
+        bar.update(n)
+        _sleep_for_tests()
+
+    try:
+        for i, chunk in enumerate(reader):
+            if i < done:
+                # statuses depend on the last accepted time, restored from the manifest
+                continue
+            kind = reader.time_kind or "number"
+            if client is None:
+                res = _static_chunk(inverter, chunk, last_time, kind, fmt)
+                last_time = res[4]
+                finish(i, res, len(chunk))
+            else:
+                # statuses are cheap and sequential; the inversion runs on the cluster
+                _, _, _, nxt = frame_statuses(chunk, last_time, min_readings=2)
+                fut = client.submit(_static_chunk, inverter, chunk, last_time, kind, fmt,
+                                    pure=False)
+                last_time = nxt
+                pending.append((i, fut, len(chunk)))
+                while len(pending) > 2 * max(ctx["n_workers"], 1):
+                    j, f, n = pending.pop(0)
+                    finish(j, f.result(), n)
+        for j, f, n in pending:
+            finish(j, f.result(), n)
+    finally:
+        bar.close()
+    work.manifest.setdefault("n_chunks", done)
+    work.manifest.setdefault("counts", {})
+    work.save()
+    return {"patterns_factorised": inverter.n_factorised if client is None else None}
+
+
+def _merge(work, n_chunks, out, fmt, kind):
+    out.mkdir(parents=True, exist_ok=True)
+    for name in ("frames", "query"):
+        parts = [work.part(name, i, fmt) for i in range(n_chunks)]
+        if parts:
+            bio.merge_parts(parts, out / f"{name}.{fmt}", fmt)
+        else:
+            import pyarrow as pa
+
+            empty = _empty_query(kind) if name == "query" else _frames_table(
+                bio.Chunk(np.empty(0, np.int64), np.empty(0), np.empty((0, 0)),
+                          np.empty(0, object)), np.empty(0, object), np.empty(0, object),
+                np.empty(0), np.empty(0), np.empty(0), np.empty(0), kind)
+            del pa
+            bio.write_table(empty, out / f"{name}.{fmt}", fmt)
