@@ -98,29 +98,52 @@ def attenuation(rho, degrees):
     return rho[:, None] ** n[None, :]
 
 
+def _prior_params(info):
+    # (s, tau) recorded by the stage; for sampled hyperparameters, their posterior medians.
+    s, tau = info.get("s"), info.get("tau")
+    hyp = info.get("hyperparameters") or {}
+    if s is None and isinstance(hyp.get("s"), dict):
+        s = hyp["s"].get("median")
+    if tau is None and isinstance(hyp.get("tau"), dict):
+        tau = hyp["tau"].get("median")
+    return s, tau
+
+
 def prior_variances(estimate) -> np.ndarray:
     """Prior variance of each coefficient, from the ``s`` and ``tau`` the stage recorded.
+
+    Sampled hyperparameters (``info["hyperparameters"]`` of the MCMC stage) are plugged in at
+    their posterior medians.
 
     Raises
     ------
     ValueError
-        If the estimate's ``info`` lacks ``s`` or ``tau``.
+        If the estimate's ``info`` holds neither.
     """
-    info = estimate.info
-    if info.get("s") is None or info.get("tau") is None:
+    s, tau = _prior_params(estimate.info)
+    if s is None or tau is None:
         raise ValueError("The estimate's info must hold the prior's 's' and 'tau'. Got keys "
-                         f"{sorted(info)} instead.")
+                         f"{sorted(estimate.info)} instead.")
     d = estimate.domain
-    return SmoothnessPrior(float(info["s"]), float(info["tau"])).variances(d.eigenvalues,
-                                                                           d.degrees)
+    return SmoothnessPrior(float(s), float(tau)).variances(d.eigenvalues, d.degrees)
 
 
-def _posterior_cov(estimate) -> np.ndarray:
-    # Gaussian(-equivalent) posterior covariance: the scale matrix of a Student-t posterior is the
-    # Gaussian posterior at the estimated noise level; for draws, the sample covariance.
+def _posterior_cov(estimate, problem=None) -> np.ndarray:
+    # Gaussian(-equivalent) posterior covariance. The scale matrix of a Student-t posterior is
+    # the Gaussian posterior at the estimated noise level. For draws (hyperparameters sampled),
+    # the conditional Gaussian posterior at the plug-in hyperparameters of prior_variances:
+    # the draws' own covariance mixes over s and tau and is not comparable with one prior.
     if estimate.cov is not None:
         return estimate.cov
-    return np.atleast_2d(np.cov(estimate.draws, rowvar=False))
+    if problem is None:
+        raise ValueError("resolution of a sampled estimate needs the problem (readings); got "
+                         "problem=None.")
+    v = prior_variances(estimate)
+    G, _ = _design(estimate, problem)
+    noise = problem.sigma if problem.sigma is not None else \
+        np.full(problem.n_readings, float(estimate.noise_sd))
+    A = np.diag(1.0 / v) + G.T @ (G / noise[:, None] ** 2)
+    return linalg.inv(0.5 * (A + A.T), overwrite_a=True)
 
 
 @dataclass(frozen=True)
@@ -147,8 +170,19 @@ class Resolution:
     effective_dof: float
 
 
-def resolution(estimate) -> Resolution:
+def resolution(estimate, problem=None) -> Resolution:
     r"""Model resolution and posterior-to-prior variance ratio per harmonic degree.
+
+    Parameters
+    ----------
+    estimate : Estimate
+        Needs the prior's ``s`` and ``tau`` in ``info`` (or sampled hyperparameters).
+    problem : LinearProblem, optional
+        Required for a sampled estimate (``draws``).
+
+    Returns
+    -------
+    Resolution
 
     Notes
     -----
@@ -157,7 +191,9 @@ def resolution(estimate) -> Resolution:
               \operatorname{tr} R = \text{effective degrees of freedom}.
 
     For a Student-t posterior (noise level estimated) the scale matrix is used: it is the
-    Gaussian posterior at the estimated noise level, for which the identity holds. For all
+    Gaussian posterior at the estimated noise level, for which the identity holds. For a
+    sampled estimate (``problem`` then required) it is the Gaussian posterior conditional on
+    the posterior-median hyperparameters. For all
     sensors on the rim, equally spaced, with :math:`2N+1 < M` and equal noise :math:`\sigma`,
     :math:`G^\top G = \operatorname{diag}(M, M/2, \ldots)` and the ratio is
     :math:`1/(1 + M v_n/(2\sigma^2))` for :math:`n \ge 1` [1]_.
@@ -168,7 +204,7 @@ def resolution(estimate) -> Resolution:
            Problems*, 3rd ed., 2018, §4.4.
     """
     v = prior_variances(estimate)
-    post = np.diag(_posterior_cov(estimate))
+    post = np.diag(_posterior_cov(estimate, problem))
     col_ratio = post / v
     col_res = 1.0 - col_ratio
     deg = np.asarray(estimate.domain.degrees)
@@ -560,14 +596,22 @@ def _reading_radius(problem):
     return np.linalg.norm(p - np.asarray(d.center, float)[None, :], axis=1) / d.radius
 
 
+def _design(estimate, problem):
+    # The estimate's own basis (a stage may fit at another truncation than the problem's).
+    d = estimate.domain
+    if problem.G.shape[1] == len(d.degrees):
+        return problem.G, np.asarray(d.degrees)
+    return d.design(problem.points), np.asarray(d.degrees)
+
+
 def _null_precision(estimate, problem, noise):
     # P0 = C^-1 - C^-1 X0 (X0' C^-1 X0)^-1 X0' C^-1: the precision of the readings with the
     # degree-0 columns (broad prior) as fixed effects; it is the limit of C^-1 as their prior
     # variance grows without bound.
     v = prior_variances(estimate)
-    deg = np.asarray(problem.degrees)
+    G, deg = _design(estimate, problem)
     fixed = deg == 0
-    G1, X0 = problem.G[:, ~fixed], problem.G[:, fixed]
+    G1, X0 = G[:, ~fixed], G[:, fixed]
     C = (G1 * v[~fixed]) @ G1.T + np.diag(noise**2)
     cf = linalg.cho_factor(C, lower=True)
     Ci = linalg.cho_solve(cf, np.eye(len(C)))
@@ -635,8 +679,8 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA) -> ModelCheck:
     loo_sd = 1.0 / np.sqrt(dP)
     loo_mean = y - Py / dP
     loo_z = Py / np.sqrt(dP)
-    fitted = problem.G @ estimate.mean if estimate.draws is None else \
-        problem.G @ estimate.draws.mean(axis=0)
+    G, _ = _design(estimate, problem)
+    fitted = G @ (estimate.mean if estimate.draws is None else estimate.draws.mean(axis=0))
     std_res = (y - fitted) / noise
     q = float(y @ Py)
     dof = m - p0
@@ -790,12 +834,12 @@ def diagnose(estimate, problem, *, level=0.9, threshold=None, rng=None) -> Diagn
     """
     d = estimate.domain
     disk = getattr(d, "kind", "disk") == "disk"
-    has_prior = estimate.info.get("s") is not None and estimate.info.get("tau") is not None
+    has_prior = None not in _prior_params(estimate.info)
     res = radial = gaps = check = None
     at = {}
     warn = []
     if has_prior and disk:
-        res = resolution(estimate)
+        res = resolution(estimate, problem)
         radii = (1.0, 0.9, 0.75, 0.5, 0.25)
         deg = resolved_degree(estimate, radii, n_readings=problem.n_readings)
         at = {f"{r:.2f}": int(k) for r, k in zip(radii, deg)}

@@ -184,14 +184,19 @@ def plot_depth(fig, estimate, problem, diagnostics, unit=""):
         ax.set_ylabel("highest resolved degree n")
         ax.set_title(f"resolved by {problem.n_readings} sensors")
         ax = axes[2]
-        ax.bar(res.degree, res.variance_ratio, color=_BAND, edgecolor=_LINE,
+        # Show the degrees where the data matter, and a few beyond (the rest is prior).
+        low = np.flatnonzero(res.resolution < 0.02)
+        top = int(min(res.degree[-1], max(12, 2 * low[0] if low.size else res.degree[-1])))
+        k = res.degree <= top
+        ax.bar(res.degree[k], res.variance_ratio[k], color=_BAND, edgecolor=_LINE,
                label="posterior / prior variance")
-        ax.plot(res.degree, res.resolution, "o-", color=_WARN, ms=3, label="resolution")
+        ax.plot(res.degree[k], res.resolution[k], "o-", color=_WARN, ms=3, label="resolution")
         ax.axhline(0.5, color="grey", lw=0.7, ls=":")
         ax.set_ylim(0, 1.05)
-        ax.set_xlabel("harmonic degree n")
+        ax.set_xlabel("harmonic degree n" + (f" (up to {top} of {res.degree[-1]})"
+                                              if top < res.degree[-1] else ""))
         ax.set_title(f"per harmonic (effective dof {res.effective_dof:.1f})")
-        ax.legend(fontsize=7)
+        ax.legend(fontsize=7, loc="center right")
     else:
         for ax in axes[1:3]:
             ax.set_axis_off()
@@ -264,19 +269,27 @@ def _trace_arrays(posterior, max_vars=6):
     return out
 
 
-def plot_traces(fig, posterior):
-    """MCMC traces of the scalar posterior variables, one colour per chain; returns False when
-    the posterior has none."""
-    arrays = _trace_arrays(posterior)
+def plot_traces(fig, posterior, max_chains=8):
+    """MCMC traces of the sampled scalar posterior variables (up to ``max_chains`` chains, one
+    colour each) beside a histogram of all draws; returns False when there is nothing to draw.
+    """
+    arrays = [(n, a) for n, a in _trace_arrays(posterior) if np.ptp(a) > 0]
     if not arrays:
         return False
-    axes = np.atleast_1d(fig.subplots(len(arrays), 1, sharex=True))
-    for ax, (name, a) in zip(axes, arrays):
-        for ch in a:
-            ax.plot(ch, lw=0.5, alpha=0.8)
+    axes = np.atleast_2d(fig.subplots(len(arrays), 2, width_ratios=[3, 1], squeeze=False))
+    for (ax, axh), (name, a) in zip(axes, arrays):
+        for ch in a[:max_chains]:
+            ax.plot(ch, lw=0.7, alpha=0.85)
         ax.set_ylabel(name, fontsize=8)
-    axes[-1].set_xlabel("draw (after burn-in)")
-    axes[0].set_title("MCMC traces (one line per chain)")
+        axh.hist(a.ravel(), bins=40, orientation="horizontal", color=_BAND, edgecolor=_LINE,
+                 lw=0.3)
+        axh.set_ylim(ax.get_ylim())
+        axh.set_yticklabels([])
+    n_ch = min(len(arrays[0][1]), max_chains)
+    axes[-1, 0].set_xlabel("draw (after burn-in and thinning)")
+    axes[-1, 1].set_xlabel("draws (all chains)")
+    axes[0, 0].set_title(f"MCMC traces ({n_ch} of {len(arrays[0][1])} chains shown)")
+    axes[0, 1].set_title("distribution")
     return True
 
 

@@ -211,3 +211,20 @@ def test_maximum_principle_rim_grid_suffices():
     T = float(np.median(top_rim))
     res = max_exceedance(est, T, n_draws=300, n_rim=720, rng=11)
     assert res.probability >= np.mean(top_in > T)
+
+
+def test_sampled_estimate_uses_conditional_posterior_at_median_hyperparameters(designed):
+    # For draws (hyperparameters sampled) the resolution is that of the Gaussian posterior
+    # conditional on the posterior-median s and tau, so with the medians of the designed case
+    # it must reproduce the same Fourier closed form (rtol 1e-8, algebra).
+    pb, est = designed
+    draws = est.sample(500, rng=0)
+    info = {"hyperparameters": {"s": {"median": 2.0}, "tau": {"median": 1 / np.sqrt(LAM)}}}
+    sampled = Estimate(mean=draws.mean(axis=0), draws=draws, domain=pb.domain, method="mcmc",
+                       noise_sd=SIGMA, info=info)
+    with pytest.raises(ValueError, match="needs the problem"):
+        resolution(sampled)
+    res = resolution(sampled, pb)
+    n = np.arange(1, N + 1)
+    vn = (1 + n**2.0) ** -2.0 / LAM
+    assert res.variance_ratio[1:] == pytest.approx(1 / (1 + M * vn / (2 * SIGMA**2)), rel=1e-8)
