@@ -5,7 +5,9 @@ Cite the methods you use (see the ``References`` section of each stage) and this
 """
 
 from ._validation import InputError
+from .advise import SensorAdvice
 from .ball import Ball, ball_poisson_kernel, poisson_kernel_nd, real_sph_harm
+from .diagnose import Diagnostics, ModelCheck, ModelCheckWarning, model_check
 from .domain import Disk, DomainError, arc_harmonic_measure, poisson_kernel
 from .prior import SmoothnessPrior, truncation_degree
 from .problem import Estimate, LinearProblem, PointSummary
@@ -22,6 +24,11 @@ __all__ = [
     "Estimate",
     "FitWarning",
     "InputError",
+    "Diagnostics",
+    "ModelCheck",
+    "ModelCheckWarning",
+    "SensorAdvice",
+    "model_check",
     "LinearProblem",
     "PointSummary",
     "RULES",
