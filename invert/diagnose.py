@@ -724,7 +724,8 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA) -> ModelCheck:
         flagged = bool(min(pvals) < cut)
         parts = []
         if np.isfinite(chi2_p):
-            parts.append(f"residual chi2 = {chi2:.1f} on {dof} dof, p = {chi2_p:.3g}")
+            parts.append(f"chi2 of residuals and smoothness penalty = {chi2:.1f} on {dof} dof, "
+                         f"p = {chi2_p:.3g}")
         if np.isfinite(src_p):
             parts.append(f"interior excess over the harmonic field {kappa:.3g} ± {se:.2g} at the "
                          f"centre, p = {src_p:.3g}")

@@ -468,12 +468,22 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
                      + "</ul>")
 
     parts.append("<h2>Summary</h2>")
+    if chk is not None and chk.flagged:
+        parts.append("<div class='verdict fail'>The intervals below assume a source-free "
+                     "harmonic field, which the model check rejects: they are too narrow and "
+                     "must not be relied on.</div>")
     if disk:
         d = estimate.domain
-        key = [("centre", d.from_polar(0.0, 0.0))]
-        s = estimate.at(key[0][1], level)
-        rows = [["centre (0, 0)", _fmt(s.mean[0]), _fmt(s.sd[0], 3),
-                 f"{_fmt(s.lower[0])} to {_fmt(s.upper[0])}"]]
+        lu = f" {length_unit}" if length_unit else ""
+        c0 = d.from_polar(0.0, 0.0)
+        s = estimate.at(c0, level)
+        rows = []
+        has_centre = query is not None and np.any(
+            np.hypot(*(np.asarray(query[0]) - c0).T) < 1e-9 * d.radius)
+        if not has_centre:
+            rows.append([f"centre ({_fmt(c0[0, 0], 3)}, {_fmt(c0[0, 1], 3)}{lu})",
+                         _fmt(s.mean[0]), _fmt(s.sd[0], 3),
+                         f"{_fmt(s.lower[0])} to {_fmt(s.upper[0])}"])
         b = estimate.boundary(720, level)
         i, j = int(np.argmax(b["mean"])), int(np.argmin(b["mean"]))
         for name, k in (("rim maximum of the estimate", i), ("rim minimum of the estimate", j)):
@@ -484,7 +494,7 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
             qs = estimate.at(qp, level)
             for k, lab in enumerate(ql):
                 rows.append([f"{html.escape(str(lab))} ({_fmt(qp[k, 0], 3)}, {_fmt(qp[k, 1], 3)}"
-                             f"{' ' + length_unit if length_unit else ''})", _fmt(qs.mean[k]),
+                             f"{lu})", _fmt(qs.mean[k]),
                              _fmt(qs.sd[k], 3), f"{_fmt(qs.lower[k])} to {_fmt(qs.upper[k])}"])
         parts.append(_table(["where", f"estimate{u}", f"sd{u}", f"{lvl} interval{u}"], rows))
     mx = diagnostics.max_exceed
@@ -501,7 +511,7 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
                      ("s", "smoothness order s"), ("tau", f"prior scale τ{u}"),
                      ("noise_sd", f"estimated noise sd{u}"), ("effective_dof",
                                                                "effective degrees of freedom"),
-                     ("chi2", "χ² of the residuals"), ("residual_dof", "residual dof")):
+                     ("chi2", "χ² of the residuals alone"), ("residual_dof", "residual dof")):
         if info.get(k) is not None:
             fit_rows.append([label, _fmt(info[k])])
     fit_rows.append(["readings used / sensors without reading",
