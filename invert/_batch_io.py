@@ -143,7 +143,7 @@ class LogReader:
         with open(self.path, "rb") as fh:
             head = fh.read(1 << 16)
         lines = max(head.count(b"\n"), 1)
-        block = int(min(max(len(head) / lines * self.chunk_rows, 1 << 16), 1 << 30))
+        block = int(min(max(len(head) / lines * self.chunk_rows, 1 << 12), 1 << 30))
         opts = pcsv.ReadOptions(block_size=block, use_threads=True, encoding="utf8",
                                 skip_rows=self.skip_rows)
         conv = pcsv.ConvertOptions(column_types={n: pa.string() for n in self.raw_names},
