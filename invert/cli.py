@@ -58,6 +58,14 @@ def _add_fit_options(p):
     p.add_argument("--noise-sd", type=_positive("--noise-sd"), default=None,
                    help="fix the common noise sd instead of estimating it (with --lam)")
     p.add_argument("--grid", type=int, default=81, help="interior grid size (default: 81)")
+    p.add_argument("--fix-smoothness", action="store_true",
+                   help="gaussian/mcmc: hold s at --smoothness instead of estimating it")
+    p.add_argument("--faulty", action="store_true",
+                   help="mcmc: model each reading as good or faulty; report fault probabilities")
+    p.add_argument("--angle-sd", type=_positive("--angle-sd"), default=None, metavar="DEG",
+                   help="mcmc: sd (degrees) of each sensor's angle error, integrated over")
+    p.add_argument("--max-steps", type=int, default=20000,
+                   help="mcmc: step cap per ensemble (default: 20000)")
     _add_report_options(p)
 
 
@@ -152,6 +160,19 @@ def _add_batch_parser(sub):
 
 def _fit_options(args):
     opts = {}
+    if getattr(args, "method", "tikhonov") in ("gaussian", "mcmc"):
+        if args.lam is not None or args.noise_sd is not None:
+            raise ValueError("--lam and --noise-sd belong to --method tikhonov")
+        if args.fix_smoothness:
+            opts["s"] = args.smoothness
+        if args.method == "mcmc":
+            if args.max_steps < 1:
+                raise ValueError(f"--max-steps must be >= 1, got {args.max_steps}")
+            opts.update(faulty=args.faulty, angle_sd_deg=args.angle_sd,
+                        max_steps=args.max_steps)
+        elif args.faulty or args.angle_sd is not None:
+            raise ValueError("--faulty and --angle-sd belong to --method mcmc")
+        return opts
     if args.lam is not None:
         opts.update(rule="fixed", lam=args.lam, noise_sd=args.noise_sd)
     elif args.noise_sd is not None:
@@ -193,7 +214,7 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
         warnings.simplefilter("ignore")
         estimate = workflow.run_stage(problem, method, s=smoothness, seed=seed,
                                       **(stage_options or {}))
-    estimate, diag = _diagnose(estimate, problem, level, threshold, seed)
+    estimate, diag = _diagnose(estimate, problem, level, threshold, seed, q)
     with staged_output(out) as stage:
         summary = write_fit_outputs(stage, estimate, problem, readings, level=level, query=q,
                                     grid=grid, summary_extra={"seed": seed, "unit": unit,
@@ -210,7 +231,7 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
     return summary
 
 
-def _diagnose(estimate, problem, level, threshold, seed):
+def _diagnose(estimate, problem, level, threshold, seed, query=None):
     # Diagnostics of the fit; a failed model check goes first in the estimate's warnings.
     import dataclasses
 
@@ -218,7 +239,9 @@ def _diagnose(estimate, problem, level, threshold, seed):
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        diag = diagnose(estimate, problem, level=level, threshold=threshold, rng=seed)
+        diag = diagnose(estimate, problem, level=level, threshold=threshold, rng=seed,
+                        query=None if query is None else query[0],
+                        labels=None if query is None else query[1])
     if diag.warnings:
         estimate = dataclasses.replace(estimate,
                                        warnings=tuple(diag.warnings) + tuple(estimate.warnings))

@@ -788,6 +788,7 @@ class Diagnostics:
     max_exceed: MaxExceedance | None
     threshold: float | None
     warnings: tuple = ()
+    gap_labels: tuple = ()
 
     def to_dict(self) -> dict:
         """The ``diagnostics`` block of ``summary.json``."""
@@ -802,15 +803,23 @@ class Diagnostics:
                 "resolved_degree_at_relative_radius": self.resolved_degree_at,
             }
         if self.radial is not None:
-            out["depth"]["posterior_sd_rms_at_relative_radius"] = {
+            out.setdefault("depth", {})["posterior_sd_rms_at_relative_radius"] = {
                 f"{rr:.2f}": float(v) for rr, v in zip(self.radial.rho[::10],
                                                        self.radial.rms_sd[::10])}
         if self.gaps is not None:
             out["gaps"] = {
                 "unsensed_arcs_deg": np.rad2deg(self.gaps.arcs).tolist(),
-                "share_at_centre": float(self.gaps.share[0]),
-                "definition": "Poisson-kernel mass over rim arcs farther than half a sensor "
-                              "spacing from any working rim sensor",
+                "share_at_centre": float(np.sum(arc_harmonic_measure(
+                    0.0, self.gaps.arcs[:, 0], self.gaps.arcs[:, 1]))),
+                "points": [
+                    {"label": lab, "x": float(p[0]), "y": float(p[1]), "share": float(sh),
+                     "half_mass_arc_deg": float(w)}
+                    for lab, p, sh, w in zip(self.gap_labels, self.gaps.points,
+                                             self.gaps.share, self.gaps.half_mass_width_deg)],
+                "definition": "share: Poisson-kernel mass over rim arcs farther than half a "
+                              "sensor spacing from any working rim sensor; half_mass_arc_deg: "
+                              "width of the rim arc below the point holding half its kernel "
+                              "mass",
             }
         if self.max_exceed is not None:
             e = self.max_exceed
@@ -826,9 +835,31 @@ class Diagnostics:
         return out
 
 
-def diagnose(estimate, problem, *, level=0.9, threshold=None, rng=None) -> Diagnostics:
+def diagnose(estimate, problem, *, level=0.9, threshold=None, query=None, labels=None,
+             rng=None) -> Diagnostics:
     """Compute every diagnostic of a fit that the domain supports.
 
+    Parameters
+    ----------
+    estimate : Estimate
+    problem : LinearProblem
+    level : float, default=0.9
+        Level of the interval of the maximum (with ``threshold``).
+    threshold : float, optional
+        Adds the probability that the maximum exceeds it (:func:`max_exceedance`).
+    query : ndarray of shape (n_points, 2), optional
+        Points whose dependence on gaps is reported (the centre always is).
+    labels : sequence of str, optional
+        Names of the query points.
+    rng : None, int or Generator
+        For the exceedance draws.
+
+    Returns
+    -------
+    Diagnostics
+
+    Notes
+    -----
     On a ball only the model check and the exceedance probability are computed (the depth and
     gap diagnostics are written for the disk). Warnings found (a failed model check, suspect
     sensors) are returned in ``warnings`` and issued as :class:`ModelCheckWarning`.
@@ -844,11 +875,19 @@ def diagnose(estimate, problem, *, level=0.9, threshold=None, rng=None) -> Diagn
         radii = (1.0, 0.9, 0.75, 0.5, 0.25)
         deg = resolved_degree(estimate, radii, n_readings=problem.n_readings)
         at = {f"{r:.2f}": int(k) for r, k in zip(radii, deg)}
+    names = ["centre"]
     if disk:
         radial = radial_sd_profile(estimate)
-        gaps = gap_dependence(problem, np.vstack([d.from_polar(0.0, 0.0),
-                                                  d.from_polar(0.5, np.linspace(0, 2 * np.pi, 8,
-                                                                                endpoint=False))]))
+        pts = d.from_polar(0.0, 0.0)
+        if query is not None and len(query):
+            q = np.asarray(query, float)
+            qn = [str(x) for x in labels] if labels is not None else \
+                [f"p{k + 1}" for k in range(len(q))]
+            if np.any(np.hypot(*(q - pts).T) < 1e-9 * d.radius):
+                pts, names = q, qn  # the user already asks about the centre
+            else:
+                pts, names = np.vstack([pts, q]), names + qn
+        gaps = gap_dependence(problem, pts)
     if has_prior:
         check = model_check(estimate, problem)
         if check.flagged:
@@ -861,4 +900,4 @@ def diagnose(estimate, problem, *, level=0.9, threshold=None, rng=None) -> Diagn
         mx = max_exceedance(estimate, float(threshold), level=level, rng=rng)
     for w in warn:
         warnings.warn(w, ModelCheckWarning, stacklevel=2)
-    return Diagnostics(res, at, radial, gaps, check, mx, threshold, tuple(warn))
+    return Diagnostics(res, at, radial, gaps, check, mx, threshold, tuple(warn), tuple(names))

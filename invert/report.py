@@ -310,8 +310,10 @@ def write_figures(out_dir, estimate, problem, readings=None, level=0.9, unit="",
     """
     out = Path(out_dir)
     if getattr(estimate.domain, "kind", "disk") == "ball":
-        from .report_ball import write_figures_ball
-
+        try:
+            from .report_ball import write_figures_ball
+        except ImportError:  # figures for the ball not available in this installation
+            return []
         before = set(out.glob("*.png"))
         made = write_figures_ball(out, estimate, problem, readings, level)
         paths = [Path(p) for p in made] if made else sorted(set(out.glob("*.png")) - before)
@@ -526,12 +528,22 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
                      f"{problem.n_readings} sensors resolves at relative radius r/R: " +
                      ", ".join(f"{k}: {v}" for k, v in rd.items()) + ". Effective degrees of "
                      f"freedom {diagnostics.resolution.effective_dof:.1f}.</p>")
-    if disk and diagnostics.gaps is not None and len(diagnostics.gaps.arcs):
-        arcs = "; ".join(f"{a:.0f}° to {b:.0f}°" for a, b in np.rad2deg(diagnostics.gaps.arcs))
-        parts.append(f"<p>Unsensed rim arcs: {arcs}. At the centre "
-                     f"{100 * diagnostics.gaps.share[0]:.0f} % of the Poisson-kernel weight falls "
-                     "on them.</p>")
-
+    g = diagnostics.gaps
+    if disk and g is not None:
+        if len(g.arcs):
+            arcs = "; ".join(f"{a:.0f}° to {b:.0f}°" for a, b in np.rad2deg(g.arcs))
+            parts.append(f"<p>Unsensed rim arcs (farther than half a sensor spacing from any "
+                         f"working rim sensor): {arcs}.</p>")
+        else:
+            parts.append("<p>Every part of the rim is within half a sensor spacing of a working "
+                         "sensor.</p>")
+        labels = diagnostics.gap_labels or [f"p{k}" for k in range(len(g.share))]
+        lu = f" {length_unit}" if length_unit else ""
+        rows = [[f"{html.escape(str(lab))} ({_fmt(p[0], 3)}, {_fmt(p[1], 3)}{lu})",
+                 f"{100 * sh:.1f} %", f"{w:.0f}°"]
+                for lab, p, sh, w in zip(labels, g.points, g.share, g.half_mass_width_deg)]
+        parts.append(_table(["dependence on gaps at", "kernel weight on unsensed arcs",
+                             "width of the rim arc holding half the weight"], rows))
     parts.append("<h2>Figures</h2>")
     for path, cap in figs:
         data = base64.b64encode(Path(path).read_bytes()).decode("ascii")

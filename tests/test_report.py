@@ -55,6 +55,20 @@ def test_every_figure_embedded_and_every_caution_present(demo_report):
     assert "estimate °C" in doc and "90 % interval °C" in doc
     assert "id='verdict'" in doc
     assert "exceeds <b>95 °C</b> anywhere" in doc
+    # Dependence on gaps for every query point (the demo asks about the centre itself, so it
+    # is not repeated), with the half-mass arc width 4 arctan((1-rho)/(1+rho)) (Garnett &
+    # Marshall ch. I; checked by quadrature in test_diagnose).
+    import json
+
+    summary = json.loads((demo_report / "summary.json").read_text())
+    gaps = summary["diagnostics"]["gaps"]
+    assert [p["label"] for p in gaps["points"]] == ["centre", "hot_side", "cold_side",
+                                                    "gap_edge", "near_gap_rim"]
+    for p in gaps["points"]:
+        rho = np.hypot(p["x"], p["y"]) / 0.25
+        assert p["half_mass_arc_deg"] == pytest.approx(
+            np.rad2deg(4 * np.arctan((1 - rho) / (1 + rho))), rel=1e-12)
+    assert "width of the rim arc holding half the weight" in doc
     # No script and no external resource: the report is self-contained.
     assert "<script" not in doc and "http://" not in doc and "https://" not in doc
 
