@@ -228,3 +228,33 @@ def test_sampled_estimate_uses_conditional_posterior_at_median_hyperparameters(d
     n = np.arange(1, N + 1)
     vn = (1 + n**2.0) ** -2.0 / LAM
     assert res.variance_ratio[1:] == pytest.approx(1 / (1 + M * vn / (2 * SIGMA**2)), rel=1e-8)
+
+
+@pytest.mark.slow
+def test_max_exceedance_is_calibrated():
+    # Calibration with known truth: truths drawn from the prior the fit uses (tau known, so the
+    # Gaussian posterior is exact), a fixed threshold. If the probabilities are right, the
+    # number of truths whose maximum exceeds T is a sum of independent Bernoulli(p_k), mean
+    # sum p_k and variance sum p_k (1 - p_k); allow 3 sd plus the Monte-Carlo error of p_k.
+    rng = np.random.default_rng(123)
+    tau, T, n_trials = 1.0, 0.8, 150
+    d = Disk(1.0, (0.0, 0.0), 8)
+    v = SmoothnessPrior(2.0, tau).variances(d.eigenvalues, d.degrees)
+    rim, _ = d.rim_grid(720)
+    Hrim = d.design(rim)
+    th = 2 * np.pi * np.arange(12) / 12
+    pts = np.vstack([d.from_polar(1.0, th), d.from_polar([0.3, 0.6], [1.0, 4.0])])
+    hits, probs = [], []
+    for _ in range(n_trials):
+        c = rng.normal(size=d.n_coef) * np.sqrt(v)
+        c[0] = 0.0
+        y = d.design(pts) @ c + 0.3 * rng.normal(size=len(pts))
+        y[[2, 3]] = np.nan  # two failed sensors: a real gap for the posterior to be unsure of
+        r = Readings(pts, y, np.full(len(y), 0.3), np.array([f"s{i}" for i in range(len(y))]))
+        est = Tikhonov("fixed", lam=1 / tau**2).fit(LinearProblem.from_readings(r, d))
+        probs.append(max_exceedance(est, T, n_draws=1000, rng=rng).probability)
+        hits.append((Hrim @ c).max() > T)
+    probs, hits = np.array(probs), np.array(hits)
+    assert 0.15 < probs.mean() < 0.85  # the threshold is informative, not trivial
+    sd = np.sqrt(np.sum(probs * (1 - probs)) + n_trials * 0.25 / 1000)
+    assert abs(hits.sum() - probs.sum()) < 3 * sd
