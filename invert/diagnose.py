@@ -429,9 +429,10 @@ def exceedance_probability(estimate, points, threshold) -> np.ndarray:
     if estimate.draws is not None:
         U = estimate.draws @ estimate.domain.design(pts).T
         return np.mean(U > threshold, axis=0)
-    s = estimate.at(pts)
-    scale = s.sd / np.sqrt(estimate._var_factor) if estimate.df is not None else s.sd
-    z = (threshold - s.mean) / np.where(scale > 0, scale, np.finfo(float).tiny)
+    H = estimate.domain.design(pts)
+    mean = H @ estimate.mean
+    scale = np.sqrt(np.sum((H @ estimate._root) ** 2, axis=1))  # sqrt(h' Sigma h)
+    z = (threshold - mean) / np.where(scale > 0, scale, np.finfo(float).tiny)
     return stats.norm.sf(z) if estimate.df is None else stats.t.sf(z, estimate.df)
 
 

@@ -258,3 +258,21 @@ def test_max_exceedance_is_calibrated():
     assert 0.15 < probs.mean() < 0.85  # the threshold is informative, not trivial
     sd = np.sqrt(np.sum(probs * (1 - probs)) + n_trials * 0.25 / 1000)
     assert abs(hits.sum() - probs.sum()) < 3 * sd
+
+
+def test_pointwise_exceedance_student_t_when_noise_is_estimated():
+    # With the noise level estimated the posterior is Student-t on the residual dof: P(u > T)
+    # = t.sf((T - mean)/scale, df), scale = sd / sqrt(df/(df-2)) (variance of a t
+    # distribution); scipy.stats.t as the oracle, rtol 1e-10 (algebra).
+    th = 2 * np.pi * np.arange(20) / 20
+    d = Disk(1.0, (0.0, 0.0), 6)
+    pts = d.from_polar(1.0, th)
+    y = np.cos(th) + 0.1 * np.random.default_rng(2).normal(size=20)
+    r = Readings(pts, y, None, np.array([f"s{i}" for i in range(20)]))
+    est = Tikhonov("evidence").fit(LinearProblem.from_readings(r, d))
+    assert est.df is not None
+    q = np.array([[0.95, 0.0], [0.2, 0.5]])
+    s = est.at(q)
+    scale = s.sd / np.sqrt(est.df / (est.df - 2))
+    expected = stats.t.sf((0.9 - s.mean) / scale, est.df)
+    assert exceedance_probability(est, q, 0.9) == pytest.approx(expected, rel=1e-10)
