@@ -84,15 +84,17 @@ __all__ = [
 #: Omitted share of the prior surface variance accepted when the truncation degree of a ball is
 #: chosen from the smoothness (:func:`invert.prior.truncation_degree`). On the sphere the tail
 #: of :math:`\sum_\ell (2\ell+1)(1+\ell(\ell+1))^{-s}` decays only like :math:`L^{2-2s}`, so the
-#: disk's 1e-4 would ask for L = 136 (18 769 columns) at s = 2. 5e-3 leaves the prior surface sd
-#: low by 0.25 %; inside the ball degree l is further damped by rho^l.
-BALL_TRUNCATION_TOL = 5e-3
+#: disk's 1e-4 would ask for L = 136 (18 769 columns) at s = 2; 2e-3 is reached at L = 26 for
+#: s = 2 (then capped), L = 10 for s = 2.5 and the minimum 8 for s >= 3.
+BALL_TRUNCATION_TOL = 2e-3
 
-#: Cap on the truncation degree of a ball: (20 + 1)^2 = 441 columns. With a few dozen sensors on
-#: the shell, degrees above about sqrt(n_sensors) are fixed by the prior alone, and 441 columns
-#: keep the posterior covariance and grid evaluations cheap. Raising the degree changes interior
-#: values negligibly (tests/test_ball.py checks L = 20 against L = 28).
-BALL_MAX_DEGREE = 20
+#: Cap on the truncation degree of a ball: (24 + 1)^2 = 625 columns, which keeps the posterior
+#: covariance and grid evaluations cheap. Surface sensors see the whole omitted tail, so fits
+#: converge slowly in L: in seeded shell scenarios (about 35 sensors, s = 2, truth of degree 40)
+#: going from L = 24 to L = 32 moved interior means by <= 0.02 posterior sd and sds by <= 1.7 %
+#: (tests/test_ball.py), against up to 0.2 sd and 5 % between L = 20 and L = 44. Force a larger
+#: ``n_modes`` when the readings are very precise.
+BALL_MAX_DEGREE = 24
 
 #: Points are evaluated in blocks of this many rows (a block of the complex harmonics table has
 #: (L+1)(2L+1) rows).
@@ -384,14 +386,17 @@ class Ball:
                                    np.deg2rad(lon_deg))
 
     # --- design matrices -------------------------------------------------------------------
-    def _solid(self, xi, n_modes=None) -> np.ndarray:
+    def _solid(self, xi, n_modes=None, *, negative=True) -> np.ndarray:
         r"""Complex solid harmonics :math:`\sqrt{4\pi}\rho^\ell Y_\ell^m`, shape
-        ``(L+1, 2L+1, n)``; order ``m`` sits at index ``m`` (negative ``m`` from the end)."""
+        ``(L+1, 2L+1, n)``; order ``m`` sits at index ``m`` (negative ``m`` from the end).
+        With ``negative=False`` only the orders ``m >= 0`` are kept, shape ``(L+1, L+1, n)``."""
         L = self.n_modes if n_modes is None else n_modes
         rho, polar, azimuth = _spherical(xi)
         Y = special.sph_harm_y_all(L, L, polar, azimuth)
-        powers = rho[None, :] ** np.arange(L + 1)[:, None]  # 0**0 = 1 keeps the centre right
-        return np.sqrt(4 * np.pi) * Y * powers[:, None, :]
+        if not negative:
+            Y = Y[:, : L + 1]
+        powers = np.sqrt(4 * np.pi) * rho[None, :] ** np.arange(L + 1)[:, None]  # 0**0 = 1
+        return Y * powers[:, None, :]
 
     def _real_columns(self, Z) -> np.ndarray:
         """Real columns (n, n_coef) from a complex table ``Z[l, m, n]`` (m >= 0 used)."""
@@ -403,7 +408,7 @@ class Ball:
         return G.T
 
     def _design_xi(self, xi) -> np.ndarray:
-        return self._real_columns(self._solid(xi))
+        return self._real_columns(self._solid(xi, negative=False))
 
     def design(self, points) -> np.ndarray:
         r"""Design matrix :math:`G` with ``G @ c`` = field values at ``points``.
