@@ -35,7 +35,7 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
     Notes
     -----
     For a ball the omitted-variance tail on the sphere decays slowly, so the truncation uses
-    ``tol=BALL_TRUNCATION_TOL`` (5e-3) and is capped at ``BALL_MAX_DEGREE`` (20, i.e. 441
+    ``tol=BALL_TRUNCATION_TOL`` (2e-3) and is capped at ``BALL_MAX_DEGREE`` (24, i.e. 625
     columns); see :mod:`invert.ball` for the reasons. ``s`` must exceed 1 on the sphere.
     """
     if kind == "ball":
