@@ -28,6 +28,7 @@ def demo_fit(tmp_path_factory):
     return code, out
 
 
+@pytest.mark.slow
 def test_fit_ball_writes_every_file(demo_fit):
     code, d = demo_fit
     assert code == 0
@@ -48,6 +49,7 @@ def test_fit_ball_writes_every_file(demo_fit):
     assert s["readings"]["n_gaps"] == 8 and s["readings"]["n_used"] == 37
 
 
+@pytest.mark.slow
 def test_fit_ball_near_the_synthetic_truth(demo_fit):
     # The demo's true field is known (datasets/make_ball_demo.py). The surface mean and centre
     # value are pinned by 37 readings (mean-value property): error < 0.3 degC against a 29 degC
@@ -68,6 +70,7 @@ def test_fit_ball_near_the_synthetic_truth(demo_fit):
     assert np.sqrt(np.mean((b["mean"] - tb["true_value"]) ** 2)) < 1.0
 
 
+@pytest.mark.slow
 def test_demo_intervals_cover_truth_without_the_dof_guard(tmp_path):
     # With known sigma the evidence rule needs no residual dof; without the guard all five
     # 90 % query intervals and >= 90 % of the surface grid contain the synthetic truth.
