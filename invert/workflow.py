@@ -35,8 +35,8 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
     Notes
     -----
     For a ball the omitted-variance tail on the sphere decays slowly, so the truncation uses
-    ``tol=BALL_TRUNCATION_TOL`` (2e-3) and is capped at ``BALL_MAX_DEGREE`` (24, i.e. 625
-    columns); see :mod:`invert.ball` for the reasons. ``s`` must exceed 1 on the sphere.
+    ``tol=BALL_TRUNCATION_TOL`` and is capped at ``BALL_MAX_DEGREE`` (values and reasons in
+    :mod:`invert.ball`). ``s`` must exceed 1 on the sphere.
     """
     if kind == "ball":
         from .ball import BALL_MAX_DEGREE, BALL_TRUNCATION_TOL, Ball
