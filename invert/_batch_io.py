@@ -24,6 +24,11 @@ from ._validation import InputError
 _NULLS = ["", "NaN", "nan", "NA", "N/A", "null", "NULL", "None", "-nan", "#N/A"]
 
 
+#: Parquet compression of the outputs: float columns of estimates hardly compress, and
+#: encoding time matters at millions of frames.
+_COMPRESSION = "none"
+
+
 @dataclass
 class Chunk:
     """One chunk of frames, in log order.
@@ -146,15 +151,28 @@ class LogReader:
         block = int(min(max(len(head) / lines * self.chunk_rows, 1 << 12), 1 << 30))
         opts = pcsv.ReadOptions(block_size=block, use_threads=True, encoding="utf8",
                                 skip_rows=self.skip_rows)
-        conv = pcsv.ConvertOptions(column_types={n: pa.string() for n in self.raw_names},
-                                   strings_can_be_null=True, null_values=_NULLS,
-                                   quoted_strings_can_be_null=True)
         parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
-        try:
-            reader = pcsv.open_csv(self.path, read_options=opts, parse_options=parse,
-                                   convert_options=conv)
-        except pa.ArrowInvalid as exc:
-            raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
+
+        def open_reader(sensor_type):
+            # the time column is always read as text (numbers or date-times); sensor columns
+            # as float64 on the fast path, as text (cell-by-cell fallback) after a failure
+            types = {n: (pa.string() if i == self.time_index else sensor_type)
+                     for i, n in enumerate(self.raw_names)}
+            conv = pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
+                                       null_values=_NULLS, quoted_strings_can_be_null=True)
+            try:
+                return pcsv.open_csv(self.path, read_options=opts, parse_options=parse,
+                                     convert_options=conv)
+            except pa.ArrowInvalid as exc:
+                if sensor_type == pa.string():
+                    raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
+                return None
+
+        reader = open_reader(pa.float64())
+        typed = reader is not None
+        if not typed:
+            reader = open_reader(pa.string())
+        done = 0  # rows yielded so far
         while True:
             try:
                 b = reader.read_next_batch()
@@ -163,7 +181,25 @@ class LogReader:
                     yield None, bad[:]
                 return
             except pa.ArrowInvalid as exc:
-                raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
+                if not typed:
+                    raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
+                # a cell that is not a number: reopen with text columns and skip the rows
+                # already delivered (the parser splits rows the same way for any types)
+                typed = False
+                reader = open_reader(pa.string())
+                skipped = 0
+                while skipped < done:
+                    b = reader.read_next_batch()
+                    if skipped + b.num_rows > done:
+                        b = b.slice(done - skipped)
+                        skipped = done
+                        bad.clear()
+                        break
+                    skipped += b.num_rows
+                else:
+                    bad.clear()
+                    continue
+            done += b.num_rows
             got, bad[:] = bad[:], []
             yield b, got
 
@@ -328,11 +364,18 @@ def _write(table, path, fmt):
     if fmt == "parquet":
         import pyarrow.parquet as pq
 
-        pq.write_table(table, path)
+        pq.write_table(table, path, compression=_COMPRESSION, use_dictionary=_dict_cols(table))
     else:
         import pyarrow.csv as pcsv
 
         pcsv.write_csv(_plain(table), path)
+
+
+def _dict_cols(table):
+    """Dictionary-encode only the label/status columns (trying it on floats is slow)."""
+    import pyarrow as pa
+
+    return [f.name for f in table.schema if pa.types.is_dictionary(f.type)]
 
 
 def _plain(table):
@@ -356,7 +399,8 @@ def merge_parts(parts, path, fmt):
             for p in parts:
                 t = pq.read_table(p)
                 if writer is None:
-                    writer = pq.ParquetWriter(tmp, t.schema)
+                    writer = pq.ParquetWriter(tmp, t.schema, compression=_COMPRESSION,
+                                              use_dictionary=_dict_cols(t))
                 writer.write_table(t)
         finally:
             if writer is not None:

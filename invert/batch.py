@@ -45,6 +45,7 @@ import threading
 import time as _time
 from collections import OrderedDict
 from pathlib import Path
+from types import SimpleNamespace
 
 import numpy as np
 from scipy import optimize, stats
@@ -144,6 +145,9 @@ class StaticInverter:
         self.level = level
         self.z = float(stats.norm.ppf((1 + level) / 2))
         self.G = domain.design(self.points)
+        # checked once here: the layout as a LinearProblem (positive sigma, shapes)
+        LinearProblem(self.G, np.zeros(len(self.G)), self.sigma, domain.degrees,
+                      domain.eigenvalues, domain)
         self.Hq = domain.design(self.query)
         self.prior_sd = np.sqrt(SmoothnessPrior(s=s).shape(domain.eigenvalues, domain.degrees))
         self.max_patterns = max_patterns
@@ -167,19 +171,33 @@ class StaticInverter:
                 self._cache.move_to_end(key)
                 return hit
         idx = np.flatnonzero(obs)
-        problem = LinearProblem(self.G[idx], np.zeros(idx.size),
-                                None if self.sigma is None else self.sigma[idx],
-                                self.domain.degrees, self.domain.eigenvalues, self.domain)
-        spec = Spectrum(problem, self.prior_sd)
-        f = spec._f(self.lam)[:, 0]
-        w = problem.weights
+        w = np.ones(idx.size) if self.sigma is None else 1.0 / self.sigma[idx]
+        # Spectrum's standard form (same SVD driver, same rank cut-off), only the parts needed
+        d = self.prior_sd
+        U, sv, Vt = np.linalg.svd((w[:, None] * self.G[idx]) * d[None, :], full_matrices=True)
+        k = int(np.sum(sv > sv[0] * 1e-13)) if sv.size else 0
+        U, sv = U[:, :k], sv[:k]
+        f = sv**2 / (sv**2 + self.lam)
         # c = D V diag(f/s) U^T W y  (Spectrum.coef written as a matrix acting on y)
-        Mc = ((spec.d[:, None] * spec.Vt.T) * (f / spec.s)[None, :]) @ (spec.U.T * w[None, :])
-        cov = spec.cov(self.lam, self.noise_var)
+        Mc = ((d[:, None] * Vt[:k].T) * (f / sv)[None, :]) @ (U.T * w[None, :])
         Mq = self.Hq @ Mc
-        qsd = np.sqrt(np.clip(np.einsum("ij,jk,ik->i", self.Hq, cov, self.Hq), 0, None))
-        Rw = w[:, None] * (np.eye(idx.size) - self.G[idx] @ Mc)
-        entry = (idx, Mq, qsd, Mc[0], float(np.sqrt(max(cov[0, 0], 0))), Rw)
+        # covariance B diag(h) B^T with B = D V (full V), h = 1/(s^2 + lam) on the range and
+        # 1/lam on the null space (Spectrum.cov_factor): variances as weighted row sums
+        B = d[:, None] * Vt.T
+        h = np.concatenate([1.0 / (sv**2 + self.lam), np.full(len(d) - k, 1.0 / self.lam)])
+        HB = self.Hq @ B
+        qsd = np.sqrt(self.noise_var * ((HB**2) @ h))
+        c0sd = float(np.sqrt(self.noise_var * ((B[0] ** 2) @ h)))
+        # whitened residual W(I - G M) y = (I - U diag(f) U^T) W y
+        Rw = (np.eye(idx.size) - (U * f[None, :]) @ U.T) * w[None, :]
+        # one matrix acting on the full reading vector (zeros at missing sensors):
+        # rows = query means, mean level, whitened residuals (padded to n_sensors rows)
+        n = len(self.points)
+        A = np.zeros((len(Mq) + 1 + n, n))
+        A[:len(Mq), idx] = Mq
+        A[len(Mq), idx] = Mc[0]
+        A[len(Mq) + 1:len(Mq) + 1 + idx.size, idx] = Rw
+        entry = (A, np.append(qsd, c0sd))
         with self._lock:
             self._cache[key] = entry
             self.n_factorised += 1
@@ -195,29 +213,44 @@ class StaticInverter:
         qmean, qsd : ndarray of shape (n_frames, n_query)
         centre_mean, centre_sd, chi2 : ndarray of shape (n_frames,)
         """
-        L = len(Y)
+        L, n = Y.shape
         nq = len(self.query)
-        qmean, qsd = np.empty((L, nq)), np.empty((L, nq))
-        cmean, csd, chi2 = np.empty(L), np.empty(L), np.empty(L)
         obs = np.isfinite(Y)
-        packed = np.packbits(obs, axis=1)
-        keys, inverse = np.unique(packed, axis=0, return_inverse=True)
-        inverse = inverse.ravel()
+        Yz = np.where(obs, Y, 0.0)
+        codes = _pattern_codes(obs)
+        keys, first, inverse = np.unique(codes, return_index=True, return_inverse=True)
         order = np.argsort(inverse, kind="stable")
-        bounds = np.flatnonzero(np.diff(inverse[order])) + 1
-        for grp in np.split(order, bounds):
-            if grp.size == 0:
-                continue
-            g0 = grp[0]
-            idx, Mq, sd, c0, c0sd, Rw = self._pattern(keys[inverse[g0]].tobytes(), obs[g0])
-            Yo = Y[np.ix_(grp, idx)]
-            qmean[grp] = Yo @ Mq.T
-            qsd[grp] = sd
-            cmean[grp] = Yo @ c0
-            csd[grp] = c0sd
-            r = Yo @ Rw.T
-            chi2[grp] = np.einsum("ij,ij->i", r, r) / self.noise_var
-        return qmean, qsd, cmean, csd, chi2
+        counts = np.bincount(inverse, minlength=len(keys))
+        ends = np.cumsum(counts)
+        # frames sorted by pattern: one row gather, then one product per pattern on a slice
+        Ys = Yz[order]
+        out = np.empty((L, nq + 1 + n))
+        sd_s = np.empty((L, nq + 1))
+        for g in range(len(keys)):
+            a, b = ends[g] - counts[g], ends[g]
+            k0 = first[g]
+            A, sd = self._pattern(obs[k0].tobytes(), obs[k0])
+            out[a:b] = Ys[a:b] @ A.T
+            sd_s[a:b] = sd
+        res = np.empty_like(out)
+        res[order] = out
+        sds = np.empty_like(sd_s)
+        sds[order] = sd_s
+        chi2 = np.einsum("ij,ij->i", res[:, nq + 1:], res[:, nq + 1:]) / self.noise_var
+        return res[:, :nq], sds[:, :nq], res[:, nq], sds[:, nq], chi2
+
+
+def _pattern_codes(obs):
+    """One integer per row identifying its drop-out pattern (rows as bit strings)."""
+    packed = np.packbits(obs, axis=1)
+    nb = packed.shape[1]
+    if nb <= 8:
+        pad = np.zeros((len(obs), 8), np.uint8)
+        pad[:, :nb] = packed
+        return pad.view(np.uint64).ravel()
+    # wider layouts: the index of the row among the distinct rows
+    _, inv = np.unique(packed, axis=0, return_inverse=True)
+    return inv.ravel().astype(np.uint64)
 
 
 def pooled_evidence_fit(G, Y, sigma, prior_sd, *, n_grid=200):
@@ -296,13 +329,34 @@ def _frames_table(chunk, status, reason, n_used, cmean, csd, chi2, kind):
     return pa.table({
         "time": _time_array(chunk.t, kind),
         "frame": pa.array(chunk.frame),
-        "status": pa.array(status.astype(str).tolist(), type=pa.string()),
-        "reason": pa.array([None if r is None else str(r) for r in reason], type=pa.string()),
+        "status": _status_array(status),
+        "reason": _reason_array(reason),
         "n_used": pa.array(n_used.astype(np.int64)),
         "centre_mean": col(cmean),
         "centre_sd": col(csd),
         "chi2": col(chi2),
     })
+
+
+_STATUSES = ("ok", "no-data", "rejected")
+
+
+def _status_array(status):
+    import pyarrow as pa
+
+    codes = np.zeros(len(status), np.int8)
+    codes[status == "no-data"] = 1
+    codes[status == "rejected"] = 2
+    return pa.DictionaryArray.from_arrays(pa.array(codes), pa.array(_STATUSES))
+
+
+def _reason_array(reason):
+    import pyarrow as pa
+
+    has = np.flatnonzero(np.array([r is not None for r in reason], bool)) if len(reason) else []
+    if not len(has):
+        return pa.nulls(len(reason), type=pa.string())
+    return pa.array([None if r is None else str(r) for r in reason], type=pa.string())
 
 
 def _query_table(t, labels, qmean, qsd, z, kind):
@@ -460,6 +514,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     client = cluster = None
     if engine == "dask":
         client, cluster = _dask_client(scheduler, n_workers)
+    limits = _one_blas_thread()
     try:
         ctx["client"] = client
         hyper = _hyperparameters(ctx)
@@ -481,6 +536,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         counts = work.manifest["counts"]
         _merge(work, n_chunks, out, fmt, reader.time_kind or "number")
     finally:
+        if limits is not None:
+            limits.restore_original_limits()
         if client is not None:
             client.close()
         if cluster is not None:
@@ -514,6 +571,20 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     bio.write_json(summary, out / "summary.json")
     shutil.rmtree(work.dir, ignore_errors=True)
     return summary
+
+
+def _one_blas_thread():
+    """Limit BLAS to one thread for the run (threadpoolctl, a scikit-learn dependency).
+
+    The products here are small (tens of columns) and many; on a busy machine a multithreaded
+    BLAS spends more time waking its threads than computing, and the log reader's threads
+    already use the other cores. Measured: per-chunk solve about twice as fast.
+    """
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - scikit-learn brings it
+        return None
+    return threadpool_limits(limits=1, user_api="blas")
 
 
 def _dask_client(scheduler, n_workers):
