@@ -12,7 +12,17 @@ from .domain import Disk, DomainError, arc_harmonic_measure, poisson_kernel
 from .prior import SmoothnessPrior, truncation_degree
 from .problem import Estimate, LinearProblem, PointSummary
 from .readings import Readings, load_layout, load_points, load_readings
-from .stages import RULES, FitWarning, Tikhonov, tikhonov
+from .stages import (
+    RULES,
+    FitWarning,
+    GaussianPosterior,
+    MCMCSampler,
+    MCMCWarning,
+    Tikhonov,
+    gaussian_posterior,
+    mcmc,
+    tikhonov,
+)
 from .workflow import fit, make_domain
 
 __version__ = "0.1.0"
@@ -23,6 +33,11 @@ __all__ = [
     "DomainError",
     "Estimate",
     "FitWarning",
+    "GaussianPosterior",
+    "MCMCSampler",
+    "MCMCWarning",
+    "gaussian_posterior",
+    "mcmc",
     "InputError",
     "Diagnostics",
     "ModelCheck",

@@ -16,7 +16,7 @@ from .readings import Readings, load_readings
 
 __all__ = ["fit", "make_domain", "as_readings", "run_stage", "METHODS"]
 
-METHODS = ("tikhonov",)
+METHODS = ("tikhonov", "gaussian", "mcmc")
 
 
 def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
@@ -120,4 +120,13 @@ def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
         from .stages import Tikhonov
 
         return Tikhonov(s=s, **options).fit(problem)
+    if method == "gaussian":
+        # s sets the truncation only; the stage estimates s unless options fix it ("s").
+        from .stages import GaussianPosterior
+
+        return GaussianPosterior(**options).fit(problem)
+    if method == "mcmc":
+        from .stages import MCMCSampler
+
+        return MCMCSampler(rng=seed, **options).fit(problem)
     raise ValueError(f"The 'method' parameter must be one of {METHODS}. Got {method!r} instead.")

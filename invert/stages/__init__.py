@@ -1,6 +1,9 @@
 """Inference stages. Each takes a :class:`~invert.problem.LinearProblem` and returns an
 :class:`~invert.problem.Estimate`; none knows the shape of the region."""
 
+from .gaussian import GaussianPosterior, gaussian_posterior
+from .mcmc import MCMCSampler, MCMCWarning, mcmc
 from .tikhonov import RULES, FitWarning, Tikhonov, tikhonov
 
-__all__ = ["Tikhonov", "tikhonov", "RULES", "FitWarning"]
+__all__ = ["Tikhonov", "tikhonov", "RULES", "FitWarning", "GaussianPosterior",
+           "gaussian_posterior", "MCMCSampler", "MCMCWarning", "mcmc"]

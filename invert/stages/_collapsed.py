@@ -1,0 +1,400 @@
+r"""Collapsed (coefficient-free) Gaussian likelihood, batched over hyperparameter draws.
+
+Shared by the ``gaussian`` and ``mcmc`` stages. Depends on NumPy only.
+
+Notes
+-----
+With whitened rows (:math:`\tilde y = W y`, :math:`\tilde G = W G`, :math:`W =
+\operatorname{diag}(1/\sigma_i)` or :math:`I` when no sigma is given), prior
+:math:`c_j \sim N(0, \tau^2 v_j(s))`, :math:`v_j = (1+\lambda_j)^{-s}` for degree > 0 and
+:math:`v_0 = \kappa^2` (the broad mean level, :data:`invert.prior.MEAN_SCALE`), and row noise
+variances :math:`\nu_i^2` (whitened units), the coefficients integrate out:
+
+.. math:: \tilde y \sim N\bigl(0,\ C\bigr),\qquad
+          C = B + \tau^2\kappa^2 g_0 g_0^\top,\qquad
+          B = \operatorname{diag}(\nu_i^2) + \tau^2 \sum_{n\ge 1} (1+\lambda_n)^{-s} K_n,
+
+with :math:`K_n = \tilde G_n \tilde G_n^\top` summed over the columns of degree :math:`n`. The
+broad mean-level column is handled by the Woodbury identity and the matrix determinant lemma,
+so that only the well-conditioned :math:`B` is factorised (Cholesky, batched over draws):
+
+.. math:: \log|C| = \log|B| + \log(1 + V_0 g_0^\top B^{-1} g_0),\quad
+          \tilde y^\top C^{-1}\tilde y = \tilde y^\top B^{-1}\tilde y
+          - \frac{V_0 (g_0^\top B^{-1}\tilde y)^2}{1 + V_0 g_0^\top B^{-1} g_0},
+
+:math:`V_0 = \tau^2\kappa^2`. The log density of the readings in their own units adds
+:math:`\sum_i \log w_i`. Given the hyperparameters the coefficients are Gaussian (Bishop 2006,
+eqs. 3.53–3.54); exact draws come from the SVD of the fully whitened standard-form matrix
+:math:`A = N^{-1}\tilde G D`, :math:`D = \operatorname{diag}(\sqrt{\text{prior var}})`:
+:math:`x \mid y \sim N(V S(S^2+I)^{-1}U^\top \tilde y,\ I - V S^2(S^2+I)^{-1}V^\top)`,
+:math:`c = D x`.
+
+References
+----------
+.. [1] C. M. Bishop, *Pattern Recognition and Machine Learning*, Springer, 2006, §3.3 and §3.5.
+.. [2] C. E. Rasmussen and C. K. I. Williams, *Gaussian Processes for Machine Learning*, MIT
+       Press, 2006, §2.2 and §5.4 (marginal likelihood by Cholesky).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..prior import MEAN_SCALE, truncation_degree
+
+_LOG2PI = float(np.log(2 * np.pi))
+
+
+def single_thread():
+    """Context limiting BLAS to one thread: the matrices here are tiny (tens of rows), and on
+    a shared machine multi-threaded BLAS made them 50-80x slower in our measurements."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
+        from contextlib import nullcontext
+
+        return nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
+def _truncation_rule(domain):
+    """``(tol, max_degree)`` used to extend a domain's truncation: the disk keeps under 1e-4 of
+    the prior rim variance (invert.prior.truncation_degree) up to degree 128; the ball uses
+    its own, looser rule (invert.ball.BALL_TRUNCATION_TOL, BALL_MAX_DEGREE) because its
+    column count grows as (N+1)^2."""
+    if getattr(domain, "kind", "disk") == "ball":
+        from ..ball import BALL_MAX_DEGREE, BALL_TRUNCATION_TOL
+
+        return BALL_TRUNCATION_TOL, BALL_MAX_DEGREE
+    return 1e-4, 128
+
+
+def extend_modes(problem, s_min, *, tol=None):
+    """Raise the truncation degree so that a prior with ``s = s_min`` loses < ``tol`` of its
+    rim variance (see :func:`invert.prior.truncation_degree`).
+
+    Returns ``(problem, note)``; ``note`` is None when nothing changed. The problem is rebuilt
+    from ``problem.points`` with ``problem.domain.with_modes``; this is done only when the
+    rebuilt design reproduces the given ``G`` in its first columns (1e-10, algebra), so a
+    hand-made design is never replaced.
+    """
+    dom = problem.domain
+    if dom is None or problem.points is None or not hasattr(dom, "with_modes"):
+        return problem, None
+    rule_tol, max_n = _truncation_rule(dom)
+    tol = rule_tol if tol is None else tol
+    need = truncation_degree(dom, s_min, tol=tol, maximum=max_n)
+    if need <= getattr(dom, "n_modes", need):
+        return problem, None
+    new_dom = dom.with_modes(need)
+    G = new_dom.design(problem.points)
+    p = problem.n_coef
+    if p > G.shape[1] or not np.allclose(G[:, :p], problem.G, rtol=1e-10, atol=1e-10):
+        return problem, None
+    from ..problem import LinearProblem
+
+    new = LinearProblem(G, problem.y, problem.sigma, new_dom.degrees, new_dom.eigenvalues,
+                        new_dom, problem.sensor, problem.points, problem.gap_sensor,
+                        problem.gap_points, problem.notes)
+    note = (f"harmonics raised from {dom.n_modes} to {need} so that the roughest smoothness "
+            f"considered (s = {s_min:g}) is not truncated")
+    return new, note
+
+
+def truncation_floor(problem, s_lo, s_hi, *, tol=None):
+    """Smallest ``s`` in ``[s_lo, s_hi]`` whose prior the problem's truncation degree holds to
+    ``tol`` (bisection on the monotone :func:`invert.prior.truncation_degree`)."""
+    dom = problem.domain
+    if dom is None or not hasattr(dom, "n_modes"):
+        return s_lo
+    N = dom.n_modes
+    tol = _truncation_rule(dom)[0] if tol is None else tol
+    if truncation_degree(dom, s_lo, tol=tol) <= N:
+        return s_lo
+    lo, hi = s_lo, s_hi
+    for _ in range(40):
+        mid = 0.5 * (lo + hi)
+        if truncation_degree(dom, mid, tol=tol) <= N:
+            hi = mid
+        else:
+            lo = mid
+    return hi
+
+
+class CollapsedModel:
+    r"""Marginal likelihood of the readings with the coefficients integrated out.
+
+    Parameters
+    ----------
+    problem : LinearProblem
+    mean_scale : float, default=MEAN_SCALE
+        Prior sd of the degree-0 coefficient(s) relative to ``tau``.
+
+    Notes
+    -----
+    All methods take arrays of hyperparameters of shape ``(n_batch,)`` and row noise
+    variances (whitened units) of shape ``(n_batch, m)`` and work on the whole batch at once.
+    See the module Notes for the formulas.
+    """
+
+    def __init__(self, problem, *, mean_scale=MEAN_SCALE):
+        self.problem = problem
+        self.mean_scale = float(mean_scale)
+        w = problem.weights
+        self.w = w
+        self.log_w = float(np.sum(np.log(w)))
+        self.Gw = w[:, None] * problem.G
+        self.yw = w * problem.y
+        self.m, self.p = self.Gw.shape
+        deg = np.asarray(problem.degrees)
+        self.broad = deg == 0
+        self.eig = np.asarray(problem.eigenvalues, float)
+        self.G0 = self.Gw[:, self.broad]
+        # Group the other columns by degree: K_n = sum over columns of degree n of g g^T.
+        udeg = np.unique(deg[~self.broad])
+        self.udeg = udeg
+        self.ueig = np.array([self.eig[deg == n][0] for n in udeg])
+        self.K = np.stack([self.Gw[:, deg == n] @ self.Gw[:, deg == n].T for n in udeg]) \
+            if udeg.size else np.zeros((0, self.m, self.m))
+        self._K2 = np.ascontiguousarray(self.K.reshape(len(udeg), self.m * self.m))
+        self._log1p_ueig = np.log1p(self.ueig)
+
+    # --- prior ------------------------------------------------------------------------------
+    def prior_var(self, tau, s):
+        """Prior variance of every coefficient, shape (n_batch, p)."""
+        tau = np.atleast_1d(tau)
+        s = np.atleast_1d(s)
+        v = (1.0 + self.eig[None, :]) ** (-s[:, None])
+        v = np.where(self.broad[None, :], self.mean_scale**2, v)
+        return tau[:, None] ** 2 * v
+
+    # --- marginal likelihood -----------------------------------------------------------------
+    def _B(self, tau, s, noise_var):
+        m = self.m
+        shape = np.exp(-s[:, None] * self._log1p_ueig[None, :])  # (1 + lambda_n)^-s
+        B = (shape * (tau**2)[:, None]) @ self._K2  # (nb, m*m)
+        B[:, :: m + 1] += noise_var
+        return B.reshape(-1, m, m)
+
+    def loglik(self, tau, s, noise_var, design=None):
+        """Log density of the readings (own units), shape (n_batch,).
+
+        Parameters
+        ----------
+        tau, s : ndarray of shape (n_batch,)
+        noise_var : ndarray of shape (n_batch, m) or (n_batch, 1)
+            Whitened noise variance of each row (``k**2`` or ``nu**2``; larger for rows
+            taken as faulty).
+        design : ndarray of shape (n_batch, m, p), optional
+            Per-draw unwhitened design (sensor-angle model); default the problem's ``G``.
+        """
+        tau = np.atleast_1d(np.asarray(tau, float))
+        s = np.atleast_1d(np.asarray(s, float))
+        nb = tau.size
+        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        if design is None:
+            B = self._B(tau, s, noise_var)
+            G0 = np.broadcast_to(self.G0, (nb,) + self.G0.shape)
+        else:
+            Gw = self.w[None, :, None] * design
+            v = self.prior_var(tau, s)[:, ~self.broad]
+            A = Gw[:, :, ~self.broad] * np.sqrt(v)[:, None, :]
+            B = A @ np.swapaxes(A, 1, 2)
+            idx = np.arange(self.m)
+            B[:, idx, idx] += noise_var
+            G0 = Gw[:, :, self.broad]
+        V0 = (self.mean_scale * tau) ** 2
+        return gaussian_terms(B, self.yw, G0, V0) + self.log_w
+
+    def loo_moments(self, tau, s, noise_var, design=None, chunk=512):
+        r"""Leave-one-out predictive mean and variance of each whitened reading given the
+        hyperparameters, coefficients integrated out; shapes (n_batch, m).
+
+        Notes
+        -----
+        For :math:`\tilde y \sim N(0, C)`: :math:`\mu_i = \tilde y_i - [C^{-1}\tilde y]_i /
+        [C^{-1}]_{ii}`, :math:`v_i = 1/[C^{-1}]_{ii}` (Sundararajan & Keerthi 2001, Neural
+        Comput. 13:1103), with :math:`C^{-1} = B^{-1} - B^{-1}g_0(I/V_0 + g_0^\top B^{-1}
+        g_0)^{-1}g_0^\top B^{-1}` (Woodbury). The variance includes the row's noise.
+        """
+        tau = np.atleast_1d(np.asarray(tau, float))
+        s = np.atleast_1d(np.asarray(s, float))
+        nb = tau.size
+        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        mu = np.empty((nb, self.m))
+        var = np.empty((nb, self.m))
+        idx = np.arange(self.m)
+        br = self.broad
+        for a0 in range(0, nb, chunk):
+            sl = slice(a0, a0 + chunk)
+            b = tau[sl].size
+            pv = self.prior_var(tau[sl], s[sl])
+            Gw = np.broadcast_to(self.Gw, (b, self.m, self.p)) if design is None else \
+                self.w[None, :, None] * design[sl]
+            Gr, g0 = Gw[:, :, ~br], Gw[:, :, br]
+            B = (Gr * pv[:, None, ~br]) @ np.swapaxes(Gr, 1, 2)
+            B[:, idx, idx] += noise_var[sl]
+            Ci = np.linalg.inv(B)
+            if br.any():
+                X = Ci @ g0  # B^-1 g0
+                S = np.einsum("bmk,bml->bkl", g0, X)
+                S[:, np.arange(S.shape[1]), np.arange(S.shape[1])] += 1.0 / pv[:, br]
+                Ci = Ci - X @ np.linalg.solve(S, np.swapaxes(X, 1, 2))
+            alpha = Ci @ self.yw
+            dii = Ci[:, idx, idx]
+            mu[sl] = self.yw[None, :] - alpha / dii
+            var[sl] = 1.0 / dii
+        return mu, var
+
+    def loo_loglik(self, tau, s, noise_var, design=None):
+        """``log p(y_i | y_-i, hyperparameters)`` of each reading in its own units, (n_batch, m)."""
+        mu, var = self.loo_moments(tau, s, noise_var, design)
+        return (-0.5 * (_LOG2PI + np.log(var) + (self.yw[None, :] - mu) ** 2 / var)
+                + np.log(self.w)[None, :])
+
+    # --- conditional posterior of the coefficients -------------------------------------------
+    def conditional(self, tau, s, noise_var, rng=None, design=None, chunk=512):
+        r"""Posterior mean and one exact draw of the coefficients per hyperparameter row.
+
+        Returns
+        -------
+        mean, draw : ndarray of shape (n_batch, p)
+
+        Notes
+        -----
+        Data-space form, O(m^2 p) per row. The broad mean level first, from its marginal
+        :math:`\tilde y \sim N(g_0 c_0, B)`: precision :math:`1/V_0 + g_0^\top B^{-1}g_0`,
+        mean :math:`(\cdot)^{-1} g_0^\top B^{-1}\tilde y`; then the rest given :math:`c_0`
+        by Matheron's rule (prior draw :math:`a`, noise draw :math:`e`):
+        :math:`c_r = a + P_r G_r^\top B^{-1}(\tilde y - g_0c_0 - G_r a - e)`, exact for the
+        Gaussian conditional (Rasmussen & Williams 2006, §2.2; Bishop 2006, eq. 3.53–3.54).
+        """
+        rng = np.random.default_rng(rng)
+        tau = np.atleast_1d(np.asarray(tau, float))
+        s = np.atleast_1d(np.asarray(s, float))
+        nb = tau.size
+        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        br = self.broad
+        p0 = int(br.sum())
+        z = rng.standard_normal((nb, self.p))
+        e = rng.standard_normal((nb, self.m))
+        mean = np.empty((nb, self.p))
+        draw = np.empty((nb, self.p))
+        idx = np.arange(self.m)
+        for a0 in range(0, nb, chunk):
+            sl = slice(a0, a0 + chunk)
+            b = tau[sl].size
+            pv = self.prior_var(tau[sl], s[sl])
+            Gw = np.broadcast_to(self.Gw, (b, self.m, self.p)) if design is None else \
+                self.w[None, :, None] * design[sl]
+            Gr, g0 = Gw[:, :, ~br], Gw[:, :, br]
+            Pr = pv[:, ~br]
+            B = (Gr * Pr[:, None, :]) @ np.swapaxes(Gr, 1, 2)
+            B[:, idx[:, None] == idx[None, :]] += noise_var[sl]
+            y = np.broadcast_to(self.yw, (b, self.m))
+            if p0:
+                rhs = np.concatenate([y[:, :, None], g0], axis=2)
+                X = np.linalg.solve(B, rhs)
+                prec0 = np.einsum("bmk,bml->bkl", g0, X[:, :, 1:])
+                prec0[:, np.arange(p0), np.arange(p0)] += 1.0 / pv[:, br]
+                m0 = np.linalg.solve(prec0, np.einsum("bmk,bm->bk", g0, X[:, :, 0])[:, :, None])
+                m0 = m0[:, :, 0]
+                R = np.linalg.cholesky(prec0)  # prec0 = R R^T; R^-T z has covariance prec0^-1
+                c0 = m0 + np.linalg.solve(np.swapaxes(R, 1, 2), z[sl][:, br][:, :, None])[:, :, 0]
+                ym = y - np.einsum("bmk,bk->bm", g0, m0)
+                yd = y - np.einsum("bmk,bk->bm", g0, c0)
+            else:
+                ym = yd = y
+            ar = np.sqrt(Pr) * z[sl][:, ~br]
+            yd = yd - np.einsum("bmk,bk->bm", Gr, ar) - np.sqrt(noise_var[sl]) * e[sl]
+            X = np.linalg.solve(B, np.stack([ym, yd], axis=2))
+            back = np.einsum("bmk,bmj->bkj", Gr, X) * Pr[:, :, None]
+            mean[sl, ~br] = back[:, :, 0]
+            draw[sl, ~br] = ar + back[:, :, 1]
+            if p0:
+                mean[sl, br] = m0
+                draw[sl, br] = c0
+        return mean, draw
+
+    def conditional_svd(self, tau, s, noise_var, rng=None, design=None, chunk=256):
+        """Same as :meth:`conditional` through the SVD of the whitened standard form (slower,
+        kept as an independent check)."""
+        rng = np.random.default_rng(rng)
+        tau = np.atleast_1d(np.asarray(tau, float))
+        s = np.atleast_1d(np.asarray(s, float))
+        nb = tau.size
+        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        z = rng.standard_normal((nb, self.p))
+        mean = np.empty((nb, self.p))
+        draw = np.empty((nb, self.p))
+        for a in range(0, nb, chunk):
+            sl = slice(a, a + chunk)
+            d = np.sqrt(self.prior_var(tau[sl], s[sl]))  # (b, p)
+            r = 1.0 / np.sqrt(noise_var[sl])  # (b, m)
+            G = self.Gw[None] if design is None else self.w[None, :, None] * design[sl]
+            A = (r[:, :, None] * G) * d[:, None, :]
+            yt = r * self.yw[None, :]
+            U, sv, Vt = np.linalg.svd(A, full_matrices=False)
+            beta = np.einsum("bmk,bm->bk", U, yt)
+            xm = np.einsum("bkp,bk->bp", Vt, sv / (sv**2 + 1) * beta)
+            zk = np.einsum("bkp,bp->bk", Vt, z[sl])
+            xd = xm + z[sl] + np.einsum("bkp,bk->bp", Vt, (1 / np.sqrt(sv**2 + 1) - 1) * zk)
+            mean[sl] = d * xm
+            draw[sl] = d * xd
+        return mean, draw
+
+
+def gaussian_terms(B, y, G0, V0):
+    r"""``log N(y | 0, B + V0 G0 G0^T)`` for a batch of SPD ``B`` (Woodbury on ``G0``).
+
+    Parameters
+    ----------
+    B : ndarray of shape (n_batch, m, m)
+    y : ndarray of shape (m,)
+    G0 : ndarray of shape (n_batch, m, p0)
+    V0 : ndarray of shape (n_batch,)
+    """
+    nb, m, _ = B.shape
+    out = np.full(nb, -np.inf)
+    try:
+        L = np.linalg.cholesky(B)
+        good = np.ones(nb, bool)
+    except np.linalg.LinAlgError:
+        # Rare: factorise one by one and leave the failures at -inf.
+        L = np.zeros_like(B)
+        good = np.zeros(nb, bool)
+        for i in range(nb):
+            try:
+                L[i] = np.linalg.cholesky(B[i])
+                good[i] = True
+            except np.linalg.LinAlgError:
+                pass
+    if not good.any():
+        return out
+    if not good.all():
+        L, G0, V0 = L[good], G0[good], V0[good]
+    rhs = np.empty((L.shape[0], m, 1 + G0.shape[2]))
+    rhs[:, :, 0] = y
+    rhs[:, :, 1:] = G0
+    Z = np.linalg.solve(L, rhs)
+    zy, Z0 = Z[:, :, 0], Z[:, :, 1:]
+    logdet = 2 * np.sum(np.log(np.diagonal(L, axis1=1, axis2=2)), axis=1)
+    quad = np.sum(zy**2, axis=1)
+    p0 = Z0.shape[2]
+    V0g = V0
+    if p0 == 1:
+        # Scalar Woodbury / determinant lemma for the single mean-level column.
+        b = np.sum(Z0[:, :, 0] * zy, axis=1)
+        S = np.sum(Z0[:, :, 0] ** 2, axis=1)
+        M = 1.0 + V0g * S
+        quad = quad - V0g * b**2 / M
+        logdet = logdet + np.log(M)
+    elif p0:
+        b = np.einsum("bmk,bm->bk", Z0, zy)
+        S = np.einsum("bmk,bml->bkl", Z0, Z0)
+        M = np.eye(p0)[None] + V0g[:, None, None] * S
+        sign, ld = np.linalg.slogdet(M)
+        quad = quad - V0g * np.einsum("bk,bk->b", b, np.linalg.solve(M, b[:, :, None])[:, :, 0])
+        logdet = logdet + ld
+    out[good] = -0.5 * (quad + logdet + m * _LOG2PI)
+    return out
