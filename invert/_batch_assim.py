@@ -20,16 +20,17 @@ from .stages.assimilate import (FilterState, SmootherState, filter_segment, fit_
                                 smooth_segment)
 
 
-def _forward_task(model, state, chunk, last_time, steady_tol):
+def _forward_task(model, state, chunk, last_time, steady_tol, max_transient=None):
     status, reason, acc, last = _b.frame_statuses(chunk, last_time, min_readings=1)
-    state, seg = filter_segment(model, state, chunk.t[acc], chunk.Y[acc], steady_tol=steady_tol)
+    state, seg = filter_segment(model, state, chunk.t[acc], chunk.Y[acc], steady_tol=steady_tol,
+                                max_transient=max_transient)
     info = {"t": chunk.t, "frame": chunk.frame, "status": status, "reason": reason,
             "acc": acc, "n_used": np.isfinite(chunk.Y).sum(axis=1)}
     return state, seg, info, last
 
 
-def _backward_task(seg, bstate, steady_tol):
-    return smooth_segment(seg, bstate, steady_tol=steady_tol)
+def _backward_task(seg, bstate, steady_tol, max_transient=None):
+    return smooth_segment(seg, bstate, steady_tol=steady_tol, max_transient=max_transient)
 
 
 def _tables(info, seg, ms, sid, Ps_table, Hq, labels, z, kind):
@@ -56,7 +57,7 @@ def _tables(info, seg, ms, sid, Ps_table, Hq, labels, z, kind):
     return ftab, qtab
 
 
-def run(ctx, model, time_scale, steady_tol, ml_frames):
+def run(ctx, model, time_scale, steady_tol, ml_frames, max_transient=None):
     """Forward then backward over the log; returns summary entries."""
     from scipy import stats
 
@@ -98,10 +99,10 @@ def run(ctx, model, time_scale, steady_tol, ml_frames):
                     continue
                 if client is None:
                     state, seg, info, last = _forward_task(model, state, chunk, last,
-                                                           steady_tol)
+                                                           steady_tol, max_transient)
                 else:
                     state, seg, info, last = client.submit(
-                        _forward_task, model, state, chunk, last, steady_tol,
+                        _forward_task, model, state, chunk, last, steady_tol, max_transient,
                         pure=False).result()
                 work.dump((seg, info), f"seg-{i:06d}.pkl")
                 work.dump(state, f"fstate-{i:06d}.pkl")
@@ -128,11 +129,11 @@ def run(ctx, model, time_scale, steady_tol, ml_frames):
         for i in range(n_chunks - 1 - n_back, -1, -1):
             seg, info = work.load(f"seg-{i:06d}.pkl")
             if client is None:
-                bstate, ms, sid, tab = _backward_task(seg, bstate, steady_tol)
+                bstate, ms, sid, tab = _backward_task(seg, bstate, steady_tol, max_transient)
                 ftab, qtab = _tables(info, seg, ms, sid, tab, Hq, ctx["qlabels"], z, kind)
             else:
                 bstate, ms, sid, tab = client.submit(_backward_task, seg, bstate, steady_tol,
-                                                     pure=False).result()
+                                                     max_transient, pure=False).result()
                 fut = client.submit(_tables, info, seg, ms, sid, tab, Hq, ctx["qlabels"], z,
                                     kind, pure=False)
                 ftab, qtab = fut.result()
@@ -153,5 +154,6 @@ def run(ctx, model, time_scale, steady_tol, ml_frames):
     work.manifest.setdefault("counts", {})
     return {"time_scale": hyper["time_scale"], "time_scale_how": hyper["time_scale_how"],
             "loglik": work.manifest.get("loglik"), "steady_tol": steady_tol,
+            "max_transient": max_transient,
             "dynamics": "per-harmonic Ornstein-Uhlenbeck with the smoothness prior as "
                         "stationary law; random-walk mean level"}

@@ -428,8 +428,8 @@ class _Work:
 def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine="local",
               scheduler=None, fmt="parquet", resume=False, lam=None, noise_sd=None,
               level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
-              chunk_rows=65536, steady_tol=1e-10, calibration_frames=2000, ml_frames=20000,
-              n_workers=2, say=print):
+              chunk_rows=65536, steady_tol=1e-10, max_transient=50, calibration_frames=2000,
+              ml_frames=20000, n_workers=2, say=print):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -457,6 +457,12 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         Fix the time scale of the dynamics (assimilation); else maximum likelihood.
     chunk_rows : int
         Frames per chunk.
+    steady_tol, max_transient :
+        Steady-state shortcut of the smoother (:func:`~invert.stages.assimilate.filter_segment`):
+        after ``max_transient`` exact steps with an unchanged drop-out pattern and time step
+        the gain jumps to its steady state; ``max_transient=None`` keeps every step exact to
+        ``steady_tol`` (slower when the time scale is long). bench/bench_assimilate.py prints
+        the difference.
 
     Returns
     -------
@@ -500,7 +506,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         "radius": radius, "center": list(domain.center), "n_modes": domain.n_modes,
         "s": smoothness, "lam": lam, "noise_sd": noise_sd, "assimilate": bool(assimilate),
         "time_scale": time_scale, "fmt": fmt, "chunk_rows": chunk_rows, "level": level,
-        "steady_tol": steady_tol,
+        "steady_tol": steady_tol, "max_transient": max_transient,
     }
     signature = {"log": bio.log_signature(log), "options": options}
     out = Path(out)
@@ -529,7 +535,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                                                    domain.degrees, tau2=tau2, time_scale=1.0)
             from . import _batch_assim
 
-            extra = _batch_assim.run(ctx, model, time_scale, steady_tol, ml_frames)
+            extra = _batch_assim.run(ctx, model, time_scale, steady_tol, ml_frames,
+                                     max_transient)
         else:
             extra = _run_static(ctx, hyper)
         n_chunks = work.manifest["n_chunks"]

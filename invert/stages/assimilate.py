@@ -166,6 +166,7 @@ class FilterState:
     loglik: float = 0.0
     n_frames: int = 0
     next_id: int = 0
+    fixed: dict = field(default_factory=dict)
 
     @classmethod
     def initial(cls, model):
@@ -188,18 +189,20 @@ class FilterSegment:
     n_used: np.ndarray = None     # (L,)
 
 
-def _linear_recursion(Phi, U, x0, *, reverse=False):
+def _linear_recursion(Phi, U, x0, *, reverse=False, B=None):
     r"""Evaluate :math:`x_k = \Phi x_{k-1} + u_k` for all rows of ``U`` starting from ``x0``.
 
-    Uses the eigenbasis of :math:`\Phi` and a first-order recursive filter per component when
-    the eigenvalues are real and the eigenvectors well conditioned, else a plain loop. With
-    ``reverse`` the recursion runs from the last row to the first.
+    With ``B`` the inputs are :math:`u_k = B\,U_k` (``U`` holds the raw rows). Uses the
+    eigenbasis of :math:`\Phi` and a first-order recursive filter per component
+    (:func:`scipy.signal.lfilter`) when the eigenvalues are real and the eigenvectors well
+    conditioned, else a plain loop. With ``reverse`` the recursion runs from the last row to
+    the first.
     """
     L = U.shape[0]
     if reverse:
-        return _linear_recursion(Phi, U[::-1], x0)[::-1]
+        return _linear_recursion(Phi, U[::-1], x0, B=B)[::-1]
     if L == 0:
-        return U.copy()
+        return np.empty((0, Phi.shape[0]))
     if L > 64:
         lam, V = np.linalg.eig(Phi)
         if np.all(np.abs(lam.imag) <= 1e-12 * (1 + np.abs(lam.real))):
@@ -211,12 +214,13 @@ def _linear_recursion(Phi, U, x0, *, reverse=False):
             except np.linalg.LinAlgError:
                 Vi = None
             if Vi is not None:
-                W = Vi @ U.T  # (p, L) components in the eigenbasis
+                W = (Vi if B is None else Vi @ B) @ U.T  # (p, L) inputs in the eigenbasis
                 z0 = Vi @ x0
-                Z = np.empty_like(W)
                 for i in range(W.shape[0]):
-                    Z[i] = signal.lfilter([1.0], [1.0, -lam[i]], W[i], zi=[lam[i] * z0[i]])[0]
-                return (V @ Z).T
+                    W[i] = signal.lfilter([1.0], [1.0, -lam[i]], W[i], zi=[lam[i] * z0[i]])[0]
+                return (V @ W).T
+    if B is not None:
+        U = U @ B.T
     X = np.empty_like(U)
     x = np.asarray(x0, float)
     for k in range(L):
@@ -229,8 +233,60 @@ def _close(a, b, tol):
     return np.max(np.abs(a - b)) <= tol * max(np.max(np.abs(a)), 1e-300)
 
 
-def filter_segment(model, state, t, Y, *, steady_tol=1e-10):
-    """Run the Kalman filter over one segment of frames.
+def _riccati_fixed_point(f, Ho, q, ro, max_iter=100):
+    r"""Steady-state predicted covariance of a key (pattern, step) by structured doubling.
+
+    Solves :math:`X = F X (I + GX)^{-1} F^\top + Q`, :math:`G = H_o^\top R_{oo}^{-1} H_o` (the
+    filter Riccati equation) with the doubling iteration of Chu, Fan & Lin (2005),
+    which converges quadratically; two plain Riccati steps then polish the result.
+    """
+    p = len(f)
+    Ieye = np.eye(p)
+    A = np.diag(f)
+    Gm = (Ho.T / ro) @ Ho
+    X = np.diag(q)
+    for _ in range(max_iter):
+        W = np.linalg.inv(Ieye + Gm @ X)
+        A, Gm, Xn = A @ W @ A, Gm + A @ W @ Gm @ A.T, X + A.T @ X @ W @ A
+        done = np.max(np.abs(Xn - X)) <= 1e-15 * np.max(np.abs(Xn))
+        X = 0.5 * (Xn + Xn.T)
+        if done:
+            break
+    for _ in range(2):
+        S = Ho @ X @ Ho.T + np.diag(ro)
+        K = X @ Ho.T @ np.linalg.inv(S)
+        IKH = Ieye - K @ Ho
+        Pf = IKH @ X @ IKH.T + (K * ro) @ K.T
+        X = f[:, None] * Pf * f[None, :] + np.diag(q)
+        X = 0.5 * (X + X.T)
+    return X
+
+
+def _fixed_state(fixed, key, f, qd, Ho, ro, idx, next_id, seg):
+    """The frozen record of a key's steady state (fixed point cached per key)."""
+    if key not in fixed:
+        if len(fixed) > 256:
+            fixed.pop(next(iter(fixed)))
+        fixed[key] = _riccati_fixed_point(f, Ho, qd, ro)
+    Pp = fixed[key]
+    p = len(f)
+    S = Ho @ Pp @ Ho.T + np.diag(ro)
+    Sinv = np.linalg.inv(S)
+    Sinv = 0.5 * (Sinv + Sinv.T)
+    K = Pp @ Ho.T @ Sinv
+    IKH = np.eye(p) - K @ Ho
+    P = IKH @ Pp @ IKH.T + (K * ro) @ K.T
+    P = 0.5 * (P + P.T)
+    fid, pid = next_id, next_id + 1
+    seg.P_table[fid] = P
+    seg.pred_table[pid] = (f, Pp)
+    return {"key": key, "f": f, "Pp": Pp, "P": P, "idx": idx, "fid": fid, "pid": pid,
+            "K": K, "Phi": IKH * f[None, :], "HF": Ho * f[None, :], "Sinv": Sinv,
+            "logdet": float(np.linalg.slogdet(S)[1])}
+
+
+def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
+    r"""Run the Kalman filter over one segment of frames.
 
     Parameters
     ----------
@@ -244,6 +300,13 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10):
     steady_tol : float, default=1e-10
         Relative change of gain and covariance below which they are frozen while the drop-out
         pattern and time step stay the same; 0 disables the steady-state shortcut.
+    max_transient : int, optional
+        After this many exact steps with the same key, switch to the key's steady state
+        (the fixed point of the Riccati recursion) even if the recursion has not converged
+        yet. Directions that the current sensors do not see relax towards the prior only at
+        the rate :math:`e^{-2\Delta/T}`, which can take thousands of frames; this option
+        trades that slow tail for speed (an approximation; None keeps every step exact to
+        ``steady_tol``).
 
     Returns
     -------
@@ -277,6 +340,7 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10):
     m, P = state.m.copy(), state.P.copy()
     frozen = dict(state.frozen) if state.frozen is not None else None
     prev, last_key = state.prev, state.key
+    fixed = dict(state.fixed)
     I = np.eye(p)
     k = 0
     while k < L:
@@ -292,8 +356,7 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10):
             idx = fz["idx"]
             Yo = Y[k:e][:, idx]
             if idx.size:
-                U = Yo @ fz["K"].T
-                Mr = _linear_recursion(fz["Phi"], U, m)
+                Mr = _linear_recursion(fz["Phi"], Yo, m, B=fz["K"])
                 Mprev = np.vstack([m[None, :], Mr[:-1]])
                 V = Yo - Mprev @ fz["HF"].T
                 q = np.einsum("ij,ij->i", V @ fz["Sinv"], V)
@@ -354,13 +417,18 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10):
                 fz.update(K=K, Phi=(I - K @ Ho) * f[None, :], HF=Ho * f[None, :], Sinv=Sinv,
                           logdet=logdet)
             frozen = fz
-        prev = {"key": key, "P": P, "K": K}
+        run = prev["run"] + 1 if prev is not None and prev["key"] == key else 1
+        if (frozen is None and steady_tol > 0 and max_transient and run >= max_transient
+                and idx.size):
+            frozen = _fixed_state(fixed, key, f, qd, Ho, ro, idx, next_id, seg)
+            next_id += 2
+        prev = {"key": key, "P": P, "K": K, "run": run}
         last_key = key
         k += 1
     if L:
         last_key = key_of(L - 1)
     new = FilterState(m, P, float(t[-1]) if L else state.t, last_key, frozen, prev,
-                      state.loglik + float(ll.sum()), state.n_frames + L, next_id)
+                      state.loglik + float(ll.sum()), state.n_frames + L, next_id, fixed)
     return new, seg
 
 
@@ -373,9 +441,10 @@ class SmootherState:
     pred: tuple | None = None         # (key, f, P^-) that led to the next frame
     last: tuple | None = None         # (filtered key, predicted key) of the step just done
     frozen: dict | None = None
+    run: int = 0                      # consecutive exact steps with the same pair
 
 
-def smooth_segment(seg, state, *, steady_tol=1e-10):
+def smooth_segment(seg, state, *, steady_tol=1e-10, max_transient=None):
     """Run the RTS smoother backwards over one filtered segment.
 
     Parameters
@@ -385,6 +454,10 @@ def smooth_segment(seg, state, *, steady_tol=1e-10):
         From the later segment (``SmootherState()`` for the last segment of the log).
     steady_tol : float
         As in :func:`filter_segment`.
+    max_transient : int, optional
+        As in :func:`filter_segment`: after this many exact backward steps with the same gain,
+        jump to the fixed point of :math:`X = P + G(X - P^-)G^\top` (a discrete Lyapunov
+        equation, :func:`scipy.linalg.solve_discrete_lyapunov`).
 
     Returns
     -------
@@ -403,7 +476,7 @@ def smooth_segment(seg, state, *, steady_tol=1e-10):
     sid = np.empty(L, np.int64)
     Ps_table = []
     ms_next, Ps_next, pred_in = state.ms, state.Ps, state.pred
-    frozen, last = state.frozen, state.last
+    frozen, last, run = state.frozen, state.last, state.run
     # pair(j) = (key of P_j, key of P^-_{j+1}); run_start[j] is the first frame of the run of
     # frames sharing frame j's pair (inside the segment; the last frame links to the next one)
     nxt = np.empty(L, np.int64)
@@ -433,15 +506,15 @@ def smooth_segment(seg, state, *, steady_tol=1e-10):
             # steady state: m^s_j = (I - G F) m_j + G m^s_{j+1} over the whole run
             b = int(run_start[k])
             rows = slice(b, k + 1)
-            U = seg.m[rows] @ frozen["IGF"].T
-            Xr = _linear_recursion(frozen["G"], U, ms_next, reverse=True)
+            Xr = _linear_recursion(frozen["G"], seg.m[rows], ms_next, reverse=True,
+                                   B=frozen["IGF"])
             ms_out[rows] = Xr
             if frozen.get("sid") is None:
                 Ps_table.append(frozen["Ps"])
                 frozen["sid"] = len(Ps_table) - 1
             sid[rows] = frozen["sid"]
             ms_next, Ps_next = Xr[0].copy(), frozen["Ps"]
-            last = key
+            last, run = key, 0
             k = b - 1
             continue
         # G = P F (P^-)^{-1}, from the symmetric solve (P^-) G^T = F P
@@ -450,8 +523,15 @@ def smooth_segment(seg, state, *, steady_tol=1e-10):
         Ps = P + G @ (Ps_next - Pp) @ G.T
         Ps = 0.5 * (Ps + Ps.T)
         new_frozen = None
+        run = run + 1 if last == key else 1
         if steady_tol > 0 and last == key and _close(Ps, Ps_next, steady_tol):
             new_frozen = {"key": key, "G": G, "IGF": I - G * f[None, :], "Ps": Ps, "sid": None}
+        elif steady_tol > 0 and max_transient and run >= max_transient:
+            from scipy.linalg import solve_discrete_lyapunov
+
+            X = solve_discrete_lyapunov(G, P - G @ Pp @ G.T)
+            new_frozen = {"key": key, "G": G, "IGF": I - G * f[None, :], "Ps": 0.5 * (X + X.T),
+                          "sid": None}
         Ps_table.append(Ps)
         sid[k] = len(Ps_table) - 1
         ms_out[k] = ms
@@ -462,7 +542,7 @@ def smooth_segment(seg, state, *, steady_tol=1e-10):
         pred_in = (int(seg.pid[0]),) + tuple(seg.pred_table[seg.pid[0]])
     if frozen is not None:
         frozen = dict(frozen, sid=None)
-    return SmootherState(ms_next, Ps_next, pred_in, last, frozen), ms_out, sid, Ps_table
+    return SmootherState(ms_next, Ps_next, pred_in, last, frozen, run), ms_out, sid, Ps_table
 
 
 def log_likelihood(model, t, Y, *, steady_tol=1e-10, segment=65536):
@@ -554,7 +634,7 @@ class SmoothedSeries:
                         info={"time_scale": self.time_scale, "loglik": self.loglik})
 
 
-def run_smoother(model, t, Y, *, steady_tol=1e-10, segment=65536):
+def run_smoother(model, t, Y, *, steady_tol=1e-10, segment=65536, max_transient=None):
     """Filter forwards and smooth backwards over arrays in memory.
 
     Returns
@@ -567,12 +647,13 @@ def run_smoother(model, t, Y, *, steady_tol=1e-10, segment=65536):
     segs = []
     for a in range(0, len(t), segment):
         state, seg = filter_segment(model, state, t[a:a + segment], Y[a:a + segment],
-                                    steady_tol=steady_tol)
+                                    steady_tol=steady_tol, max_transient=max_transient)
         segs.append(seg)
     back = SmootherState()
     means, idx, table = [None] * len(segs), [None] * len(segs), []
     for i in range(len(segs) - 1, -1, -1):
-        back, ms, sid, tab = smooth_segment(segs[i], back, steady_tol=steady_tol)
+        back, ms, sid, tab = smooth_segment(segs[i], back, steady_tol=steady_tol,
+                                            max_transient=max_transient)
         means[i], idx[i] = ms, sid + len(table)
         table.extend(tab)
     return SmoothedSeries(t, np.vstack(means) if means else np.empty((0, model.n_coef)),
@@ -590,6 +671,8 @@ class KalmanSmoother:
         first ``ml_frames`` frames.
     steady_tol : float, default=1e-10
         See :func:`filter_segment`.
+    max_transient : int, optional
+        See :func:`filter_segment` (None: exact to ``steady_tol``).
     ml_frames : int, default=20000
         Frames used for the likelihood search.
     bounds : (float, float), optional
@@ -601,9 +684,11 @@ class KalmanSmoother:
     loglik_ : float
     """
 
-    def __init__(self, time_scale=None, *, steady_tol=1e-10, ml_frames=20000, bounds=None):
+    def __init__(self, time_scale=None, *, steady_tol=1e-10, max_transient=None,
+                 ml_frames=20000, bounds=None):
         self.time_scale = time_scale
         self.steady_tol = steady_tol
+        self.max_transient = max_transient
         self.ml_frames = ml_frames
         self.bounds = bounds
 
@@ -615,6 +700,7 @@ class KalmanSmoother:
         else:
             T = float(self.time_scale)
         self.time_scale_ = T
-        out = run_smoother(model.with_time_scale(T), t, Y, steady_tol=self.steady_tol)
+        out = run_smoother(model.with_time_scale(T), t, Y, steady_tol=self.steady_tol,
+                           max_transient=self.max_transient)
         self.loglik_ = out.loglik
         return out
