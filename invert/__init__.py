@@ -5,6 +5,7 @@ Cite the methods you use (see the ``References`` section of each stage) and this
 """
 
 from ._validation import InputError
+from .batch import run_batch
 from .advise import SensorAdvice
 from .ball import Ball, ball_poisson_kernel, poisson_kernel_nd, real_sph_harm
 from .diagnose import Diagnostics, ModelCheck, ModelCheckWarning, model_check
@@ -14,6 +15,8 @@ from .problem import Estimate, LinearProblem, PointSummary
 from .readings import Readings, load_layout, load_points, load_readings
 from .stages import (
     RULES,
+    CoefficientDynamics,
+    KalmanSmoother,
     FitWarning,
     GaussianPosterior,
     MCMCSampler,
@@ -29,6 +32,9 @@ __version__ = "0.1.0"
 
 __all__ = [
     "Ball",
+    "CoefficientDynamics",
+    "KalmanSmoother",
+    "run_batch",
     "Disk",
     "DomainError",
     "Estimate",

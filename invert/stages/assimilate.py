@@ -64,9 +64,12 @@ __all__ = [
     "FilterState",
     "KalmanSmoother",
     "SmoothedSeries",
-    "filter_segment",
-    "smooth_segment",
     "SmootherState",
+    "filter_segment",
+    "fit_time_scale",
+    "log_likelihood",
+    "run_smoother",
+    "smooth_segment",
 ]
 
 _LOG2PI = float(np.log(2 * np.pi))
