@@ -208,3 +208,47 @@ def test_filter_state_is_not_changed():
 def test_bad_time_scale_message():
     with pytest.raises(ValueError, match="The 'time_scale' parameter of CoefficientDynamics"):
         _small_model(time_scale=-1.0)
+
+
+def test_chunk_elements_combine_to_the_sequential_smoother(problem):
+    # Särkkä & García-Fernández (2021): filtering and smoothing elements of chunks, combined
+    # in order (a scan over chunk summaries), give the filtered state entering each chunk and
+    # the smoothed state leaving it; running each chunk from those states reproduces the
+    # sequential smoother. Tolerance: algebra (1e-9, prior scale 100 on the mean level).
+    from invert.stages.assimilate import (SmootherState, _combine_filter, _combine_smoother,
+                                          filter_summary, smooth_segment, smoother_summary)
+
+    model, t, Y = problem
+    ref = run_smoother(model, t, Y, steady_tol=0)
+    _, filt = filter_segment(model, FilterState.initial(model), t, Y, steady_tol=0)
+    cuts = [0, 4, 9, len(t)]
+    sums = [filter_summary(model, t[a:b], Y[a:b], t_prev=t[a - 1] if a else np.nan,
+                           first=a == 0) for a, b in zip(cuts[:-1], cuts[1:], strict=True)]
+    segs, acc = [], None
+    for i, (a, b) in enumerate(zip(cuts[:-1], cuts[1:], strict=True)):
+        if acc is None:
+            st = FilterState.initial(model)
+        else:
+            st = FilterState(acc[1].copy(), acc[2].copy(), t=t[a - 1])
+        st, seg = filter_segment(model, st, t[a:b], Y[a:b], steady_tol=0)
+        np.testing.assert_allclose(seg.m, filt.m[a:b], rtol=0, atol=1e-9)
+        segs.append(seg)
+        acc = sums[i] if acc is None else _combine_filter(acc, sums[i])
+        np.testing.assert_allclose(acc[1], st.m, rtol=0, atol=1e-9)  # filtered mean at end
+        np.testing.assert_allclose(acc[2], st.P, rtol=0, atol=1e-8)
+    # backward: summaries of later chunks give the smoothed state at each chunk's end
+    nxt = [segs[i + 1].pred_table[segs[i + 1].pid[0]] if i + 1 < len(segs) else None
+           for i in range(len(segs))]
+    ssum = [smoother_summary(segs[i], nxt[i]) for i in range(len(segs))]
+    back = None
+    for i in range(len(segs) - 1, -1, -1):
+        if back is None:
+            state = SmootherState()
+        else:
+            state = SmootherState(back[1], back[2], (int(segs[i + 1].pid[0]),) + tuple(nxt[i]))
+        _, ms, _, _ = smooth_segment(segs[i], state, steady_tol=0)
+        a, b = cuts[i], cuts[i + 1]
+        np.testing.assert_allclose(ms, ref.mean[a:b], rtol=0, atol=1e-9)
+        back = ssum[i] if back is None else _combine_smoother(ssum[i], back)
+        np.testing.assert_allclose(back[1], ref.mean[a], rtol=0, atol=1e-9)
+        np.testing.assert_allclose(back[2], ref.cov(a), rtol=0, atol=1e-8)

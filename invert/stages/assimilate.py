@@ -707,3 +707,119 @@ class KalmanSmoother:
                            max_transient=self.max_transient)
         self.loglik_ = out.loglik
         return out
+
+
+# --- parallel-in-time elements (Särkkä & García-Fernández 2021) --------------------------------
+def _combine_filter(ei, ej):
+    """Associative combination of filtering elements ``ei`` (earlier) and ``ej`` (later)."""
+    Ai, bi, Ci, etai, Ji = ei
+    Aj, bj, Cj, etaj, Jj = ej
+    p = len(bi)
+    I = np.eye(p)
+    M = np.linalg.inv(I + Ci @ Jj)
+    AjM = Aj @ M
+    A = AjM @ Ai
+    b = AjM @ (bi + Ci @ etaj) + bj
+    C = AjM @ Ci @ Aj.T + Cj
+    N = np.linalg.inv(I + Jj @ Ci)
+    AiN = Ai.T @ N
+    eta = AiN @ (etaj - Jj @ bi) + etai
+    J = AiN @ Jj @ Ai + Ji
+    return A, b, 0.5 * (C + C.T), eta, 0.5 * (J + J.T)
+
+
+def filter_summary(model, t, Y, *, t_prev=np.nan, first=False):
+    r"""The filtering element of a run of frames: the whole run as one associative element.
+
+    Parameters
+    ----------
+    model : CoefficientDynamics
+    t, Y : frame times and readings of the run.
+    t_prev : float
+        Time of the frame before the run (NaN for the first frame of the log).
+    first : bool
+        The run starts the log (its first element absorbs the prior).
+
+    Returns
+    -------
+    tuple (A, b, C, eta, J)
+        Element of Särkkä & García-Fernández (2021, Lemmas 7-8): the run maps the filtered
+        state before it, :math:`x`, to :math:`N(Ax + b, C)` after it, with the run's data
+        likelihood :math:`\propto N_I(x;\eta, J)`. Combining these exactly (in order) gives
+        the filtered mean and covariance at the end of every run.
+
+    Notes
+    -----
+    Per step with :math:`F, Q, H, R`: :math:`S = HQH^\top + R`, :math:`K = QH^\top S^{-1}`,
+    :math:`A = (I-KH)F`, :math:`b = Ky`, :math:`C = (I-KH)Q`, :math:`\eta = F^\top H^\top
+    S^{-1}y`, :math:`J = F^\top H^\top S^{-1}HF`; the first step of the log uses the prior in
+    place of :math:`F x + w` and has :math:`A = 0`.
+    """
+    t = np.asarray(t, float)
+    Y = np.asarray(Y, float)
+    p = model.n_coef
+    I = np.eye(p)
+    acc = None
+    prev_t = t_prev
+    for k in range(len(t)):
+        idx = np.flatnonzero(np.isfinite(Y[k]))
+        if first and k == 0:
+            m, P = np.zeros(p), np.diag(model.prior_var)
+            if idx.size:
+                Ho, ro = model.H[idx], model.noise_var[idx]
+                S = Ho @ P @ Ho.T + np.diag(ro)
+                K = P @ Ho.T @ np.linalg.inv(S)
+                m = m + K @ (Y[k, idx] - Ho @ m)
+                IKH = I - K @ Ho
+                P = IKH @ P @ IKH.T + (K * ro) @ K.T
+            e = (np.zeros((p, p)), m, P, np.zeros(p), np.zeros((p, p)))
+        else:
+            f, q = model.transition(t[k] - prev_t)
+            F, Q = np.diag(f), np.diag(q)
+            if idx.size:
+                Ho, ro = model.H[idx], model.noise_var[idx]
+                S = Ho @ Q @ Ho.T + np.diag(ro)
+                Si = np.linalg.inv(S)
+                K = Q @ Ho.T @ Si
+                IKH = I - K @ Ho
+                HF = Ho * f[None, :]
+                e = (IKH * f[None, :], K @ Y[k, idx], IKH @ Q, HF.T @ Si @ Y[k, idx],
+                     HF.T @ Si @ HF)
+            else:
+                e = (F, np.zeros(p), Q, np.zeros(p), np.zeros((p, p)))
+        acc = e if acc is None else _combine_filter(acc, e)
+        prev_t = t[k]
+    return acc
+
+
+def _combine_smoother(ei, ej):
+    """Combine smoothing elements: ``ei`` (earlier frame) with ``ej`` (the frames after)."""
+    Ei, gi, Li = ei
+    Ej, gj, Lj = ej
+    L = Ei @ Lj @ Ei.T + Li
+    return Ei @ Ej, Ei @ gj + gi, 0.5 * (L + L.T)
+
+
+def smoother_summary(seg, next_pred=None):
+    r"""The smoothing element of a filtered run: :math:`x_{\rm first} \mid x_{\rm next}`.
+
+    ``next_pred`` is ``(f, P^-)`` of the frame after the run (None at the end of the log).
+    Per frame (Särkkä & García-Fernández 2021, Lemma 10): :math:`E = P_kF^\top
+    (P^-_{k+1})^{-1}`, :math:`g = m_k - E F m_k`, :math:`L = P_k - E F P_k`; at the last
+    frame of the log :math:`E = 0`, :math:`g = m_T`, :math:`L = P_T`.
+    """
+    L_ = len(seg.t)
+    p = seg.m.shape[1]
+    acc = None
+    for k in range(L_ - 1, -1, -1):
+        P = seg.P_table[seg.fid[k]]
+        nxt = seg.pred_table[seg.pid[k + 1]] if k + 1 < L_ else next_pred
+        if nxt is None:
+            e = (np.zeros((p, p)), seg.m[k].copy(), P)
+        else:
+            f, Pp = nxt
+            E = np.linalg.solve(Pp, f[:, None] * P).T
+            EF = E * f[None, :]
+            e = (E, seg.m[k] - EF @ seg.m[k], P - EF @ P)
+        acc = e if acc is None else _combine_smoother(e, acc)
+    return acc
