@@ -130,7 +130,8 @@ def plot_field_maps(fig, estimate, problem, level=0.9, n=121, unit="", length_un
         ax.set_title(title)
         ax.set_xlabel(_lab("x", length_unit))
         ax.set_ylabel(_lab("y", length_unit))
-    axes[0].contour(xs, ys, stream.reshape(n, n), levels=16, colors="#e8f1f8", linewidths=0.6)
+    axes[0].contour(xs, ys, stream.reshape(n, n), levels=16, colors="#e8f1f8", linewidths=0.6,
+                    negative_linestyles="solid")
     axes[0].set_title("estimated field, with flux lines")
     axes[1].legend(loc="lower right", fontsize=7)
 
