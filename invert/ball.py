@@ -406,7 +406,7 @@ class Ball:
         sign = np.where(m % 2 == 0, 1.0, -1.0)[:, None]
         G = np.where((m > 0)[:, None], np.sqrt(2) * sign * Zc.real,
                      np.where((m < 0)[:, None], np.sqrt(2) * sign * Zc.imag, Zc.real))
-        return G.T
+        return G.T + 0.0  # + 0.0 turns the -0.0 of sign * 0 into 0.0
 
     def _design_xi(self, xi) -> np.ndarray:
         return self._real_columns(self._solid(xi, negative=False))
