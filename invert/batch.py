@@ -122,6 +122,8 @@ class StaticInverter:
     level : float, default=0.9
     max_patterns : int, default=50000
         Size of the pattern cache (least recently used patterns are dropped).
+    n_threads : int, default=2
+        Threads factorising new patterns of a chunk.
 
     Notes
     -----
@@ -133,7 +135,7 @@ class StaticInverter:
     """
 
     def __init__(self, domain, points, sigma, lam, noise_sd, query, *, s=2.0, level=0.9,
-                 max_patterns=50000):
+                 max_patterns=50000, n_threads=2):
         self.domain = domain
         self.points = np.asarray(points, float)
         self.sigma = None if sigma is None else np.asarray(sigma, float)
@@ -151,6 +153,7 @@ class StaticInverter:
         self.Hq = domain.design(self.query)
         self.prior_sd = np.sqrt(SmoothnessPrior(s=s).shape(domain.eigenvalues, domain.degrees))
         self.max_patterns = max_patterns
+        self.n_threads = n_threads
         self._cache = OrderedDict()
         self._lock = threading.Lock()
         self.n_factorised = 0
@@ -222,6 +225,15 @@ class StaticInverter:
         order = np.argsort(inverse, kind="stable")
         counts = np.bincount(inverse, minlength=len(keys))
         ends = np.cumsum(counts)
+        # new patterns are factorised first, two at a time (LAPACK releases the GIL)
+        with self._lock:
+            new = [g for g in range(len(keys)) if obs[first[g]].tobytes() not in self._cache]
+        if len(new) > 8 and self.n_threads > 1:
+            from concurrent.futures import ThreadPoolExecutor
+
+            with ThreadPoolExecutor(self.n_threads) as pool:
+                list(pool.map(lambda g: self._pattern(obs[first[g]].tobytes(), obs[first[g]]),
+                              new))
         # frames sorted by pattern: one row gather, then one product per pattern on a slice
         Ys = Yz[order]
         out = np.empty((L, nq + 1 + n))
