@@ -574,3 +574,34 @@ def test_calibration_default_guard_known_limit():
     assert cover > 0.5, cover
     if not 0.85 <= cover <= 0.95:
         pytest.xfail(f"default residual-dof guard under-covers on the ball: {cover:.3f}")
+
+
+def test_gaussian_stage_runs_unchanged_on_the_ball():
+    # The closed-form stage sees only the linear problem. With s and tau fixed and sigma known
+    # its posterior must be the textbook one (Bishop 2006 §3.3, information form
+    # Sigma = (Sigma_p^-1 + G' Sigma_e^-1 G)^-1, mean = Sigma G' Sigma_e^-1 y), computed here
+    # directly; field mean and sd at interior points agree to 1e-6 relative (the broad prior on
+    # the mean level makes the information matrix span ~1e12, costing ~6 digits).
+    from invert import GaussianPosterior
+
+    rng = np.random.default_rng(14)
+    d = make_domain(1.0, kind="ball", s=2.0)
+    P, _ = _shell_problem(rng)
+    sigma = 0.05
+    c = truth_coef(rng, d)
+    y = d.design(P) @ c + sigma * rng.standard_normal(len(P))
+    G = d.design(P)
+    prob = LinearProblem(G, y, np.full(len(y), sigma), d.degrees, d.eigenvalues, d, points=P)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        est = GaussianPosterior(s=2.0, tau=0.7).fit(prob)
+    assert est.domain.kind == "ball" and est.mean.size == d.n_coef
+    v = SmoothnessPrior(s=2.0, tau=0.7).variances(d.eigenvalues, d.degrees)
+    A = np.diag(1 / v) + G.T @ G / sigma**2
+    cov = np.linalg.inv(A)
+    mean = cov @ (G.T @ y / sigma**2)
+    x = random_interior(rng, 20, 0.9)
+    H = d.design(x)
+    s = est.at(x)
+    np.testing.assert_allclose(s.mean, H @ mean, rtol=1e-6)
+    np.testing.assert_allclose(s.sd, np.sqrt(np.einsum("ij,jk,ik->i", H, cov, H)), rtol=1e-6)
