@@ -156,6 +156,10 @@ def _add_batch_parser(sub):
     p.add_argument("--smoothness", type=float, default=2.0)
     p.add_argument("--n-modes", type=int, default=None)
     p.add_argument("--chunk-rows", type=int, default=65536, help="frames per chunk")
+    p.add_argument("--max-transient", type=int, default=50,
+                   help="assimilation: exact Kalman steps after a change of drop-out pattern or "
+                        "time step before the steady-state gain is used; 0 = exact throughout "
+                        "(default: 50)")
 
 
 def _fit_options(args):
@@ -335,7 +339,8 @@ def _cmd_batch(args):
                         scheduler=args.scheduler, fmt=args.fmt, resume=args.resume,
                         lam=args.lam, noise_sd=args.noise_sd, level=args.level,
                         smoothness=args.smoothness, n_modes=args.n_modes, center=args.center,
-                        time_scale=args.time_scale, chunk_rows=args.chunk_rows)
+                        time_scale=args.time_scale, chunk_rows=args.chunk_rows,
+                        max_transient=args.max_transient or None)
     f = summary["frames"]
     print(f"batch ({summary['method']}, {summary['engine']}): {f['total']} frames, "
           f"{f.get('ok', 0)} ok, {f.get('no-data', 0)} no-data, {f.get('rejected', 0)} "
