@@ -68,11 +68,12 @@ class SmoothnessPrior:
 
     def point_variance(self, domain, n_max: int = 100000) -> float:
         """Prior variance of the rim field about its mean level, summed to ``n_max``."""
+        # Sum over the columns of degree n of their mean square on the rim: cos^2 and sin^2
+        # average 1/2 on the circle (so one v_n per degree), and the ball's columns are
+        # orthonormal under the surface mean (so 2l + 1 of them).
         n = np.arange(1, n_max + 1)
-        return float(
-            self.tau**2
-            * np.sum(domain.degree_multiplicity(n) * (1 + domain.degree_eigenvalue(n)) ** -self.s)
-        )
+        weight = domain.degree_multiplicity(n) * (0.5 if domain.kind == "disk" else 1.0)
+        return float(self.tau**2 * np.sum(weight * (1 + domain.degree_eigenvalue(n)) ** -self.s))
 
 
 def truncation_degree(domain, s, *, tol=1e-4, minimum=8, maximum=256):

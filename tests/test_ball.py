@@ -566,14 +566,11 @@ def test_calibration_evidence_known_sigma():
 
 
 @pytest.mark.slow
-def test_calibration_default_guard_known_limit():
-    # Known limit: Tikhonov's default min_residual_dof (10 % of the readings) binds on the
-    # ball, where the unresolved high degrees make every data direction signal-dominated; the
-    # forced extra smoothing shrinks tau and the intervals. What holds: coverage stays > 50 %.
-    cover = _calibration(2027, 40, {})
-    assert cover > 0.5, cover
-    if not 0.85 <= cover <= 0.95:
-        pytest.xfail(f"default residual-dof guard under-covers on the ball: {cover:.3f}")
+def test_calibration_default_settings():
+    # The default Tikhonov settings (evidence rule, no residual-dof guard when sigma is given)
+    # cover 85-95 % on the ball too (a guard here once forced over-smoothing: ~70 %).
+    cover = _calibration(2027, 60, {})
+    assert 0.85 <= cover <= 0.95, cover
 
 
 def test_gaussian_stage_runs_unchanged_on_the_ball():
