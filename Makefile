@@ -28,8 +28,10 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(VENV)/bin/rim-invert demo --out demo-output
 
+# One BLAS thread: the suite's matrices are small, and threads oversubscribe the two cores
+# when dask workers or parallel tests run beside them.
 test: $(STAMP)
-	$(VENV)/bin/python -m pytest -q tests
+	OMP_NUM_THREADS=1 OPENBLAS_NUM_THREADS=1 MKL_NUM_THREADS=1 $(VENV)/bin/python -m pytest -q tests
 
 bench: $(STAMP)
 	for b in bench/bench_*.py; do $(VENV)/bin/python $$b || exit 1; done
