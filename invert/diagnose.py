@@ -41,7 +41,7 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import linalg, stats
+from scipy import linalg, optimize, stats
 
 from .domain import arc_harmonic_measure
 from .prior import SmoothnessPrior
@@ -540,6 +540,10 @@ class ModelCheck:
     notes : list of str
     pareto_k : ndarray or None
         PSIS-LOO Pareto k per reading when a sampled posterior was given.
+    tau, noise_sd : float
+        Prior scale and noise sd (NaN when given per reading) under which the check was made.
+    hyperparameters : str
+        How they were chosen.
     """
 
     flagged: bool | None
@@ -561,6 +565,9 @@ class ModelCheck:
     suspect: list = field(default_factory=list)
     notes: list = field(default_factory=list)
     pareto_k: np.ndarray | None = None
+    tau: float = np.nan
+    noise_sd: float = np.nan
+    hyperparameters: str = ""
 
     def to_dict(self) -> dict:
         """Plain summary for ``summary.json`` (per-sensor arrays as a list of records)."""
@@ -577,6 +584,9 @@ class ModelCheck:
             "source_df": self.source_df,
             "source_pvalue": self.source_pvalue,
             "suspect_sensors": list(self.suspect),
+            "tau": self.tau,
+            "noise_sd": self.noise_sd,
+            "hyperparameters": self.hyperparameters,
             "notes": list(self.notes),
             "sensors": [
                 {"sensor": str(s), "std_residual": float(r), "loo_mean": float(m),
@@ -605,32 +615,64 @@ def _design(estimate, problem):
     return d.design(problem.points), np.asarray(d.degrees)
 
 
-def _null_precision(estimate, problem, noise):
-    # P0 = C^-1 - C^-1 X0 (X0' C^-1 X0)^-1 X0' C^-1: the precision of the readings with the
-    # degree-0 columns (broad prior) as fixed effects; it is the limit of C^-1 as their prior
-    # variance grows without bound.
-    v = prior_variances(estimate)
+def _reml_basis(estimate, problem, noise):
+    # Whitened readings W y, W = diag(1/noise). With the degree-0 column(s) X0 as fixed
+    # effects, the error contrasts z = Q' W y (Q: orthonormal basis of the complement of W X0)
+    # are N(0, tau^2 Q' K Q + I), K = W G1 V1 G1' W the prior part for tau = 1. One eigen-
+    # decomposition Q' K Q = U diag(kappa) U' serves every tau: with B = Q U, w = B' W y,
+    # P0 = W B diag(1/(tau^2 kappa + 1)) B' W (Patterson & Thompson 1971; Harville 1977).
     G, deg = _design(estimate, problem)
+    s_, _ = _prior_params(estimate.info)
+    d = estimate.domain
+    shape = SmoothnessPrior(float(s_), 1.0).variances(d.eigenvalues, d.degrees)
     fixed = deg == 0
-    G1, X0 = G[:, ~fixed], G[:, fixed]
-    C = (G1 * v[~fixed]) @ G1.T + np.diag(noise**2)
-    cf = linalg.cho_factor(C, lower=True)
-    Ci = linalg.cho_solve(cf, np.eye(len(C)))
-    CiX = Ci @ X0
-    P0 = Ci - CiX @ linalg.solve(X0.T @ CiX, CiX.T, assume_a="pos")
-    return 0.5 * (P0 + P0.T), int(fixed.sum())
+    wt = 1.0 / noise
+    A = (wt[:, None] * G[:, ~fixed]) * np.sqrt(shape[~fixed])
+    X = wt[:, None] * G[:, fixed]
+    Qf, _ = linalg.qr(X, mode="full")
+    Q = Qf[:, X.shape[1]:]
+    AQ = Q.T @ A
+    kappa, U = linalg.eigh(AQ @ AQ.T)
+    B = Q @ U
+    return B, np.clip(kappa, 0.0, None), B.T @ (wt * problem.y), wt, int(fixed.sum())
 
 
-def model_check(estimate, problem, *, alpha=CHECK_ALPHA) -> ModelCheck:
+def _reml_scale(kappa, w, known, x0):
+    # Restricted ML of x = tau^2 (noise known) or x = tau^2/sigma^2 (noise level profiled out),
+    # on a log grid around the fit's value, then refined; returns (x, at_bound).
+    n = len(w)
+
+    def f(lx):
+        dd = 1.0 / (np.exp(lx) * kappa + 1.0)
+        if known:
+            return float(-np.sum(np.log(dd)) + np.sum(w**2 * dd))
+        return float(n * np.log(np.sum(w**2 * dd) / n) - np.sum(np.log(dd)))
+
+    grid = np.log(x0) + np.linspace(-20.0, 20.0, 161)
+    vals = np.array([f(g) for g in grid])
+    i = int(np.argmin(vals))
+    if i in (0, len(grid) - 1):
+        return float(np.exp(grid[i])), True
+    res = optimize.minimize_scalar(f, bounds=(grid[i - 1], grid[i + 1]), method="bounded",
+                                   options={"xatol": 1e-8})
+    return float(np.exp(res.x if res.fun <= vals[i] else grid[i])), False
+
+
+def model_check(estimate, problem, *, alpha=CHECK_ALPHA, refit=True) -> ModelCheck:
     r"""Do the readings fit a harmonic field? Residual chi-square, a source test and LOO.
 
     Parameters
     ----------
     estimate : Estimate
-        Needs ``info['s']`` and ``info['tau']`` (the fitted prior).
+        Needs the prior's ``s`` (and ``tau`` with ``refit=False``) in ``info``.
     problem : LinearProblem
     alpha : float, default=0.05
         Significance level of the whole check.
+    refit : bool, default=True
+        Choose the prior scale (and a common noise level) by restricted maximum likelihood
+        for the check, with ``s`` as fitted. ``False`` uses the estimate's ``tau`` and noise
+        sd as they are; a stage that limited its parameter (e.g. to keep residual degrees of
+        freedom) then makes the chi-square test reject harmonic data.
 
     Returns
     -------
@@ -661,19 +703,48 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA) -> ModelCheck:
       :math:`y_i - [P_0y]_i/[P_0]_{ii}`, variance :math:`1/[P_0]_{ii}`; the standardised
       distance :math:`[P_0y]_i/\sqrt{[P_0]_{ii}}` equals the fitted residual over its own sd.
 
-    Hyperparameters are plugged in at their fitted values, which makes the test slightly
-    conservative. The check is a statement about this snapshot; a pass does not prove the
-    field harmonic.
+    The prior scale is chosen by restricted maximum likelihood on the error contrasts
+    :math:`z = Q^\top W y` [2]_ [3]_ (one eigendecomposition serves the search); plugging it in
+    makes the tests slightly conservative. If the readings prefer an unbounded scale (they
+    ask for interpolation) the chi-square has little power; this is noted. The check is a
+    statement about this snapshot; a pass does not prove the field harmonic.
 
     References
     ----------
     .. [1] S. Sundararajan and S. S. Keerthi, Neural Computation 13:1103–1118, 2001.
            doi:10.1162/08997660151134343
+    .. [2] H. D. Patterson and R. Thompson, "Recovery of inter-block information when block
+           sizes are unequal", Biometrika 58:545–554, 1971. doi:10.1093/biomet/58.3.545
+    .. [3] D. A. Harville, "Maximum likelihood approaches to variance component estimation and
+           to related problems", JASA 72:320–338, 1977. doi:10.1080/01621459.1977.10480998
     """
     known = problem.sigma is not None
     m = problem.n_readings
-    noise = problem.sigma if known else np.full(m, float(estimate.noise_sd or 1.0))
-    P0, p0 = _null_precision(estimate, problem, noise)
+    notes = []
+    B, kappa, w, wt, p0 = _reml_basis(estimate, problem, problem.sigma if known else np.ones(m))
+    n_c = len(w)
+    if n_c < 2:
+        raise ValueError(f"The model check needs at least {p0 + 2} readings. Got {m} instead.")
+    _, tau_fit = _prior_params(estimate.info)
+    noise_fit = float(estimate.noise_sd or 1.0)
+    if refit:
+        x0 = float(tau_fit) ** 2 / (1.0 if known else noise_fit**2) if tau_fit else 1.0
+        x, at_bound = _reml_scale(kappa, w, known, x0)
+        dd = 1.0 / (x * kappa + 1.0)
+        sig2 = 1.0 if known else float(np.sum(w**2 * dd) / n_c)
+        how = "prior scale" + ("" if known else " and noise level") + \
+            " by restricted maximum likelihood, smoothness as fitted"
+        if at_bound:
+            notes.append("the readings prefer an unbounded prior scale (they ask to be "
+                         "interpolated), so the chi-square test has little power here")
+    else:
+        sig2 = 1.0 if known else noise_fit**2
+        x = float(tau_fit) ** 2 / sig2
+        dd = 1.0 / (x * kappa + 1.0)
+        how = "as fitted by the stage"
+    P0 = wt[:, None] * ((B * dd) @ B.T) * wt[None, :] / sig2
+    P0 = 0.5 * (P0 + P0.T)
+    tau_chk = float(np.sqrt(x * sig2))
     y = problem.y
     Py = P0 @ y
     dP = np.diag(P0)
@@ -682,10 +753,9 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA) -> ModelCheck:
     loo_z = Py / np.sqrt(dP)
     G, _ = _design(estimate, problem)
     fitted = G @ (estimate.mean if estimate.draws is None else estimate.draws.mean(axis=0))
-    std_res = (y - fitted) / noise
+    std_res = (y - fitted) / (problem.sigma if known else noise_fit)
     q = float(y @ Py)
     dof = m - p0
-    notes = []
 
     chi2 = chi2_p = np.nan
     if known:
@@ -748,7 +818,8 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA) -> ModelCheck:
     return ModelCheck(flagged, verdict, float(chi2), float(dof), float(chi2_p), float(kappa),
                       float(se), float(stat), float(src_p), t_df, float(alpha),
                       np.asarray(problem.sensor).astype(str), std_res, loo_mean, loo_sd, loo_z,
-                      suspect, notes, pareto_k)
+                      suspect, notes, pareto_k, tau_chk,
+                      np.nan if known else float(np.sqrt(sig2)), how)
 
 
 def psis_loo(posterior):
