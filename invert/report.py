@@ -316,7 +316,10 @@ def write_figures(out_dir, estimate, problem, readings=None, level=0.9, unit="",
         except ImportError:  # figures for the ball not available in this installation
             return []
         before = set(out.glob("*.png"))
-        made = write_figures_ball(out, estimate, problem, readings, level)
+        import inspect
+
+        kw = {"unit": unit} if "unit" in inspect.signature(write_figures_ball).parameters else {}
+        made = write_figures_ball(out, estimate, problem, readings, level, **kw)
         paths = [Path(p) for p in made] if made else sorted(set(out.glob("*.png")) - before)
         return [(p, p.stem.replace("_", " ")) for p in paths]
     if diagnostics is None:
@@ -462,6 +465,10 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
     else:
         cls = "fail" if chk.flagged else ("pass" if chk.flagged is False else "na")
         parts.append(f"<div class='verdict {cls}' id='verdict'>{html.escape(chk.verdict)}</div>")
+        parts.append(f"<p class='small'>The check treats the readings as a harmonic field plus "
+                     f"noise under the smoothness prior, with {html.escape(chk.hyperparameters)}"
+                     f" (τ = {_fmt(chk.tau, 3)}{u}); α = {chk.alpha:g}, split between the "
+                     "residual and source tests.</p>")
         for n in chk.notes:
             parts.append(f"<p class='small'>Note: {html.escape(n)}</p>")
     warn = list(summary["warnings"]) if summary is not None else \
