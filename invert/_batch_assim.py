@@ -128,7 +128,6 @@ def run(ctx, model, time_scale, steady_tol, ml_frames, max_transient=None):
         z = float(stats.norm.ppf((1 + ctx["level"]) / 2))
         n_back = done.get("backward", 0)
         bstate = work.load(f"bstate-{n_chunks - n_back:06d}.pkl") if n_back else SmootherState()
-        pending = []
         for i in range(n_chunks - 1 - n_back, -1, -1):
             seg, info = work.load(f"seg-{i:06d}.pkl")
             if client is None:
@@ -151,7 +150,6 @@ def run(ctx, model, time_scale, steady_tol, ml_frames, max_transient=None):
                     os.remove(work.dir / old)
             bar.update(len(info["t"]))
             _b._sleep_for_tests()
-        del pending
     finally:
         bar.close()
     work.manifest.setdefault("counts", {})

@@ -45,7 +45,6 @@ import threading
 import time as _time
 from collections import OrderedDict
 from pathlib import Path
-from types import SimpleNamespace
 
 import numpy as np
 from scipy import optimize, stats
@@ -384,9 +383,14 @@ def _query_table(t, labels, qmean, qsd, z, kind):
 
 
 def _empty_query(kind):
+    return _query_table(np.empty(0), ["x"], np.empty((0, 1)), np.empty((0, 1)), 1.0, kind)
+
+
+def _release_memory():
+    """Hand memory that Arrow's allocator keeps cached back to the system (flat memory)."""
     import pyarrow as pa
 
-    return _query_table(np.empty(0), ["x"], np.empty((0, 1)), np.empty((0, 1)), 1.0, kind)
+    pa.default_memory_pool().release_unused()
 
 
 def _sleep_for_tests():
@@ -710,6 +714,7 @@ def _run_static(ctx, hyper):
         work.manifest["last_time"] = result[4]
         work.manifest["n_chunks"] = i + 1
         work.save()
+        _release_memory()
         bar.update(n)
         _sleep_for_tests()
 
@@ -750,11 +755,8 @@ def _merge(work, n_chunks, out, fmt, kind):
         if parts:
             bio.merge_parts(parts, out / f"{name}.{fmt}", fmt)
         else:
-            import pyarrow as pa
-
             empty = _empty_query(kind) if name == "query" else _frames_table(
                 bio.Chunk(np.empty(0, np.int64), np.empty(0), np.empty((0, 0)),
                           np.empty(0, object)), np.empty(0, object), np.empty(0, object),
                 np.empty(0), np.empty(0), np.empty(0), np.empty(0), kind)
-            del pa
             bio.write_table(empty, out / f"{name}.{fmt}", fmt)
