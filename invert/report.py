@@ -482,31 +482,33 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
         parts.append("<div class='verdict fail'>The intervals below assume a source-free "
                      "harmonic field, which the model check rejects: they are too narrow and "
                      "must not be relied on.</div>")
-    if disk:
-        d = estimate.domain
-        lu = f" {length_unit}" if length_unit else ""
-        c0 = d.from_polar(0.0, 0.0)
+    d = estimate.domain
+    lu = f" {length_unit}" if length_unit else ""
+    c0 = np.asarray(d.center, float)[None, :]
+
+    def where(p):
+        return "(" + ", ".join(_fmt(v, 3) for v in p) + f"{lu})"
+
+    rows = []
+    has_centre = query is not None and np.any(
+        np.linalg.norm(np.asarray(query[0], float) - c0, axis=1) < 1e-9 * d.radius)
+    if not has_centre:
         s = estimate.at(c0, level)
-        rows = []
-        has_centre = query is not None and np.any(
-            np.hypot(*(np.asarray(query[0]) - c0).T) < 1e-9 * d.radius)
-        if not has_centre:
-            rows.append([f"centre ({_fmt(c0[0, 0], 3)}, {_fmt(c0[0, 1], 3)}{lu})",
-                         _fmt(s.mean[0]), _fmt(s.sd[0], 3),
-                         f"{_fmt(s.lower[0])} to {_fmt(s.upper[0])}"])
+        rows.append([f"centre {where(c0[0])}", _fmt(s.mean[0]), _fmt(s.sd[0], 3),
+                     f"{_fmt(s.lower[0])} to {_fmt(s.upper[0])}"])
+    if disk:
         b = estimate.boundary(720, level)
         i, j = int(np.argmax(b["mean"])), int(np.argmin(b["mean"]))
         for name, k in (("rim maximum of the estimate", i), ("rim minimum of the estimate", j)):
             rows.append([f"{name} (θ = {b['theta_deg'][k]:.1f}°)", _fmt(b["mean"][k]),
                          _fmt(b["sd"][k], 3), f"{_fmt(b['lower'][k])} to {_fmt(b['upper'][k])}"])
-        if query is not None:
-            qp, ql = query
-            qs = estimate.at(qp, level)
-            for k, lab in enumerate(ql):
-                rows.append([f"{html.escape(str(lab))} ({_fmt(qp[k, 0], 3)}, {_fmt(qp[k, 1], 3)}"
-                             f"{lu})", _fmt(qs.mean[k]),
-                             _fmt(qs.sd[k], 3), f"{_fmt(qs.lower[k])} to {_fmt(qs.upper[k])}"])
-        parts.append(_table(["where", f"estimate{u}", f"sd{u}", f"{lvl} interval{u}"], rows))
+    if query is not None:
+        qp, ql = query
+        qs = estimate.at(qp, level)
+        for k, lab in enumerate(ql):
+            rows.append([f"{html.escape(str(lab))} {where(qp[k])}", _fmt(qs.mean[k]),
+                         _fmt(qs.sd[k], 3), f"{_fmt(qs.lower[k])} to {_fmt(qs.upper[k])}"])
+    parts.append(_table(["where", f"estimate{u}", f"sd{u}", f"{lvl} interval{u}"], rows))
     mx = diagnostics.max_exceed
     if mx is not None:
         parts.append(

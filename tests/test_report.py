@@ -190,5 +190,6 @@ def test_ball_branch_uses_ball_figures(tmp_path, monkeypatch):
     assert _embedded_images(doc) == [base64.b64encode((tmp_path / "ball_slices.png")
                                                       .read_bytes()).decode()]
     assert not (tmp_path / "rim_profile.png").exists()
+    assert "centre (0, 0, 0)" in doc  # the summary table works in 3-D too
     for c in CAUTIONS:
         assert html.escape(c) in doc
