@@ -77,6 +77,7 @@ def summary_dict(estimate, problem, readings, *, level, extra=None):
             "n_gaps": int(readings.n_gaps),
             "n_on_rim": int(problem.domain.locate(problem.points)[1].sum())
             if problem.points is not None and len(problem.points) else 0,
+            "n_snapped_to_rim": int(problem.n_snapped),
             "gap_sensors": [str(s) for s in problem.gap_sensor],
             "sigma": "given per reading" if readings.sigma is not None else "not given",
         },

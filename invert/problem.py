@@ -47,6 +47,8 @@ class LinearProblem:
         Sensors that gave no reading, kept on record for diagnostics.
     notes : tuple of str
         Facts about how the problem was built (e.g. points snapped onto the rim).
+    n_snapped : int
+        Readings moved onto the rim from just outside it (reported in the summary).
     """
 
     G: np.ndarray
@@ -60,6 +62,7 @@ class LinearProblem:
     gap_sensor: np.ndarray = field(default_factory=lambda: np.array([], dtype=str))
     gap_points: np.ndarray = None
     notes: tuple = ()
+    n_snapped: int = 0
 
     def __post_init__(self):
         G = np.asarray(self.G, dtype=float)
@@ -101,9 +104,12 @@ class LinearProblem:
         obs = readings.observed
         G = domain.design(readings.points[obs])
         notes = []
-        if n_snapped:
-            notes.append(f"{n_snapped} sensor position(s) lay just outside the rim (within the "
-                         f"relative tolerance) and were taken to be on the rim")
+        try:  # more than 1e-4 R outside is more than rounding of typed coordinates
+            domain.locate(readings.points, tol=1e-4)
+        except ValueError:
+            notes.append(f"{n_snapped} sensor position(s) lay outside the rim by more than 1e-4 "
+                         f"of the radius (within the 1e-3 tolerance) and were taken to be on "
+                         f"the rim; check the layout")
         return cls(
             G=G,
             y=readings.value[obs],
@@ -116,6 +122,7 @@ class LinearProblem:
             gap_sensor=readings.sensor[~obs],
             gap_points=readings.points[~obs],
             notes=tuple(notes),
+            n_snapped=n_snapped,
         )
 
     def subset(self, keep):
