@@ -144,64 +144,66 @@ class LogReader:
             bad.append((row.number, row.text))
             return "skip"
 
-        # ~ bytes per row from the first lines, so that a block holds about chunk_rows rows
+        # ~ bytes per row from the first lines, so that a piece holds about chunk_rows rows
         with open(self.path, "rb") as fh:
             head = fh.read(1 << 16)
         lines = max(head.count(b"\n"), 1)
         block = int(min(max(len(head) / lines * self.chunk_rows, 1 << 12), 1 << 30))
-        opts = pcsv.ReadOptions(block_size=block, use_threads=True, encoding="utf8",
-                                skip_rows=self.skip_rows)
+        # The file is cut into pieces at line ends here and each piece parsed on its own
+        # (pyarrow.csv.read_csv on the piece, all threads): the streaming reader read ahead
+        # of a slow consumer, so its memory grew with the length of the log. A record must
+        # therefore not contain a quoted line break (logs of numbers never do).
+        opts = pcsv.ReadOptions(column_names=self.raw_names, use_threads=True,
+                                block_size=1 << 20, encoding="utf8")
         parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
 
-        def open_reader(sensor_type):
+        def convert(sensor_type):
             # the time column is always read as text (numbers or date-times); sensor columns
             # as float64 on the fast path, as text (cell-by-cell fallback) after a failure
             types = {n: (pa.string() if i == self.time_index else sensor_type)
                      for i, n in enumerate(self.raw_names)}
-            conv = pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
+            return pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
                                        null_values=_NULLS, quoted_strings_can_be_null=True)
-            try:
-                return pcsv.open_csv(self.path, read_options=opts, parse_options=parse,
-                                     convert_options=conv)
-            except pa.ArrowInvalid as exc:
-                if sensor_type == pa.string():
-                    raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
-                return None
 
-        reader = open_reader(pa.float64())
-        typed = reader is not None
-        if not typed:
-            reader = open_reader(pa.string())
-        done = 0  # rows yielded so far
-        while True:
-            try:
-                b = reader.read_next_batch()
-            except StopIteration:
-                if bad:
-                    yield None, bad[:]
-                return
-            except pa.ArrowInvalid as exc:
-                if not typed:
-                    raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
-                # a cell that is not a number: reopen with text columns and skip the rows
-                # already delivered (the parser splits rows the same way for any types)
-                typed = False
-                reader = open_reader(pa.string())
-                skipped = 0
-                while skipped < done:
-                    b = reader.read_next_batch()
-                    if skipped + b.num_rows > done:
-                        b = b.slice(done - skipped)
-                        skipped = done
-                        bad.clear()
-                        break
-                    skipped += b.num_rows
+        typed, text = convert(pa.float64()), convert(pa.string())
+
+        def parse_piece(piece):
+            for conv in (typed, text):
+                bad.clear()
+                try:
+                    return pcsv.read_csv(pa.py_buffer(piece), read_options=opts,
+                                         parse_options=parse, convert_options=conv)
+                except pa.ArrowInvalid as exc:
+                    if conv is text:
+                        raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
+            return None  # pragma: no cover
+
+        with open(self.path, "rb") as fh:
+            for _ in range(self.skip_rows + 1):  # comments and the header
+                fh.readline()
+            rest = b""
+            line0 = self.skip_rows + 1  # lines before the current piece
+            while True:
+                data = fh.read(block)
+                if data:
+                    buf = rest + data
+                    cut = buf.rfind(b"\n") + 1
+                    if cut == 0:
+                        rest = buf
+                        continue
+                    piece, rest = buf[:cut], buf[cut:]
                 else:
+                    piece, rest = rest, b""
+                if piece.strip():
+                    table = parse_piece(piece)
+                    # line numbers in the file (1-based) for malformed rows
+                    got = [(line0 + num if num is not None and num > 0 else None, txt)
+                           for num, txt in bad]
                     bad.clear()
-                    continue
-            done += b.num_rows
-            got, bad[:] = bad[:], []
-            yield b, got
+                    yield table, got
+                line0 += piece.count(b"\n")
+                if not data:
+                    return
 
     def __iter__(self):
         start = 0
