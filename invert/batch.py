@@ -3,6 +3,9 @@ r"""Reanalysis of logged frames: per-frame inversion or Kalman smoothing, resuma
 ``run_batch`` reads the log in chunks (bounded memory), gives every input frame one row in
 ``frames.<fmt>`` (``time, frame, status, reason, n_used, centre_mean, centre_sd, chi2``) and
 writes ``query.<fmt>`` (``time, label, mean, sd, lower, upper``) for the frames with an estimate.
+``frame`` is the record number in the log; ``centre_mean``/``centre_sd`` are the mean level
+:math:`a_0` (the value at the centre); ``chi2`` is the whitened residual sum of squares of the
+frame's fit (static) or its normalised innovation squared :math:`v^\top S^{-1}v` (assimilation).
 
 Static mode
     Each frame is the Tikhonov fit with fixed parameters (``Tikhonov(rule="fixed", lam=...,
@@ -615,8 +618,10 @@ def _dask_client(scheduler, n_workers):
 
     if scheduler:
         return Client(scheduler), None
+    # in-process workers talking over loopback TCP only (nothing listens beyond this host)
     cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=False,
-                           host="127.0.0.1", dashboard_address=None)
+                           protocol="tcp://", host="127.0.0.1",
+                           dashboard_address="127.0.0.1:0", scheduler_kwargs={"dashboard": False})
     return Client(cluster), cluster
 
 

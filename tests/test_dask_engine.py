@@ -21,7 +21,9 @@ LOG, LAYOUT = ROOT / "datasets" / "demo_log.csv", ROOT / "datasets" / "demo_layo
 def cluster():
     distributed = pytest.importorskip("dask.distributed")
     cl = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
-                                  host="127.0.0.1", protocol="tcp://", dashboard_address=None)
+                                  host="127.0.0.1", protocol="tcp://",
+                                  dashboard_address="127.0.0.1:0",
+                                  scheduler_kwargs={"dashboard": False})
     try:
         yield cl
     finally:
@@ -80,3 +82,17 @@ def test_parallel_in_time_smoother_on_dask_equals_local(tmp_path, cluster):
     for col in ("mean", "sd", "lower", "upper"):
         np.testing.assert_allclose(qd[col], ql[col], rtol=0, atol=1e-8)
     np.testing.assert_allclose(fd["centre_sd"], fl["centre_sd"], rtol=0, atol=1e-8)
+
+
+def test_command_starts_its_own_loopback_cluster(tmp_path):
+    # `rim-invert batch --engine dask` without --scheduler starts (and closes) a LocalCluster
+    from invert.cli import main
+
+    out = tmp_path / "o"
+    assert main(["batch", str(LOG), "--layout", str(LAYOUT), "--radius", "0.25", "--out",
+                 str(out), "--engine", "dask", "--lam", "0.02", "--noise-sd", "0.05",
+                 "--chunk-rows", "200"]) == 0
+    ref = tmp_path / "r"
+    run_batch(LOG, LAYOUT, radius=0.25, out=ref, lam=0.02, noise_sd=0.05, chunk_rows=200,
+              say=lambda *_: None)
+    pd.testing.assert_frame_equal(_read(out)[1], _read(ref)[1], check_exact=True)
