@@ -168,7 +168,7 @@ def _fit_options(args):
         if args.lam is not None or args.noise_sd is not None:
             raise ValueError("--lam and --noise-sd belong to --method tikhonov")
         if args.fix_smoothness:
-            opts["s"] = args.smoothness
+            opts["fix_s"] = True
         if args.method == "mcmc":
             if args.max_steps < 1:
                 raise ValueError(f"--max-steps must be >= 1, got {args.max_steps}")

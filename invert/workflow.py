@@ -120,13 +120,12 @@ def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
         from .stages import Tikhonov
 
         return Tikhonov(s=s, **options).fit(problem)
-    if method == "gaussian":
-        # s sets the truncation only; the stage estimates s unless options fix it ("s").
-        from .stages import GaussianPosterior
+    if method in ("gaussian", "mcmc"):
+        # s sets the truncation only; these stages estimate s unless fix_s=True holds it at s.
+        from .stages import GaussianPosterior, MCMCSampler
 
-        return GaussianPosterior(**options).fit(problem)
-    if method == "mcmc":
-        from .stages import MCMCSampler
-
-        return MCMCSampler(rng=seed, **options).fit(problem)
+        s_stage = s if options.pop("fix_s", False) else None
+        if method == "gaussian":
+            return GaussianPosterior(s_stage, **options).fit(problem)
+        return MCMCSampler(s=s_stage, rng=seed, **options).fit(problem)
     raise ValueError(f"The 'method' parameter must be one of {METHODS}. Got {method!r} instead.")

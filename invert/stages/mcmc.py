@@ -373,7 +373,7 @@ class MCMCSampler:
             raise ValueError("collapsed=False is the all-coefficient baseline of the default "
                              "model; it cannot be combined with faulty or angle_sd_deg.")
         if self.angle_sd_deg and (problem.points is None or problem.domain is None
-                                  or not hasattr(problem.domain, "to_polar")):
+                                  or getattr(problem.domain, "kind", None) != "disk"):
             raise ValueError("angle_sd_deg needs a problem built from sensor points on a disk "
                              "(LinearProblem.from_readings).")
         if self.s is not None:
