@@ -231,6 +231,7 @@ def _run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, chec
         states.append(emcee.State(p0, random_state=np.random.RandomState(seed).get_state()))
         samplers.append(sampler)
     n, tau, converged = 0, np.inf, False
+    next_check = max(min_steps, check_every)
     with _progress(max_steps, progress, desc) as bar:
         while n < max_steps:
             step = int(min(check_every, max_steps - n))
@@ -238,7 +239,10 @@ def _run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, chec
                 states[k] = samplers[k].run_mcmc(states[k], step, progress=False)
             n += step
             bar.update(step)
-            if n >= min_steps:
+            if n >= next_check or n >= max_steps:
+                # Checks at a geometric schedule (every 25 % growth): the autocorrelation
+                # estimate costs one FFT per walker and parameter.
+                next_check = max(n + check_every, int(1.25 * n))
                 tau = max(_autocorr_max(s.get_chain()[n // 4:]) for s in samplers)
                 if n - n // 4 >= 50 * tau:
                     converged = True
