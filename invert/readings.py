@@ -185,6 +185,20 @@ def _check_duplicate_ids(sensor, points, numbers, source):
             first[sid] = i
 
 
+def _read_with_columns(path, required, dim):
+    """Read a table that must have rows and the columns ``required`` plus the axes."""
+    source = Path(path).name
+    header, rows, numbers = read_table(path, source=source)
+    if not rows:
+        raise InputError(source, "has a header but no rows")
+    axes = ["x", "y", "z"][:dim]
+    missing = [a for a in [*required, *axes] if a not in header]
+    if missing:
+        raise InputError(source, f"missing required column(s) {', '.join(missing)}; "
+                         f"found {', '.join(header)}")
+    return source, header, rows, numbers, axes
+
+
 def load_points(path, *, dim=2):
     """Load POINTS.csv: ``x,y[,z]`` and optional ``label``.
 
@@ -194,15 +208,7 @@ def load_points(path, *, dim=2):
     labels : ndarray of str
     rows : ndarray of int
     """
-    source = Path(path).name
-    header, rows, numbers = read_table(path, source=source)
-    if not rows:
-        raise InputError(source, "has a header but no rows")
-    axes = ["x", "y", "z"][:dim]
-    missing = [a for a in axes if a not in header]
-    if missing:
-        raise InputError(source, f"missing required column(s) {', '.join(missing)}; "
-                         f"found {', '.join(header)}")
+    source, header, rows, numbers, axes = _read_with_columns(path, [], dim)
     pts = np.column_stack([_column(header, rows, numbers, source, a) for a in axes])
     if "label" in header:
         j = header.index("label")
@@ -222,15 +228,7 @@ def load_layout(path, *, dim=2):
     sigma : ndarray or None
     rows : ndarray of int
     """
-    source = Path(path).name
-    header, rows, numbers = read_table(path, source=source)
-    if not rows:
-        raise InputError(source, "has a header but no rows")
-    axes = ["x", "y", "z"][:dim]
-    missing = [a for a in ["sensor", *axes] if a not in header]
-    if missing:
-        raise InputError(source, f"missing required column(s) {', '.join(missing)}; "
-                         f"found {', '.join(header)}")
+    source, header, rows, numbers, axes = _read_with_columns(path, ["sensor"], dim)
     j = header.index("sensor")
     sensor = np.array([r[j] for r in rows], dtype=object)
     blank = np.flatnonzero(sensor == "")
