@@ -55,7 +55,7 @@ def make_log(n, episodes=20, rng=0):
     return t, Y
 
 
-def main(n=1_000_000, episodes=20, n_exact=20_000, max_transient=100, time_scale=3600.0):
+def main(n=1_000_000, episodes=20, n_exact=20_000, max_transient=50, time_scale=3600.0):
     dom = make_domain(1.0)
     th = np.linspace(0, 2 * np.pi, 32, endpoint=False)
     H = dom.design(np.c_[np.cos(th), np.sin(th)])
