@@ -57,7 +57,9 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy import optimize, signal
+from scipy import signal
+
+from ._search import grid_then_refine
 
 __all__ = [
     "CoefficientDynamics",
@@ -585,13 +587,7 @@ def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=1e-10):
         return -log_likelihood(model.with_time_scale(np.exp(logT)), t, Y,
                                steady_tol=steady_tol)
 
-    grid = np.linspace(lo, hi, 9)
-    vals = np.array([nll(g) for g in grid])
-    i = int(np.argmin(vals))
-    a, b = grid[max(i - 1, 0)], grid[min(i + 1, len(grid) - 1)]
-    res = optimize.minimize_scalar(nll, bounds=(a, b), method="bounded",
-                                   options={"xatol": 1e-3})
-    x, fx = (res.x, res.fun) if res.fun <= vals[i] else (grid[i], vals[i])
+    x, fx = grid_then_refine(nll, np.linspace(lo, hi, 9), xatol=1e-3)
     return float(np.exp(x)), float(-fx)
 
 

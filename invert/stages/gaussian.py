@@ -47,6 +47,7 @@ from scipy import optimize
 from ..prior import SmoothnessPrior
 from ..problem import Estimate
 from ._collapsed import extend_modes, single_thread, truncation_floor
+from ._search import grid_then_refine
 from ._spectrum import Spectrum
 from .tikhonov import FitWarning
 
@@ -255,13 +256,7 @@ class GaussianPosterior:
                     cache[s] = self._best_at(problem, s, mode, tau, noise)
                 return -cache[s][1]
 
-            grid = np.linspace(lo, hi, 9)
-            vals = np.array([neg(s) for s in grid])
-            i = int(np.argmin(vals))
-            a, b = grid[max(i - 1, 0)], grid[min(i + 1, len(grid) - 1)]
-            res = optimize.minimize_scalar(neg, bounds=(a, b), method="bounded",
-                                           options={"xatol": 1e-4})
-            s_hat = float(res.x) if res.fun <= vals[i] else float(grid[i])
+            s_hat, _ = grid_then_refine(neg, np.linspace(lo, hi, 9), xatol=1e-4)
             neg(s_hat)
             if s_hat - lo < 1e-3 * (hi - lo) or hi - s_hat < 1e-3 * (hi - lo):
                 notes.append(f"the evidence is largest at the end of the smoothness range "
