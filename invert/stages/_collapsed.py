@@ -168,6 +168,31 @@ class CollapsedModel:
         v = np.where(self.broad[None, :], self.mean_scale**2, v)
         return tau[:, None] ** 2 * v
 
+    def _batch(self, tau, s, noise_var):
+        """Hyperparameter rows as arrays: ``(tau, s, n_batch, noise_var of shape (n_batch, m))``."""
+        tau = np.atleast_1d(np.asarray(tau, float))
+        s = np.atleast_1d(np.asarray(s, float))
+        nb = tau.size
+        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        return tau, s, nb, noise_var
+
+    def _blocks(self, tau, s, noise_var, design, chunk):
+        r"""Yield ``(slice, prior_var, G_r, g_0, B)`` per chunk of hyperparameter rows, with
+        :math:`B = G_r P_r G_r^\top + \operatorname{diag}(noise)` (whitened rows; ``G_r`` the
+        columns with a proper prior, ``g_0`` the broad mean level)."""
+        br = self.broad
+        idx = np.arange(self.m)
+        for a0 in range(0, tau.size, chunk):
+            sl = slice(a0, a0 + chunk)
+            b = tau[sl].size
+            pv = self.prior_var(tau[sl], s[sl])
+            Gw = np.broadcast_to(self.Gw, (b, self.m, self.p)) if design is None else \
+                self.w[None, :, None] * design[sl]
+            Gr, g0 = Gw[:, :, ~br], Gw[:, :, br]
+            B = (Gr * pv[:, None, ~br]) @ np.swapaxes(Gr, 1, 2)
+            B[:, idx, idx] += noise_var[sl]
+            yield sl, pv, Gr, g0, B
+
     # --- marginal likelihood -----------------------------------------------------------------
     def _B(self, tau, s, noise_var):
         m = self.m
@@ -188,10 +213,7 @@ class CollapsedModel:
         design : ndarray of shape (n_batch, m, p), optional
             Per-draw unwhitened design (sensor-angle model); default the problem's ``G``.
         """
-        tau = np.atleast_1d(np.asarray(tau, float))
-        s = np.atleast_1d(np.asarray(s, float))
-        nb = tau.size
-        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        tau, s, nb, noise_var = self._batch(tau, s, noise_var)
         if design is None:
             B = self._B(tau, s, noise_var)
             G0 = np.broadcast_to(self.G0, (nb,) + self.G0.shape)
@@ -217,23 +239,12 @@ class CollapsedModel:
         Comput. 13:1103), with :math:`C^{-1} = B^{-1} - B^{-1}g_0(I/V_0 + g_0^\top B^{-1}
         g_0)^{-1}g_0^\top B^{-1}` (Woodbury). The variance includes the row's noise.
         """
-        tau = np.atleast_1d(np.asarray(tau, float))
-        s = np.atleast_1d(np.asarray(s, float))
-        nb = tau.size
-        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        tau, s, nb, noise_var = self._batch(tau, s, noise_var)
         mu = np.empty((nb, self.m))
         var = np.empty((nb, self.m))
         idx = np.arange(self.m)
         br = self.broad
-        for a0 in range(0, nb, chunk):
-            sl = slice(a0, a0 + chunk)
-            b = tau[sl].size
-            pv = self.prior_var(tau[sl], s[sl])
-            Gw = np.broadcast_to(self.Gw, (b, self.m, self.p)) if design is None else \
-                self.w[None, :, None] * design[sl]
-            Gr, g0 = Gw[:, :, ~br], Gw[:, :, br]
-            B = (Gr * pv[:, None, ~br]) @ np.swapaxes(Gr, 1, 2)
-            B[:, idx, idx] += noise_var[sl]
+        for sl, pv, Gr, g0, B in self._blocks(tau, s, noise_var, design, chunk):
             Ci = np.linalg.inv(B)
             if br.any():
                 X = Ci @ g0  # B^-1 g0
@@ -270,27 +281,16 @@ class CollapsedModel:
         Gaussian conditional (Rasmussen & Williams 2006, §2.2; Bishop 2006, eq. 3.53–3.54).
         """
         rng = np.random.default_rng(rng)
-        tau = np.atleast_1d(np.asarray(tau, float))
-        s = np.atleast_1d(np.asarray(s, float))
-        nb = tau.size
-        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        tau, s, nb, noise_var = self._batch(tau, s, noise_var)
         br = self.broad
         p0 = int(br.sum())
         z = rng.standard_normal((nb, self.p))
         e = rng.standard_normal((nb, self.m))
         mean = np.empty((nb, self.p))
         draw = np.empty((nb, self.p))
-        idx = np.arange(self.m)
-        for a0 in range(0, nb, chunk):
-            sl = slice(a0, a0 + chunk)
-            b = tau[sl].size
-            pv = self.prior_var(tau[sl], s[sl])
-            Gw = np.broadcast_to(self.Gw, (b, self.m, self.p)) if design is None else \
-                self.w[None, :, None] * design[sl]
-            Gr, g0 = Gw[:, :, ~br], Gw[:, :, br]
+        for sl, pv, Gr, g0, B in self._blocks(tau, s, noise_var, design, chunk):
+            b = len(B)
             Pr = pv[:, ~br]
-            B = (Gr * Pr[:, None, :]) @ np.swapaxes(Gr, 1, 2)
-            B[:, idx[:, None] == idx[None, :]] += noise_var[sl]
             y = np.broadcast_to(self.yw, (b, self.m))
             if p0:
                 rhs = np.concatenate([y[:, :, None], g0], axis=2)
@@ -320,10 +320,7 @@ class CollapsedModel:
         """Same as :meth:`conditional` through the SVD of the whitened standard form (slower,
         kept as an independent check)."""
         rng = np.random.default_rng(rng)
-        tau = np.atleast_1d(np.asarray(tau, float))
-        s = np.atleast_1d(np.asarray(s, float))
-        nb = tau.size
-        noise_var = np.broadcast_to(np.asarray(noise_var, float).reshape(nb, -1), (nb, self.m))
+        tau, s, nb, noise_var = self._batch(tau, s, noise_var)
         z = rng.standard_normal((nb, self.p))
         mean = np.empty((nb, self.p))
         draw = np.empty((nb, self.p))
