@@ -216,8 +216,11 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
         q = (pts, labels)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        estimate = workflow.run_stage(problem, method, s=smoothness, seed=seed,
-                                      **(stage_options or {}))
+        try:
+            estimate = workflow.run_stage(problem, method, s=smoothness, seed=seed,
+                                          **(stage_options or {}))
+        except ValueError as exc:  # e.g. too few readings: name the file they came from
+            raise InputError(readings.source, str(exc).splitlines()[0]) from None
     estimate, diag = _diagnose(estimate, problem, level, threshold, seed, q)
     with staged_output(out) as stage:
         summary = write_fit_outputs(stage, estimate, problem, readings, level=level, query=q,

@@ -960,7 +960,10 @@ def diagnose(estimate, problem, *, level=0.9, threshold=None, query=None, labels
             else:
                 pts, names = np.vstack([pts, q]), names + qn
         gaps = gap_dependence(problem, pts)
-    if has_prior:
+    if has_prior and problem.n_readings < 3:
+        warn.append(f"model check skipped: it needs at least 3 readings, got "
+                    f"{problem.n_readings}; nothing here tests whether the field is harmonic")
+    elif has_prior:
         check = model_check(estimate, problem)
         if check.flagged:
             warn.append(check.verdict)

@@ -89,6 +89,7 @@ BAD = [
     ("out.csv", "x,y,value\n0,0,1\n1.5,0,2\n", "row 3: point (1.5, 0) lies outside the disk"),
     ("gaps.csv", "x,y,value\n0,0,\n0.5,0,\n", "no usable reading"),
     ("header.csv", "x,y,value\n", "has a header but no rows"),
+    ("single.csv", "x,y,value\n1,0,5\n0,1,\n", "At least 2 readings are needed; got 1"),
 ]
 
 
@@ -103,6 +104,17 @@ def test_bad_input_one_line_exit_2_nothing_written(tmp_path, capsys, name, conte
     assert message in lines[0], lines[0]
     assert not (tmp_path / "o").exists()
     assert not any(p.name.startswith(".o.staging") for p in tmp_path.iterdir())
+
+
+def test_two_readings_fit_with_model_check_skipped(tmp_path, capsys):
+    # Two readings are enough for a (prior-dominated) fit; the model check needs three and
+    # says it was skipped instead of stopping the fit.
+    f = tmp_path / "two.csv"
+    f.write_text("x,y,value\n1,0,5\n0,1,6\n")
+    code, out, err = run(["fit", f, "--radius", 1, "--out", tmp_path / "o"], capsys)
+    assert code == 0, err
+    s = json.loads((tmp_path / "o" / "summary.json").read_text())
+    assert any("model check skipped" in w for w in s["warnings"])
 
 
 def test_bad_arguments_exit_2(tmp_path, capsys):
