@@ -184,7 +184,7 @@ class Estimate:
         Stage-specific artefacts written beside the standard files when present:
         ``"posterior"`` (an arviz/xarray DataTree, written as ``posterior.nc``) and
         ``"sensor_table"`` (a pandas DataFrame with one row per sensor, written as
-        ``sensors.csv``).
+        ``sensors.csv``); ``"timing_s"`` (seconds per phase of an MCMC fit, not written).
 
     Notes
     -----

@@ -94,6 +94,77 @@ def test_collapsed_loglik_equals_scipy(rng, known):
         assert got[i] == pytest.approx(ref, rel=1e-8, abs=1e-8)
 
 
+def test_spectral_route_equals_scipy_and_the_per_row_route(rng):
+    # One s and one common noise level for the whole batch: the one-SVD route gives
+    # scipy.stats.multivariate_normal.logpdf of the prior predictive (1e-8, algebra) and the
+    # same log density, leave-one-out moments and conditional means as the per-row Cholesky
+    # route (1e-9).
+    prob, _, _ = _scenario(rng, known=True)
+    fast = CollapsedModel(prob, mean_scale=3.0)
+    slow = CollapsedModel(prob, mean_scale=3.0, spectral=False)
+    tau = np.array([0.4, 1.0, 2.5, 7.0])
+    s = np.full(4, 2.5)
+    nv = np.array([[0.5], [1.0], [1.3], [3.0]]) ** 2
+    got = fast.loglik(tau, s, nv)
+    assert fast._spectra and not slow._spectra
+    for i in range(4):
+        P = np.diag(SmoothnessPrior(s=2.5, tau=tau[i], mean_scale=3.0)
+                    .variances(prob.eigenvalues, prob.degrees))
+        C = prob.G @ P @ prob.G.T + np.diag(nv[i, 0] * prob.sigma**2)
+        ref = stats.multivariate_normal(np.zeros(prob.n_readings), C).logpdf(prob.y)
+        assert got[i] == pytest.approx(ref, rel=1e-8, abs=1e-8)
+    np.testing.assert_allclose(got, slow.loglik(tau, s, nv), rtol=1e-9)
+    for a, b in zip(fast.loo_moments(tau, s, nv), slow.loo_moments(tau, s, nv), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-9)
+    np.testing.assert_allclose(fast.conditional(tau, s, nv, rng=0)[0],
+                               slow.conditional(tau, s, nv, rng=0)[0], rtol=1e-9, atol=1e-9)
+    # Rows with their own s or noise level take the per-row route and still agree.
+    mixed_nv = np.tile(nv, (1, prob.n_readings))
+    mixed_nv[:, 0] *= 4.0
+    np.testing.assert_allclose(fast.loglik(tau, s, mixed_nv), slow.loglik(tau, s, mixed_nv),
+                               rtol=1e-12)
+
+
+def test_integrated_time_equals_emcee():
+    # The vectorised estimator equals emcee.autocorr.integrated_time (c = 5) to 1e-12 on AR(1)
+    # chains of several shapes (reference library).
+    import emcee
+
+    from invert.stages._mcmc_diagnostics import integrated_time
+
+    g = np.random.default_rng(5)
+    for shape in [(1000, 32, 1), (1501, 20, 3), (64, 8, 2)]:
+        x = g.standard_normal(shape)
+        for t in range(1, shape[0]):
+            x[t] += 0.8 * x[t - 1]
+        ref = emcee.autocorr.integrated_time(x, c=5, tol=0)
+        np.testing.assert_allclose(integrated_time(x, c=5), ref, rtol=1e-12)
+
+
+def test_fitted_student_move_samples_a_skewed_bounded_target():
+    # emcee with FittedStudentMove alone on x1 ~ Gamma(3) (scipy.stats.gamma: mean 3, var 3;
+    # zero density below 0) and x2 | x1 ~ N(x1, 1) (mean 3, var 4): means and sds within
+    # 4 Monte Carlo standard errors of the exact values.
+    import emcee
+
+    from invert.stages._moves import FittedStudentMove
+
+    def logp(x):
+        lp = stats.gamma(3.0).logpdf(x[:, 0]) - 0.5 * (x[:, 1] - x[:, 0]) ** 2
+        return np.where(x[:, 0] > 0, lp, -np.inf)
+
+    g = np.random.default_rng(11)
+    chains = []
+    for k in range(4):
+        sampler = emcee.EnsembleSampler(32, 2, logp, vectorize=True, moves=FittedStudentMove())
+        state = emcee.State(np.array([3.0, 3.0]) + 0.01 * g.standard_normal((32, 2)),
+                            random_state=np.random.RandomState(k).get_state())
+        sampler.run_mcmc(state, 3000, progress=False)
+        chains.append(np.swapaxes(sampler.get_chain()[500::2], 0, 1))
+    draws = np.concatenate(chains)  # (chain = walker, draw, 2)
+    _assert_matches_gaussian(draws, np.array([3.0, 3.0]), np.sqrt([3.0, 4.0]))
+
+
 def test_conditional_draws_are_the_gaussian_posterior(rng):
     # Bishop (2006) eqs. 3.53-3.54 (information form): conditional means to 1e-9 (algebra);
     # the SVD route agrees; variances of 20000 exact draws within 5 sd of their sampling error
@@ -145,6 +216,43 @@ def test_fixed_hyperparameters_reproduce_closed_form(rng):
                       n_draws=4000).fit(prob)
     assert est.info["sampling"]["converged"]
     _assert_matches_gaussian(_query_draws(est, test), exact.mean, exact.sd)
+
+
+def test_collapsed_sampler_matches_quadrature(rng):
+    # s and the noise fixed: the posterior of log tau is 1-D, so the exact query mean and sd
+    # follow by quadrature over a fine grid of log tau of the Gaussian conditional moments
+    # (Bishop 2006 eqs. 3.53-3.54, law of total variance). The sampler (fitted Student-t and
+    # differential-evolution moves) must agree within 4 Monte Carlo standard errors, for the
+    # query values and for log tau.
+    prob, test, _ = _scenario(rng, n_modes=6)
+    # No points on the problem: its 6 harmonics are kept, so both sides use the same design.
+    prob = LinearProblem(prob.G, prob.y, prob.sigma, prob.degrees, prob.eigenvalues,
+                         prob.domain)
+    est = MCMCSampler(s=2.5, rng=3, progress=False, n_draws=8000).fit(prob)
+    assert est.info["sampling"]["converged"]
+    from invert.stages.mcmc import _Hyper
+
+    hyper = _Hyper(prob, (1.0, 5.0), s=2.5)
+    cm = CollapsedModel(prob, spectral=False)
+    grid = np.linspace(-8, 8, 8001)
+    lp = MCMCSampler._logp_collapsed(grid[:, None], hyper, cm)
+    w = np.exp(lp - lp.max())
+    w /= w.sum()
+    H = prob.domain.design(test)
+    Ni = 1.0 / prob.sigma**2
+    m1 = np.zeros(len(test))
+    m2 = np.zeros(len(test))
+    for lt, wi in zip(grid[w > 1e-14], w[w > 1e-14], strict=True):
+        P = cm.prior_var(np.exp(lt), 2.5)[0]
+        Sig = np.linalg.inv(np.diag(1 / P) + prob.G.T @ (Ni[:, None] * prob.G))
+        mu = H @ (Sig @ prob.G.T @ (Ni * prob.y))
+        m1 += wi * mu
+        m2 += wi * (np.einsum("qi,ij,qj->q", H, Sig, H) + mu**2)
+    _assert_matches_gaussian(_query_draws(est, test), m1, np.sqrt(m2 - m1**2))
+    lt_mean = w @ grid
+    lt_sd = np.sqrt(w @ grid**2 - lt_mean**2)
+    log_tau = np.log(est.extras["posterior"]["posterior"]["tau"].values)[..., None]
+    _assert_matches_gaussian(log_tau, np.array([lt_mean]), np.array([lt_sd]))
 
 
 @pytest.mark.slow
