@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -19,6 +20,8 @@ from pathlib import Path
 import numpy as np
 
 from ._validation import InputError
+
+_NONBLANK = re.compile(rb"\S")
 
 #: Cells read as missing readings (pyarrow's defaults cover these and more).
 _NULLS = ["", "NaN", "nan", "NA", "N/A", "null", "NULL", "None", "-nan", "#N/A"]
@@ -161,18 +164,21 @@ class LogReader:
                                 block_size=1 << 20, encoding="utf8")
         parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
 
-        def convert(sensor_type):
-            # the time column is always read as text (numbers or date-times); sensor columns
-            # as float64 on the fast path, as text (cell-by-cell fallback) after a failure
-            types = {n: (pa.string() if i == self.time_index else sensor_type)
+        def convert(time_type, sensor_type):
+            types = {n: (time_type if i == self.time_index else sensor_type)
                      for i, n in enumerate(self.raw_names)}
             return pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
                                        null_values=_NULLS, quoted_strings_can_be_null=True)
 
-        typed, text = convert(pa.float64()), convert(pa.string())
+        # Fast path: every column float64 (numeric times). After a failure, the time column as
+        # text (numbers or date-times) with float64 sensors, then everything as text (the
+        # cell-by-cell fallback of _convert finds the bad cells). Date-time logs skip the first.
+        numeric = convert(pa.float64(), pa.float64())
+        typed, text = convert(pa.string(), pa.float64()), convert(pa.string(), pa.string())
 
         def parse_piece(piece):
-            for conv in (typed, text):
+            tries = (typed, text) if self.time_kind == "datetime" else (numeric, typed, text)
+            for conv in tries:
                 bad.clear()
                 try:
                     return pcsv.read_csv(pa.py_buffer(piece), read_options=opts,
@@ -185,29 +191,35 @@ class LogReader:
         with open(self.path, "rb") as fh:
             for _ in range(self.skip_rows + 1):  # comments and the header
                 fh.readline()
-            rest = b""
-            line0 = self.skip_rows + 1  # lines before the current piece
+            lines = _LineCounter(self.path, fh.tell(), self.skip_rows + 1)
+            pos = fh.tell()  # file offset of the current piece
             while True:
                 data = fh.read(block)
-                if data:
-                    buf = rest + data
-                    cut = buf.rfind(b"\n") + 1
-                    if cut == 0:
-                        rest = buf
-                        continue
-                    piece, rest = buf[:cut], buf[cut:]
-                else:
-                    piece, rest = rest, b""
-                if piece.strip():
-                    table = parse_piece(piece)
-                    # line numbers in the file (1-based) for malformed rows
-                    got = [(line0 + num if num is not None and num > 0 else None, txt)
-                           for num, txt in bad]
-                    bad.clear()
-                    yield table, got
-                line0 += piece.count(b"\n")
                 if not data:
                     return
+                if len(data) == block:  # not at the end: the piece stops at the last line end
+                    cut = data.rfind(b"\n") + 1
+                    if cut == 0:  # a line longer than the block
+                        block *= 2
+                        fh.seek(pos)
+                        continue
+                    fh.seek(pos + cut)
+                else:
+                    cut = len(data)
+                # a view, not a copy: the piece is handed to pyarrow as it is
+                piece = memoryview(data)[:cut]
+                if _NONBLANK.search(data, 0, cut):
+                    table = parse_piece(piece)
+                    # line numbers in the file (1-based) for malformed rows; newlines before
+                    # the piece are counted only when there is such a row
+                    got = []
+                    if bad:
+                        line0 = lines.before(pos)
+                        got = [(line0 + num if num is not None and num > 0 else None, txt)
+                               for num, txt in bad]
+                    bad.clear()
+                    yield table, got
+                pos += cut
 
     def __iter__(self):
         start = 0
@@ -285,11 +297,12 @@ class LogReader:
                 return np.full(len(t), np.nan), np.ones(len(t), np.int8)
             return t, null.astype(np.int8) * 2
         if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
-            self.time_kind = self.time_kind or "number"
             t = np.asarray(col.cast(pa.float64()).to_numpy(zero_copy_only=False), float)
-            bad = np.where(np.isnan(t), 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
-            if self.time_kind != "number":
+            if self.time_kind is None and np.isfinite(t).any():
+                self.time_kind = "number"
+            if self.time_kind == "datetime":
                 return np.full(len(t), np.nan), np.ones(len(t), np.int8)
+            bad = np.where(np.isnan(t), 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
             return np.where(bad == 0, t, np.nan), bad
         if not pa.types.is_string(col.type):
             col = col.cast(pa.string())
@@ -328,14 +341,33 @@ class LogReader:
         elif self.time_kind == "datetime":
             dt = pd.to_datetime(pd.Series(text), errors="coerce", format="ISO8601", utc=True)
             ok = dt.notna().to_numpy() & ~blank
-            ns = dt.astype("int64", errors="ignore") if ok.all() else None
-            vals = np.array([d.value if o else 0 for d, o in zip(dt, ok, strict=True)]) \
-                if ns is None else np.asarray(ns, np.int64)
+            # nanoseconds whatever unit pandas chose (pandas 3 may give microseconds)
+            vals = dt.dt.tz_localize(None).to_numpy().astype("datetime64[ns]").view(np.int64)
             t[ok] = vals[ok] / 1e9
         else:
             ok = np.zeros(n, bool)
         bad[~ok & ~blank] = 1
         return t, bad
+
+
+class _LineCounter:
+    """Number of lines before a byte offset of a file, counted on demand, front to back."""
+
+    def __init__(self, path, offset, lines):
+        self.path, self.offset, self.lines = path, offset, lines
+
+    def before(self, offset):
+        with open(self.path, "rb") as fh:
+            fh.seek(self.offset)
+            left = offset - self.offset
+            while left > 0:
+                data = fh.read(min(left, 1 << 24))
+                if not data:
+                    break
+                self.lines += data.count(b"\n")
+                left -= len(data)
+        self.offset = offset
+        return self.lines
 
 
 def _parse_cells(col):

@@ -64,6 +64,10 @@ __all__ = ["run_batch", "StaticInverter", "pooled_evidence_fit", "frame_statuses
 #: Test-only: seconds to sleep after each chunk, so a test can kill a run part-way.
 _DELAY_ENV = "RIM_INVERT_TEST_CHUNK_DELAY"
 _WORK = ".batch-work"
+#: New patterns factorised per stacked call (bounds the temporary arrays).
+_FACTOR_BLOCK = 256
+_STATUSES = ("ok", "no-data", "rejected")
+_STATUS_NAMES = np.array(_STATUSES, dtype=object)
 
 
 # --- statuses ----------------------------------------------------------------------------------
@@ -79,9 +83,8 @@ def frame_statuses(chunk, last_time, *, min_readings=1):
     last_time : float
         Last accepted time after the chunk.
     """
-    L = len(chunk)
     reason = chunk.reason.copy()
-    valid = np.array([r is None for r in reason], bool)
+    valid = np.equal(reason, None).astype(bool)
     t = chunk.t
     # a valid frame is accepted iff its time exceeds every earlier valid time (rejected ones
     # never raise the running maximum, since they do not exceed it)
@@ -89,19 +92,18 @@ def frame_statuses(chunk, last_time, *, min_readings=1):
     run = np.maximum.accumulate(np.concatenate([[last_time], prior]))[:-1]
     dup = valid & (t == run)
     back = valid & (t < run)
-    for i in np.flatnonzero(dup):
-        reason[i] = "duplicate time"
-    for i in np.flatnonzero(back):
-        reason[i] = "time out of order (earlier than a previous frame)"
+    reason[dup] = "duplicate time"
+    reason[back] = "time out of order (earlier than a previous frame)"
     accepted = valid & ~dup & ~back
     n_used = np.isfinite(chunk.Y).sum(axis=1)
     few = accepted & (n_used > 0) & (n_used < min_readings)
     for i in np.flatnonzero(few):
         reason[i] = f"only {n_used[i]} reading(s); a fit needs at least {min_readings}"
-    status = np.where(accepted & ~few, np.where(n_used > 0, "ok", "no-data"), "rejected")
+    code = np.where(accepted & ~few, np.where(n_used > 0, 0, 1), 2)
+    status = _STATUS_NAMES[code]
     accepted &= ~few
     new_last = float(np.max(t[accepted])) if accepted.any() else last_time
-    return status.astype(object), reason, accepted, max(new_last, last_time)
+    return status, reason, accepted, max(new_last, last_time)
 
 
 # --- static inversion ----------------------------------------------------------------------------
@@ -124,8 +126,6 @@ class StaticInverter:
     level : float, default=0.9
     max_patterns : int, default=50000
         Size of the pattern cache (least recently used patterns are dropped).
-    n_threads : int, default=2
-        Threads factorising new patterns of a chunk.
 
     Notes
     -----
@@ -137,7 +137,7 @@ class StaticInverter:
     """
 
     def __init__(self, domain, points, sigma, lam, noise_sd, query, *, s=2.0, level=0.9,
-                 max_patterns=50000, n_threads=2):
+                 max_patterns=50000):
         self.domain = domain
         self.points = np.asarray(points, float)
         self.sigma = None if sigma is None else np.asarray(sigma, float)
@@ -155,7 +155,6 @@ class StaticInverter:
         self.Hq = domain.design(self.query)
         self.prior_sd = np.sqrt(SmoothnessPrior(s=s).shape(domain.eigenvalues, domain.degrees))
         self.max_patterns = max_patterns
-        self.n_threads = n_threads
         self._cache = OrderedDict()
         self._lock = threading.Lock()
         self.n_factorised = 0
@@ -169,97 +168,136 @@ class StaticInverter:
         self.__dict__.update(d)
         self._lock = threading.Lock()
 
-    def _pattern(self, key, obs):
-        with self._lock:
-            hit = self._cache.get(key)
-            if hit is not None:
-                self._cache.move_to_end(key)
-                return hit
-        idx = np.flatnonzero(obs)
-        w = np.ones(idx.size) if self.sigma is None else 1.0 / self.sigma[idx]
-        # Spectrum's standard form (same SVD driver, same rank cut-off), only the parts needed
+    def _factorise(self, obs):
+        """Matrices and sds of the patterns ``obs`` (bool rows), all with the same count.
+
+        The patterns are stacked and factorised together (numpy's SVD over a stack: the same
+        LAPACK driver per matrix as :class:`Spectrum`, one call), and every product after it
+        is a stacked product, so there is no Python work per pattern.
+        """
+        b, n = obs.shape
+        m = int(obs[0].sum())
         d = self.prior_sd
-        U, sv, Vt = np.linalg.svd((w[:, None] * self.G[idx]) * d[None, :], full_matrices=True)
-        k = int(np.sum(sv > sv[0] * 1e-13)) if sv.size else 0
-        U, sv = U[:, :k], sv[:k]
-        f = sv**2 / (sv**2 + self.lam)
+        p = len(d)
+        nq = len(self.Hq)
+        lam = self.lam
+        idx = np.nonzero(obs)[1].reshape(b, m)
+        w = np.ones((b, m)) if self.sigma is None else 1.0 / self.sigma[idx]
+        # Spectrum's standard form (same SVD driver, same rank cut-off), only the parts needed
+        if m:
+            U, sv, Vt = np.linalg.svd((w[:, :, None] * self.G[idx]) * d, full_matrices=True)
+        else:
+            U, sv, Vt = np.empty((b, 0, 0)), np.empty((b, 0)), np.broadcast_to(np.eye(p),
+                                                                                (b, p, p))
+        r = sv.shape[1]
+        keep = sv > sv[:, :1] * 1e-13          # the rank cut-off k (a prefix: sv descends)
+        s2 = sv**2
+        f = np.where(keep, s2 / (s2 + lam), 0.0)
+        g = np.divide(f, sv, out=np.zeros_like(f), where=keep)
+        Ur = U[:, :, :r]
         # c = D V diag(f/s) U^T W y  (Spectrum.coef written as a matrix acting on y)
-        Mc = ((d[:, None] * Vt[:k].T) * (f / sv)[None, :]) @ (U.T * w[None, :])
+        Vr = np.swapaxes(Vt[:, :r, :], 1, 2)
+        Mc = ((d[:, None] * Vr) * g[:, None, :]) @ (np.swapaxes(Ur, 1, 2) * w[:, None, :])
         Mq = self.Hq @ Mc
         # covariance B diag(h) B^T with B = D V (full V), h = 1/(s^2 + lam) on the range and
         # 1/lam on the null space (Spectrum.cov_factor): variances as weighted row sums
-        B = d[:, None] * Vt.T
-        h = np.concatenate([1.0 / (sv**2 + self.lam), np.full(len(d) - k, 1.0 / self.lam)])
+        B = d[:, None] * np.swapaxes(Vt, 1, 2)
+        h = np.concatenate([np.where(keep, 1.0 / (s2 + lam), 1.0 / lam),
+                            np.full((b, p - r), 1.0 / lam)], axis=1)
         HB = self.Hq @ B
-        qsd = np.sqrt(self.noise_var * ((HB**2) @ h))
-        c0sd = float(np.sqrt(self.noise_var * ((B[0] ** 2) @ h)))
+        qsd = np.sqrt(self.noise_var * np.einsum("bqp,bp->bq", HB**2, h))
+        c0sd = np.sqrt(self.noise_var * np.einsum("bp,bp->b", B[:, 0] ** 2, h))
         # whitened residual W(I - G M) y = (I - U diag(f) U^T) W y
-        Rw = (np.eye(idx.size) - (U * f[None, :]) @ U.T) * w[None, :]
+        Rw = (np.eye(m) - (Ur * f[:, None, :]) @ np.swapaxes(Ur, 1, 2)) * w[:, None, :]
         # one matrix acting on the full reading vector (zeros at missing sensors):
         # rows = query means, mean level, whitened residuals (padded to n_sensors rows)
-        n = len(self.points)
-        A = np.zeros((len(Mq) + 1 + n, n))
-        A[:len(Mq), idx] = Mq
-        A[len(Mq), idx] = Mc[0]
-        A[len(Mq) + 1:len(Mq) + 1 + idx.size, idx] = Rw
-        entry = (A, np.append(qsd, c0sd))
+        cols = np.concatenate([Mq, Mc[:, :1], Rw, np.zeros((b, n - m, m))], axis=1)
+        A = np.zeros((b, nq + 1 + n, n))
+        A[np.arange(b)[:, None], :, idx] = np.swapaxes(cols, 1, 2)
+        return A, np.concatenate([qsd, c0sd[:, None]], axis=1)
+
+    def _entries(self, packed, obs):
+        """(matrix, sds) of each pattern; ``packed``/``obs``: one row per distinct pattern."""
+        keys = [row.tobytes() for row in packed]
         with self._lock:
-            self._cache[key] = entry
-            self.n_factorised += 1
-            if len(self._cache) > self.max_patterns:
-                self._cache.popitem(last=False)
-        return entry
+            got = [self._cache.get(k) for k in keys]
+        new = [i for i, e in enumerate(got) if e is None]
+        if new:
+            count = obs[new].sum(axis=1)
+            for m in np.unique(count):
+                sel = [new[j] for j in np.flatnonzero(count == m)]
+                for a in range(0, len(sel), _FACTOR_BLOCK):
+                    part = sel[a:a + _FACTOR_BLOCK]
+                    A, sd = self._factorise(obs[part])
+                    for j, i in enumerate(part):
+                        got[i] = (A[j], sd[j])
+            with self._lock:
+                for i in new:
+                    self._cache[keys[i]] = got[i]
+                self.n_factorised += len(new)
+                while len(self._cache) > self.max_patterns:
+                    self._cache.popitem(last=False)
+        with self._lock:
+            for i, k in enumerate(keys):
+                if i not in new and k in self._cache:
+                    self._cache.move_to_end(k)
+        return got
 
     def solve(self, Y):
         """Estimates for frames ``Y`` (rows with at least one reading).
+
+        Frames are grouped by drop-out pattern (one ``np.unique`` over the packed bit rows);
+        new patterns are factorised together (:meth:`_factorise`); the pattern shared by most
+        frames is applied to the whole block in one matrix product and the other patterns,
+        each on its own rows, overwrite theirs.
 
         Returns
         -------
         qmean, qsd : ndarray of shape (n_frames, n_query)
         centre_mean, centre_sd, chi2 : ndarray of shape (n_frames,)
         """
+        Y = np.asarray(Y, float)
         L, n = Y.shape
         nq = len(self.query)
+        nr = nq + 1 + n
         obs = np.isfinite(Y)
         Yz = np.where(obs, Y, 0.0)
-        codes = _pattern_codes(obs)
-        keys, first, inverse = np.unique(codes, return_index=True, return_inverse=True)
-        order = np.argsort(inverse, kind="stable")
-        counts = np.bincount(inverse, minlength=len(keys))
-        ends = np.cumsum(counts)
-        # new patterns are factorised first, two at a time (LAPACK releases the GIL)
-        with self._lock:
-            new = [g for g in range(len(keys)) if obs[first[g]].tobytes() not in self._cache]
-        if len(new) > 8 and self.n_threads > 1:
-            from concurrent.futures import ThreadPoolExecutor
+        packed = np.packbits(obs, axis=1)
+        codes = _pattern_codes(packed)
+        _, first, inverse, counts = np.unique(codes, return_index=True, return_inverse=True,
+                                              return_counts=True)
+        inverse = inverse.ravel()
+        entries = self._entries(packed[first], obs[first])
+        out = np.empty((L, nr))
+        top = int(np.argmax(counts)) if L else 0
+        if L and counts[top] * 4 >= L:
+            # the common pattern on every frame (cheaper than gathering its rows out)
+            np.matmul(Yz, entries[top][0].T, out=out)
+            order = np.argsort(inverse, kind="stable")
+            order = order[inverse[order] != top]
+        else:
+            top = -1
+            order = np.argsort(inverse, kind="stable")
+        if len(order):
+            # the other frames sorted by pattern: one row gather, one product per pattern
+            Ys = Yz[order]
+            res = np.empty((len(order), nr))
+            a = 0
+            for g in np.unique(inverse[order]):
+                b = a + counts[g]
+                np.matmul(Ys[a:b], entries[g][0].T, out=res[a:b])
+                a = b
+            out[order] = res
+        sds = np.array([e[1] for e in entries]).reshape(len(entries), nq + 1)[inverse]
+        chi2 = np.einsum("ij,ij->i", out[:, nq + 1:], out[:, nq + 1:]) / self.noise_var
+        return out[:, :nq], sds[:, :nq], out[:, nq], sds[:, nq], chi2
 
-            with ThreadPoolExecutor(self.n_threads) as pool:
-                list(pool.map(lambda g: self._pattern(obs[first[g]].tobytes(), obs[first[g]]),
-                              new))
-        # frames sorted by pattern: one row gather, then one product per pattern on a slice
-        Ys = Yz[order]
-        out = np.empty((L, nq + 1 + n))
-        sd_s = np.empty((L, nq + 1))
-        for g in range(len(keys)):
-            a, b = ends[g] - counts[g], ends[g]
-            k0 = first[g]
-            A, sd = self._pattern(obs[k0].tobytes(), obs[k0])
-            out[a:b] = Ys[a:b] @ A.T
-            sd_s[a:b] = sd
-        res = np.empty_like(out)
-        res[order] = out
-        sds = np.empty_like(sd_s)
-        sds[order] = sd_s
-        chi2 = np.einsum("ij,ij->i", res[:, nq + 1:], res[:, nq + 1:]) / self.noise_var
-        return res[:, :nq], sds[:, :nq], res[:, nq], sds[:, nq], chi2
 
-
-def _pattern_codes(obs):
-    """One integer per row identifying its drop-out pattern (rows as bit strings)."""
-    packed = np.packbits(obs, axis=1)
+def _pattern_codes(packed):
+    """One integer per row identifying its drop-out pattern (``packed``: rows of packed bits)."""
     nb = packed.shape[1]
     if nb <= 8:
-        pad = np.zeros((len(obs), 8), np.uint8)
+        pad = np.zeros((len(packed), 8), np.uint8)
         pad[:, :nb] = packed
         return pad.view(np.uint64).ravel()
     # wider layouts: the index of the row among the distinct rows
@@ -352,9 +390,6 @@ def _frames_table(chunk, status, reason, n_used, cmean, csd, chi2, kind):
     })
 
 
-_STATUSES = ("ok", "no-data", "rejected")
-
-
 def _status_array(status):
     import pyarrow as pa
 
@@ -367,8 +402,8 @@ def _status_array(status):
 def _reason_array(reason):
     import pyarrow as pa
 
-    has = np.flatnonzero(np.array([r is not None for r in reason], bool)) if len(reason) else []
-    if not len(has):
+    has = ~np.equal(reason, None).astype(bool)
+    if not has.any():
         return pa.nulls(len(reason), type=pa.string())
     return pa.array([None if r is None else str(r) for r in reason], type=pa.string())
 
@@ -394,6 +429,52 @@ def _release_memory():
     import pyarrow as pa
 
     pa.default_memory_pool().release_unused()
+
+
+def _prefetch(iterable, depth=1):
+    """Iterate over ``iterable`` in a background thread, at most ``depth`` items ahead.
+
+    Used for the log reader: the next chunk is parsed (pyarrow's threads, which release the
+    GIL) while this one is solved and written. Memory stays bounded (``depth`` chunks waiting);
+    an error of the reader is raised here, in the consuming thread.
+    """
+    import queue
+
+    q = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    end = object()
+
+    def put(item):
+        while not stop.is_set():
+            try:
+                q.put(item, timeout=0.05)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def produce():
+        try:
+            for item in iterable:
+                if not put((None, item)):
+                    return
+            put((None, end))
+        except BaseException as exc:  # noqa: BLE001 - handed to the consumer
+            put((exc, None))
+
+    worker = threading.Thread(target=produce, name="batch-reader", daemon=True)
+    worker.start()
+    try:
+        while True:
+            exc, item = q.get()
+            if exc is not None:
+                raise exc
+            if item is end:
+                return
+            yield item
+    finally:
+        stop.set()
+        worker.join()
 
 
 def _sleep_for_tests():
@@ -670,13 +751,13 @@ def _hyperparameters(ctx):
 def _count(work, status, reason):
     counts = work.manifest.setdefault("counts", {})
     reasons = work.manifest.setdefault("reasons", {})
-    vals, n = np.unique(status.astype(str), return_counts=True)
-    for v, c in zip(vals, n, strict=True):
-        counts[v] = counts.get(v, 0) + int(c)
-    for r in reason:
-        if r is not None:
-            key = str(r).split(":")[0].split(" at line")[0]
-            reasons[key] = reasons.get(key, 0) + 1
+    for v in sorted(_STATUSES):  # the order np.unique gave
+        c = int(np.count_nonzero(status == v))
+        if c:
+            counts[v] = counts.get(v, 0) + c
+    for r in reason[~np.equal(reason, None).astype(bool)]:
+        key = str(r).split(":")[0].split(" at line")[0]
+        reasons[key] = reasons.get(key, 0) + 1
 
 
 def _static_chunk(inverter, chunk, last_time, kind, fmt):
@@ -724,7 +805,7 @@ def _run_static(ctx, hyper):
         _sleep_for_tests()
 
     try:
-        for i, chunk in enumerate(reader):
+        for i, chunk in enumerate(_prefetch(reader)):
             if i < done:
                 # statuses depend on the last accepted time, restored from the manifest
                 continue

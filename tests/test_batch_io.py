@@ -1,0 +1,121 @@
+"""Reading CSV logs in pieces: line numbers of malformed rows, numeric and date-time times,
+bad cells in later pieces, a last line without a line end.
+
+Oracles: the file as written, read back line by line with Python's csv module (cell counts,
+line numbers), Python's float() for numeric times and pandas.to_datetime for ISO 8601 times.
+Small ``chunk_rows`` cut each log into many pieces.
+"""
+
+import csv
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from invert.batch import run_batch
+
+N_SENSORS = 6
+
+
+@pytest.fixture
+def layout(tmp_path):
+    th = np.linspace(0, 2 * np.pi, N_SENSORS, endpoint=False)
+    path = tmp_path / "layout.csv"
+    path.write_text("sensor,x,y\n" + "".join(f"s{i},{np.cos(t):.12f},{np.sin(t):.12f}\n"
+                                             for i, t in enumerate(th)))
+    return path
+
+
+def _rows(n, rng):
+    th = np.linspace(0, 2 * np.pi, N_SENSORS, endpoint=False)
+    Y = 10 + np.cos(th[None, :] - 0.01 * np.arange(n)[:, None]) \
+        + 0.01 * rng.standard_normal((n, N_SENSORS))
+    Y[rng.random(Y.shape) < 0.05] = np.nan
+    return [["" if np.isnan(v) else f"{v:.6f}" for v in row] for row in Y]
+
+
+def _write(path, times, rows, *, comment=True, final_newline=True):
+    lines = (["# SYNTHETIC test log"] if comment else []) + \
+        ["time," + ",".join(f"s{i}" for i in range(N_SENSORS))] + \
+        [",".join([t, *r]) for t, r in zip(times, rows, strict=True)]
+    path.write_text("\n".join(lines) + ("\n" if final_newline else ""))
+
+
+def _run(log, layout, out, chunk_rows=64):
+    run_batch(log, layout, radius=1.0, out=out, lam=0.05, noise_sd=0.05, fmt="csv",
+              chunk_rows=chunk_rows, say=lambda *_: None)
+    return pd.read_csv(out / "frames.csv")
+
+
+def test_malformed_rows_named_by_their_line_in_the_file(tmp_path, layout):
+    rng = np.random.default_rng(1)
+    rows = _rows(1500, rng)
+    for k in (10, 700, 1401):
+        rows[k] = rows[k] + ["9.9"]                 # one cell too many
+    rows[1402] = rows[1402][:3]                     # too few
+    log = tmp_path / "log.csv"
+    _write(log, [str(float(k)) for k in range(1500)], rows)
+    # expected: every line whose cell count differs from the header's (1-based line numbers)
+    with open(log, newline="") as fh:
+        lines = list(csv.reader(fh))
+    width = len(lines[1])
+    expected = {i + 1 for i, cells in enumerate(lines[2:], start=2) if len(cells) != width}
+    assert len(expected) == 4
+    fr = _run(log, layout, tmp_path / "o")
+    bad = fr[fr["reason"].fillna("").str.startswith("malformed row")]
+    # each comes back once, with the time of its own line and no frame number
+    assert sorted(bad["time"]) == sorted(float(lines[i - 1][0]) for i in expected)
+    assert (bad["status"] == "rejected").all() and (bad["frame"] == -1).all()
+    # pyarrow's multithreaded parser gives no row number; a line, when named, is the right one
+    named = {int(r.rsplit(" ", 1)[1]) for r in bad["reason"] if " at line " in r}
+    assert named <= expected
+    assert len(fr) == 1500
+    # the well-formed records keep their log order and their times
+    good = fr[fr["frame"] >= 0]
+    assert good["frame"].is_unique and good["frame"].is_monotonic_increasing
+    want = [float(cells[0]) for i, cells in enumerate(lines[2:], start=3) if i not in expected]
+    np.testing.assert_array_equal(good["time"].to_numpy(), want)
+
+
+def test_iso_times_over_many_pieces(tmp_path, layout):
+    rng = np.random.default_rng(2)
+    start = pd.Timestamp("2024-03-01T00:00:00Z")
+    times = [(start + pd.Timedelta(seconds=1.5 * k)).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+             for k in range(700)]
+    times[300] = "not-a-time"
+    log = tmp_path / "log.csv"
+    _write(log, times, _rows(700, rng))
+    fr = _run(log, layout, tmp_path / "o").set_index("frame")
+    assert fr.loc[300, "status"] == "rejected" and fr.loc[300, "reason"] == "unparseable time"
+    ok = fr.drop(index=300)
+    assert set(ok["status"]) <= {"ok", "no-data"}
+    ref = pd.to_datetime(pd.Series(times).drop(index=300), utc=True, format="ISO8601")
+    np.testing.assert_array_equal(pd.to_datetime(ok["time"], utc=True).to_numpy(),
+                                  ref.to_numpy())
+
+
+def test_numeric_log_with_bad_cells_in_later_pieces(tmp_path, layout):
+    rng = np.random.default_rng(3)
+    rows = _rows(1000, rng)
+    times = [f"{0.25 * k:.2f}" for k in range(1000)]
+    times[500], times[501] = "x12", ""
+    rows[502][2] = "inf"
+    rows[900][4] = "open"
+    log = tmp_path / "log.csv"
+    _write(log, times, rows, comment=False, final_newline=False)
+    fr = _run(log, layout, tmp_path / "o").set_index("frame")
+    assert len(fr) == 1000                          # the last line has no line end
+    assert fr.loc[500, "reason"] == "unparseable time"
+    assert fr.loc[501, "reason"] == "missing time"
+    assert fr.loc[502, "reason"].startswith("non-finite cell in column 's2'")
+    assert fr.loc[900, "reason"] == "non-numeric cell in column 's4': 'open'"
+    good = fr.drop(index=[500, 501, 502, 900])
+    assert (good["status"] == "ok").all()
+    np.testing.assert_array_equal(good["time"].to_numpy(),
+                                  [float(times[k]) for k in good.index])
+    # the same good frames in one piece give the same estimates (frames are independent)
+    clean = tmp_path / "clean.csv"
+    _write(clean, [times[k] for k in good.index], [rows[k] for k in good.index])
+    one = _run(clean, layout, tmp_path / "c", chunk_rows=65536)
+    np.testing.assert_allclose(one["centre_mean"].to_numpy(),
+                               good["centre_mean"].to_numpy(), rtol=1e-12)
