@@ -18,7 +18,8 @@
    convergence checks, and the coefficient draws; the arviz summaries computed afterwards
    (R-hat, ESS, PSIS-LOO over every kept draw) are reported separately, and the ratio over
    the whole fit is printed too. Both samplers must give the same query answers (differences
-   in units of their combined Monte Carlo standard error). A warm-up fit loads the libraries
+   in units of their combined Monte Carlo standard error) and, when only tau is sampled, the
+   exact values by quadrature over log tau. A warm-up fit loads the libraries
    first, so that neither run pays for imports.
 2. Wall time of a default ``rim-invert demo --method mcmc`` (a new process, as a user runs it),
    against the one-minute budget.
@@ -75,6 +76,36 @@ def _chain_ess(est):
     return run["n_ensembles"] * run["nwalkers"] * (run["n_steps"] - run["burn"]) / run["tau_int"]
 
 
+def _quadrature(problem, pts, s):
+    """Exact query means and sds when only tau is sampled (s fixed, sigma given): quadrature
+    over a fine grid of log tau of the Gaussian conditional moments (Bishop 2006, eqs.
+    3.53-3.54; law of total variance). None when more than tau is sampled."""
+    from invert.stages._collapsed import CollapsedModel
+    from invert.stages.mcmc import _Hyper
+
+    smp = MCMCSampler(s=s, progress=False)
+    prob, hyper, _ = smp._setup(problem, [])
+    if hyper.names != ["log_tau"]:
+        return None
+    cm = CollapsedModel(prob, spectral=False)
+    grid = np.linspace(-10, 15, 25001)
+    lp = MCMCSampler._logp_collapsed(grid[:, None], hyper, cm)
+    w = np.exp(lp - lp.max())
+    w /= w.sum()
+    H = prob.domain.design(pts)
+    Ni = 1.0 / prob.sigma**2
+    GtNG = prob.G.T @ (Ni[:, None] * prob.G)
+    GtNy = prob.G.T @ (Ni * prob.y)
+    m1 = np.zeros(len(pts))
+    m2 = np.zeros(len(pts))
+    for lt, wi in zip(grid[w > 1e-13], w[w > 1e-13], strict=True):
+        Sig = np.linalg.inv(np.diag(1 / cm.prior_var(np.exp(lt), s)[0]) + GtNG)
+        mu = H @ Sig @ GtNy
+        m1 += wi * mu
+        m2 += wi * (np.einsum("qi,ij,qj->q", H, Sig, H) + mu**2)
+    return m1, np.sqrt(m2 - m1**2)
+
+
 def compare(s):
     problem, pts, labels = _demo_problem(s)
     _run(problem, pts, s, rng=0, n_draws=200)  # warm-up: imports, caches
@@ -110,13 +141,24 @@ def compare(s):
                     az.mcse(qf, method="mean", chain_axis=0, draw_axis=1))
     se_s = np.hypot(az.mcse(qc, method="sd", chain_axis=0, draw_axis=1),
                     az.mcse(qf, method="sd", chain_axis=0, draw_axis=1))
+    exact = _quadrature(problem, pts, s)
     print(f"{'query':<14}{'mean coll.':>11}{'mean all':>11}{'sd coll.':>10}{'sd all':>10}"
-          f"{'dmean/se':>10}{'dsd/se':>8}")
+          f"{'dmean/se':>10}{'dsd/se':>8}" + (f"{'exact mean':>12}{'exact sd':>10}"
+                                              if exact else ""))
     for i, lab in enumerate(labels):
         mc, mf = qc[..., i].mean(), qf[..., i].mean()
         sc, sf = qc[..., i].std(ddof=1), qf[..., i].std(ddof=1)
         print(f"{lab:<14}{mc:>11.3f}{mf:>11.3f}{sc:>10.3f}{sf:>10.3f}"
-              f"{(mc - mf) / se_m[i]:>10.2f}{(sc - sf) / se_s[i]:>8.2f}")
+              f"{(mc - mf) / se_m[i]:>10.2f}{(sc - sf) / se_s[i]:>8.2f}" +
+              (f"{exact[0][i]:>12.3f}{exact[1][i]:>10.3f}" if exact else ""))
+    if exact:
+        for name, q in (("collapsed", qc), ("all coefficients", qf)):
+            zm = (q.mean(axis=(0, 1)) - exact[0]) / az.mcse(q, method="mean", chain_axis=0,
+                                                             draw_axis=1)
+            zs = (q.std(axis=(0, 1), ddof=1) - exact[1]) / az.mcse(q, method="sd", chain_axis=0,
+                                                                    draw_axis=1)
+            print(f"{name}: largest |error| / its own MCSE against the exact values: mean "
+                  f"{np.max(np.abs(zm)):.1f}, sd {np.max(np.abs(zs)):.1f}")
     return ratio
 
 

@@ -63,7 +63,9 @@ def test_interval_widens_toward_middle_of_gap_and_probe_narrows(rng):
     y = d.design(pts) @ c + 0.05 * rng.standard_normal(len(pts))
     prob = LinearProblem(d.design(pts), y, np.full(len(y), 0.05), d.degrees, d.eigenvalues, d)
     est = Tikhonov("fixed", lam=0.05**2).fit(prob)  # tau = 1, the truth's prior
-    gap = np.deg2rad(np.linspace(125, 160, 8))
+    # The gap runs from the sensor at 112.5 deg to the one at 202.5 deg: its middle is 157.5
+    # deg (points beyond it mirror points before it, with equal sd).
+    gap = np.deg2rad(np.linspace(125, 157.5, 8))
     sd = est.at(d.from_polar(1.0, gap)).sd
     assert np.all(np.diff(sd) > 0)
     probe = d.from_polar(0.7, np.deg2rad(160))

@@ -272,7 +272,7 @@ def _run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, chec
     return chains, {"n_steps": n, "tau_int": tau, "converged": converged, "acceptance": acc}
 
 
-def _thin(chains, n_draws, min_per_chain=8):
+def _thin(chains, n_draws, min_per_chain=20):
     """Drop the first quarter (>= 12 autocorrelation times once converged) and thin each walker
     to equal length so that all walkers together keep about ``n_draws`` draws.
 
