@@ -391,15 +391,25 @@ def _concat(a, b):
 
 # --- outputs -------------------------------------------------------------------------------------
 def write_table(table, path, fmt):
-    """Write a pyarrow table to ``path`` atomically (temporary file, then ``os.replace``)."""
+    """Write a pyarrow table to ``path`` atomically (temporary file, then ``os.replace``).
+
+    A path ending in ``.arrow`` gets the Arrow IPC file format whatever ``fmt`` says (the part
+    files of a Parquet output: written and read back without encoding, see ``merge_parts``).
+    """
     path = Path(path)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    _write(table, tmp, fmt)
+    _write(table, tmp, "arrow" if path.suffix == ".arrow" else fmt)
     os.replace(tmp, path)
 
 
 def _write(table, path, fmt):
-    if fmt == "parquet":
+    if fmt == "arrow":
+        import pyarrow as pa
+        import pyarrow.ipc
+
+        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema) as w:
+            w.write_table(table)
+    elif fmt == "parquet":
         import pyarrow.parquet as pq
 
         pq.write_table(table, path, compression=_COMPRESSION, use_dictionary=_dict_cols(table))
@@ -435,7 +445,7 @@ def merge_parts(parts, path, fmt):
         writer = None
         try:
             for p in parts:
-                t = pq.read_table(p)
+                t = _read_part(p)
                 if writer is None:
                     writer = pq.ParquetWriter(tmp, t.schema, compression=_COMPRESSION,
                                               use_dictionary=_dict_cols(t))
@@ -451,6 +461,18 @@ def merge_parts(parts, path, fmt):
                         fh.readline()  # header once
                     shutil.copyfileobj(fh, out, 1 << 22)
     os.replace(tmp, path)
+
+
+def _read_part(path):
+    """A part file as a table: Arrow IPC memory-mapped (no copy), else Parquet."""
+    import pyarrow as pa
+    import pyarrow.ipc
+    import pyarrow.parquet as pq
+
+    if Path(path).suffix == ".arrow":
+        with pa.memory_map(str(path)) as src:
+            return pa.ipc.open_file(src).read_all()
+    return pq.read_table(path)
 
 
 def write_json(obj, path):

@@ -511,7 +511,9 @@ class _Work:
         bio.write_json(to_jsonable(self.manifest), self.dir / "manifest.json")
 
     def part(self, name, i, fmt):
-        return self.dir / f"{name}-{i:06d}.{fmt}"
+        # Parquet outputs are merged from Arrow IPC parts (cheap to write, memory-mapped when
+        # merged); CSV parts are concatenated as text
+        return self.dir / f"{name}-{i:06d}.{'arrow' if fmt == 'parquet' else fmt}"
 
     def dump(self, obj, name):
         path = self.dir / name
@@ -606,7 +608,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         "radius": radius, "center": list(domain.center), "n_modes": domain.n_modes,
         "s": smoothness, "lam": lam, "noise_sd": noise_sd, "assimilate": bool(assimilate),
         "time_scale": time_scale, "fmt": fmt, "chunk_rows": chunk_rows, "level": level,
-        "steady_tol": steady_tol, "max_transient": max_transient,
+        "steady_tol": steady_tol, "max_transient": max_transient, "parts": "arrow-ipc",
     }
     signature = {"log": bio.log_signature(log), "options": options}
     out = Path(out)
