@@ -9,7 +9,9 @@ into a temporary folder (not kept), then runs in fresh subprocesses, one after t
 
 Each subprocess reports its wall time and its peak resident memory from
 ``resource.getrusage(RUSAGE_SELF).ru_maxrss``. Printed: seconds, the ratio job / baseline
-(target <= 3) and peak RSS (target < 1.5 GB, flat between sizes).
+(target <= 3), peak RSS (target < 1.5 GB, flat between sizes), the 1-minute load average before
+the pair (the machine is shared: read ratios taken under load with care) and the CPU seconds of
+each process (all threads, imports included).
 
 Usage: ``python bench/bench_batch.py [N ...]``
 """
@@ -17,6 +19,7 @@ Usage: ``python bench/bench_batch.py [N ...]``
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 import tempfile
@@ -30,8 +33,9 @@ import pyarrow.csv as pcsv
 t = time.perf_counter()
 tab = pcsv.read_csv(sys.argv[1])
 dt = time.perf_counter() - t
-print(json.dumps({"seconds": dt, "rows": tab.num_rows,
-                  "rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+ru = resource.getrusage(resource.RUSAGE_SELF)
+print(json.dumps({"seconds": dt, "rows": tab.num_rows, "cpu": ru.ru_utime + ru.ru_stime,
+                  "rss_mb": ru.ru_maxrss / 1024}))
 """
 
 CHILD_JOB = r"""
@@ -41,9 +45,10 @@ t = time.perf_counter()
 s = run_batch(sys.argv[1], sys.argv[2], radius=1.0, out=sys.argv[3], fmt="parquet",
               lam=0.01, noise_sd=0.05, say=lambda *a: None)
 dt = time.perf_counter() - t
+ru = resource.getrusage(resource.RUSAGE_SELF)
 print(json.dumps({"seconds": dt, "frames": s["frames"],
-                  "patterns": s.get("patterns_factorised"),
-                  "rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+                  "patterns": s.get("patterns_factorised"), "cpu": ru.ru_utime + ru.ru_stime,
+                  "rss_mb": ru.ru_maxrss / 1024}))
 """
 
 
@@ -90,6 +95,7 @@ def main(sizes):
             log = Path(tmp) / f"log{n}.csv"
             make_log(log, n)
             mb = log.stat().st_size / 1e6
+            load = os.getloadavg()[0]
             base = child(CHILD_BASE, log)
             job = child(CHILD_JOB, log, log.with_name("layout.csv"), Path(tmp) / f"out{n}")
             rows.append((n, mb, base, job))
@@ -97,7 +103,9 @@ def main(sizes):
                   f"(peak {base['rss_mb']:.0f} MB); batch {job['seconds']:.2f} s "
                   f"(peak {job['rss_mb']:.0f} MB); ratio {job['seconds'] / base['seconds']:.2f}"
                   f" (target <= 3); patterns factorised {job['patterns']}; "
-                  f"statuses {job['frames']}", flush=True)
+                  f"statuses {job['frames']}; load before {load:.2f}; CPU s of the processes "
+                  f"(imports included) pyarrow {base['cpu']:.2f}, batch {job['cpu']:.2f}",
+                  flush=True)
     if len(rows) > 1:
         print(f"peak RSS of the batch: {rows[0][3]['rss_mb']:.0f} MB at {rows[0][0]:,d} frames, "
               f"{rows[-1][3]['rss_mb']:.0f} MB at {rows[-1][0]:,d} frames (target < 1500 MB, "

@@ -71,10 +71,12 @@ class LogReader:
     path : str or Path
         ``.parquet``/``.pq`` files are read with ``pyarrow.parquet.ParquetFile.iter_batches``,
         anything else as CSV: the file is cut into pieces of about ``chunk_rows`` lines at
-        line ends and each piece parsed with ``pyarrow.csv.read_csv`` (sensor columns as
-        float64, or as text with a cell-by-cell fallback when a piece holds a non-number).
-        Leading lines starting with ``#`` are comments. Malformed lines (wrong number of
-        cells) come back as rejected frames at the end of their chunk, with frame ``-1``.
+        line ends and each piece parsed with ``pyarrow.csv.read_csv`` (all threads; every
+        column as float64 first, then the time column as text for date-times, then everything
+        as text with a cell-by-cell fallback when a piece holds a non-number). Leading lines
+        starting with ``#`` are comments. Malformed lines (wrong number of cells) come back as
+        rejected frames at the end of their chunk, with frame ``-1``; their line is named when
+        pyarrow reports it (its multithreaded parser does not).
     sensors : sequence of str
         Sensor ids from the layout; the log's sensor columns must be among them.
     chunk_rows : int, default=65536

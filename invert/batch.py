@@ -14,9 +14,13 @@ Static mode
     drop-out pattern :math:`P` share one factorisation: :math:`H_q M_P` and the sds are computed
     once per pattern from the same standard-form SVD as ``rim-invert fit``
     (:class:`~invert.stages._spectrum.Spectrum`), and the work per frame is a matrix product,
-    vectorised over the frames of a chunk. Parameters are given (``lam``, ``noise_sd``, e.g. from
-    a fit's summary.json) or estimated once on the log by maximising the evidence pooled over a
-    sample of frames with the most common pattern (Bishop 2006, §3.5).
+    vectorised over the frames of a chunk: the new patterns of a chunk are factorised together
+    (one stacked SVD per number of readings), the chunk's most common pattern is applied to all
+    its frames in one product and every other pattern to its own rows. The next chunk is read
+    and parsed in a background thread meanwhile (one chunk ahead). Parameters are given
+    (``lam``, ``noise_sd``, e.g. from a fit's summary.json) or estimated once on the log by
+    maximising the evidence pooled over a sample of frames with the most common pattern (Bishop
+    2006, §3.5).
 Assimilation
     Kalman filter and RTS smoother over the coefficients (:mod:`invert.stages.assimilate`); the
     filtered segments are spilled to disk so memory stays bounded.
@@ -26,9 +30,10 @@ smoothed estimate); ``rejected`` with a reason (duplicate time, time out of orde
 non-finite cell, unparseable or missing time, malformed row, fewer than 2 readings in static
 mode). Times must increase; a frame whose time is not after the last accepted one is rejected.
 
-Resume: chunk outputs are written as part files (temporary file, then ``os.replace``) under
-``OUT/.batch-work`` with a manifest updated the same way after each chunk; a rerun with
-``resume=True`` continues after the last completed chunk, and the merged result is identical.
+Resume: chunk outputs are written as part files (temporary file, then ``os.replace``; Arrow
+IPC for a Parquet output, merged into the final file at the end) under ``OUT/.batch-work`` with a
+manifest updated the same way after each chunk; a rerun with ``resume=True`` continues after the
+last completed chunk, and the merged result is identical.
 
 References
 ----------
@@ -231,16 +236,15 @@ class StaticInverter:
                     A, sd = self._factorise(obs[part])
                     for j, i in enumerate(part):
                         got[i] = (A[j], sd[j])
-            with self._lock:
-                for i in new:
-                    self._cache[keys[i]] = got[i]
-                self.n_factorised += len(new)
-                while len(self._cache) > self.max_patterns:
-                    self._cache.popitem(last=False)
         with self._lock:
-            for i, k in enumerate(keys):
-                if i not in new and k in self._cache:
+            for k in keys:  # least recently used patterns go first when the cache is full
+                if k in self._cache:
                     self._cache.move_to_end(k)
+            for i in new:
+                self._cache[keys[i]] = got[i]
+            self.n_factorised += len(new)
+            while len(self._cache) > self.max_patterns:
+                self._cache.popitem(last=False)
         return got
 
     def solve(self, Y):
@@ -276,7 +280,6 @@ class StaticInverter:
             order = np.argsort(inverse, kind="stable")
             order = order[inverse[order] != top]
         else:
-            top = -1
             order = np.argsort(inverse, kind="stable")
         if len(order):
             # the other frames sorted by pattern: one row gather, one product per pattern
@@ -770,7 +773,7 @@ def _static_chunk(inverter, chunk, last_time, kind, fmt):
     cmean, csd, chi2 = np.full(L, np.nan), np.full(L, np.nan), np.full(L, np.nan)
     ok = status == "ok"
     if ok.any():
-        qm, qs, cm, cs, c2 = inverter.solve(chunk.Y[ok])
+        qm, qs, cm, cs, c2 = inverter.solve(chunk.Y if ok.all() else chunk.Y[ok])
         cmean[ok], csd[ok], chi2[ok] = cm, cs, c2
         qtab = _query_table(chunk.t[ok], inverter.query_labels, qm, qs, inverter.z, kind)
     else:
