@@ -78,7 +78,8 @@ def test_bad_rows_get_statuses_and_the_rest_is_unchanged(tmp_path):
     run_batch(LOG, LAYOUT, radius=0.25, out=out, lam=0.02, noise_sd=0.05, fmt="csv",
               chunk_rows=100, say=lambda *_: None)
     fr = pd.read_csv(out / "frames.csv")
-    n_records = sum(1 for ln in open(LOG) if not ln.startswith("#")) - 1
+    lines = [ln for ln in LOG.read_text().splitlines(keepends=True) if not ln.startswith("#")]
+    n_records = len(lines) - 1
     assert len(fr) == n_records and fr["frame"].is_unique
     st = fr.set_index("frame")
     assert st.loc[100, "status"] == "rejected" and "non-numeric" in st.loc[100, "reason"]
@@ -88,7 +89,6 @@ def test_bad_rows_get_statuses_and_the_rest_is_unchanged(tmp_path):
     assert st.loc[401, "status"] == "rejected" and st.loc[401, "reason"] == "duplicate time"
     assert (fr["status"] == "ok").sum() == n_records - 4
     # clean log with only the good records
-    lines = [ln for ln in open(LOG) if not ln.startswith("#")]
     keep = [lines[0]] + [lines[i + 1] for i in st.index[st["status"] == "ok"]]
     clean = tmp_path / "clean.csv"
     clean.write_text("".join(keep))
