@@ -57,6 +57,64 @@ class Chunk:
         return len(self.t)
 
 
+# --- numpy <-> Arrow without pyarrow's own conversions ------------------------------------------
+# pyarrow.array(...) and Array.to_numpy(...) import pandas on their first call (about a quarter
+# of a second); the static job on a numeric log needs neither, so its columns go through the
+# Arrow buffers directly: numbers as (validity bitmap, values), strings as (validity, offsets,
+# bytes), the layouts of the Arrow columnar format.
+def float_values(col):
+    """A float64 Arrow column (Array or ChunkedArray) as a float64 ndarray, nulls as NaN."""
+    import pyarrow as pa
+
+    if isinstance(col, pa.ChunkedArray):
+        out = np.empty(len(col))
+        a = 0
+        for c in col.chunks:
+            out[a:a + len(c)] = float_values(c)
+            a += len(c)
+        return out
+    n = len(col)
+    validity, data = col.buffers()[:2]
+    if data is None:  # an all-null column may carry no values
+        return np.full(n, np.nan)
+    vals = np.frombuffer(data, np.float64, count=n, offset=col.offset * 8)
+    if col.null_count:
+        bits = np.unpackbits(np.frombuffer(validity, np.uint8), bitorder="little")
+        vals = np.where(bits[col.offset:col.offset + n].astype(bool), vals, np.nan)
+    return vals
+
+
+def arrow_numbers(values, type, mask=None):
+    """A fixed-width Arrow array of ``type`` over ``values`` (nulls where ``mask``)."""
+    import pyarrow as pa
+
+    # timestamps are stored as int64 counts of their unit
+    dtype = np.int64 if pa.types.is_timestamp(type) else np.dtype(type.to_pandas_dtype())
+    vals = np.ascontiguousarray(values, dtype=dtype)
+    n = len(vals)
+    nulls = 0 if mask is None else int(np.count_nonzero(mask))
+    validity = None if not nulls else pa.py_buffer(np.packbits(~np.asarray(mask, bool),
+                                                               bitorder="little"))
+    return pa.Array.from_buffers(type, n, [validity, pa.py_buffer(vals)], null_count=nulls)
+
+
+def arrow_strings(items):
+    """An Arrow string array from a sequence of str or None."""
+    import pyarrow as pa
+
+    n = len(items)
+    enc = [b"" if x is None else str(x).encode() for x in items]
+    valid = np.fromiter((x is not None for x in items), bool, n)
+    offsets = np.zeros(n + 1, np.int64)
+    np.cumsum(np.fromiter(map(len, enc), np.int64, n), out=offsets[1:])
+    if offsets[-1] >= 2**31 - 1:  # beyond 32-bit offsets: pyarrow's own conversion
+        return pa.array(list(items), type=pa.string())
+    nulls = n - int(valid.sum())
+    validity = None if not nulls else pa.py_buffer(np.packbits(valid, bitorder="little"))
+    return pa.Array.from_buffers(pa.string(), n, [validity, pa.py_buffer(offsets.astype(np.int32)),
+                                                  pa.py_buffer(b"".join(enc))], null_count=nulls)
+
+
 def log_signature(path):
     """Size and modification time of the log (a resumed run must see the same file)."""
     st = os.stat(path)
@@ -259,7 +317,7 @@ class LogReader:
         for name, j in self.columns:
             col = batch.column(name)
             if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
-                vals = col.cast(pa.float64()).to_numpy(zero_copy_only=False)
+                vals = float_values(col.cast(pa.float64()))
                 bad = np.zeros(L, bool)
             else:
                 if not pa.types.is_string(col.type):
@@ -299,7 +357,7 @@ class LogReader:
                 return np.full(len(t), np.nan), np.ones(len(t), np.int8)
             return t, null.astype(np.int8) * 2
         if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
-            t = np.asarray(col.cast(pa.float64()).to_numpy(zero_copy_only=False), float)
+            t = float_values(col.cast(pa.float64()))
             if self.time_kind is None and np.isfinite(t).any():
                 self.time_kind = "number"
             if self.time_kind == "datetime":

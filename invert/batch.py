@@ -371,22 +371,22 @@ def _time_array(t, kind):
 
     if kind == "datetime":
         ns = np.where(np.isfinite(t), np.round(np.nan_to_num(t) * 1e9), 0).astype(np.int64)
-        return pa.array(ns, type=pa.int64(), mask=~np.isfinite(t)).cast(pa.timestamp("ns", "UTC"))
-    return pa.array(t, type=pa.float64(), mask=~np.isfinite(t))
+        return bio.arrow_numbers(ns, pa.timestamp("ns", "UTC"), mask=~np.isfinite(t))
+    return bio.arrow_numbers(t, pa.float64(), mask=~np.isfinite(t))
 
 
 def _frames_table(chunk, status, reason, n_used, cmean, csd, chi2, kind):
     import pyarrow as pa
 
     def col(v):
-        return pa.array(v, type=pa.float64(), mask=~np.isfinite(v))
+        return bio.arrow_numbers(v, pa.float64(), mask=~np.isfinite(v))
 
     return pa.table({
         "time": _time_array(chunk.t, kind),
-        "frame": pa.array(chunk.frame),
+        "frame": bio.arrow_numbers(chunk.frame, pa.int64()),
         "status": _status_array(status),
         "reason": _reason_array(reason),
-        "n_used": pa.array(n_used.astype(np.int64)),
+        "n_used": bio.arrow_numbers(n_used, pa.int64()),
         "centre_mean": col(cmean),
         "centre_sd": col(csd),
         "chi2": col(chi2),
@@ -399,7 +399,8 @@ def _status_array(status):
     codes = np.zeros(len(status), np.int8)
     codes[status == "no-data"] = 1
     codes[status == "rejected"] = 2
-    return pa.DictionaryArray.from_arrays(pa.array(codes), pa.array(_STATUSES))
+    return pa.DictionaryArray.from_arrays(bio.arrow_numbers(codes, pa.int8()),
+                                          bio.arrow_strings(_STATUSES))
 
 
 def _reason_array(reason):
@@ -408,7 +409,7 @@ def _reason_array(reason):
     has = ~np.equal(reason, None).astype(bool)
     if not has.any():
         return pa.nulls(len(reason), type=pa.string())
-    return pa.array([None if r is None else str(r) for r in reason], type=pa.string())
+    return bio.arrow_strings(reason)
 
 
 def _query_table(t, labels, qmean, qsd, z, kind):
@@ -416,11 +417,15 @@ def _query_table(t, labels, qmean, qsd, z, kind):
 
     L, nq = qmean.shape
     tt = np.repeat(t, nq)
-    lab = pa.DictionaryArray.from_arrays(pa.array(np.tile(np.arange(nq, dtype=np.int32), L)),
-                                         pa.array([str(x) for x in labels]))
+    lab = pa.DictionaryArray.from_arrays(
+        bio.arrow_numbers(np.tile(np.arange(nq, dtype=np.int32), L), pa.int32()),
+        bio.arrow_strings([str(x) for x in labels]))
     m, s = qmean.ravel(), qsd.ravel()
-    return pa.table({"time": _time_array(tt, kind), "label": lab, "mean": m, "sd": s,
-                     "lower": m - z * s, "upper": m + z * s})
+    f64 = pa.float64()
+    return pa.table({"time": _time_array(tt, kind), "label": lab,
+                     "mean": bio.arrow_numbers(m, f64), "sd": bio.arrow_numbers(s, f64),
+                     "lower": bio.arrow_numbers(m - z * s, f64),
+                     "upper": bio.arrow_numbers(m + z * s, f64)})
 
 
 def _empty_query(kind):
