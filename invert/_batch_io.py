@@ -133,8 +133,9 @@ class LogReader:
         column as float64 first, then the time column as text for date-times, then everything
         as text with a cell-by-cell fallback when a piece holds a non-number). Leading lines
         starting with ``#`` are comments. Malformed lines (wrong number of cells) come back as
-        rejected frames at the end of their chunk, with frame ``-1``; their line is named when
-        pyarrow reports it (its multithreaded parser does not).
+        rejected frames in their place, numbered and with their line in the file named in the
+        reason (found by reading the piece line by line; should that reading ever disagree
+        with pyarrow's, they go to the end of their chunk with frame ``-1``).
     sensors : sequence of str
         Sensor ids from the layout; the log's sensor columns must be among them.
     chunk_rows : int, default=65536
@@ -201,7 +202,7 @@ class LogReader:
 
             pf = pq.ParquetFile(self.path)
             for b in pf.iter_batches(batch_size=self.chunk_rows):
-                yield b, []
+                yield b, [], None
             return
         import pyarrow.csv as pcsv
 
@@ -270,39 +271,80 @@ class LogReader:
                 piece = memoryview(data)[:cut]
                 if _NONBLANK.search(data, 0, cut):
                     table = parse_piece(piece)
-                    # line numbers in the file (1-based) for malformed rows; newlines before
-                    # the piece are counted only when there is such a row
-                    got = []
+                    # Malformed rows (rare): their line numbers in the file and their places
+                    # among the piece's records, found by reading the piece line by line;
+                    # newlines before the piece are counted only when there is such a row.
+                    got, n_rec = [], None
                     if bad:
                         line0 = lines.before(pos)
-                        got = [(line0 + num if num is not None and num > 0 else None, txt)
-                               for num, txt in bad]
+                        got, n_rec = self._locate_malformed(bytes(piece), line0)
+                        if len(got) != len(bad) or table is None or \
+                                table.num_rows != n_rec - len(got):
+                            # The reading disagrees with pyarrow's: keep pyarrow's rows,
+                            # without places (they go to the end of the chunk).
+                            got = [(line0 + num if num is not None and num > 0 else None,
+                                    txt, None) for num, txt in bad]
+                            n_rec = None
                     bad.clear()
-                    yield table, got
+                    yield table, got, n_rec
                 pos += cut
 
     def __iter__(self):
         start = 0
-        for batch, malformed in self._batches():
-            if batch is not None and batch.num_rows:
-                ch = self._convert(batch, start)
-                start += batch.num_rows
-            else:
-                ch = None
-            if malformed:
-                extra = self._malformed(malformed)
-                ch = extra if ch is None else _concat(ch, extra)
+        for batch, malformed, n_rec in self._batches():
+            ch = self._convert(batch, start) if batch is not None and batch.num_rows else None
+            if not malformed:
+                if ch is not None:
+                    start += len(ch)
+                    yield ch
+                continue
+            extra = self._malformed(malformed)
+            if n_rec is None:  # places unknown: at the end of the chunk, frame -1
+                if ch is not None:
+                    start += len(ch)
+                yield extra if ch is None else _concat(ch, extra)
+                continue
+            # every record in log order, numbered by its place in the log
+            at = np.array([r for _, _, r in malformed], np.int64)
+            good = np.setdiff1d(np.arange(n_rec), at)
+            extra.frame[:] = start + at
             if ch is not None:
-                yield ch
+                ch.frame[:] = start + good
+                extra = _concat(ch, extra)
+            order = np.argsort(extra.frame, kind="stable")
+            start += n_rec
+            yield Chunk(extra.frame[order], extra.t[order], extra.Y[order],
+                        extra.reason[order])
+
+    def _locate_malformed(self, piece, line0):
+        """``([(line number, text, place among the piece's records)], number of records)``
+        for the rows of ``piece`` whose number of cells differs from the header's.
+
+        A record is a non-empty line (pyarrow skips empty ones; records never hold a quoted
+        line break, see :meth:`_batches`); cells are split by the csv module, quotes honoured.
+        """
+        import csv
+
+        width = len(self.raw_names)
+        out, rec = [], 0
+        for i, raw in enumerate(piece.split(b"\n")):
+            line = raw.rstrip(b"\r")
+            if not line:
+                continue
+            text = line.decode("utf-8", errors="replace")
+            if len(next(csv.reader([text]))) != width:
+                out.append((line0 + i + 1, text, rec))
+            rec += 1
+        return out, rec
 
     # --- conversion -----------------------------------------------------------------------------
     def _malformed(self, rows):
         n = len(rows)
         reason = np.array([f"malformed row (wrong number of cells)"
                            + (f" at line {num}" if num is not None and num >= 0 else "")
-                           for num, _ in rows], dtype=object)
+                           for num, _, _ in rows], dtype=object)
         t = np.full(n, np.nan)
-        for i, (_, text) in enumerate(rows):
+        for i, (_, text, _) in enumerate(rows):
             cell = (text or "").split(",")[self.time_index] if text else ""
             t[i] = self._time_cells(np.array([cell.strip()], dtype=object))[0][0]
         return Chunk(np.full(n, -1, np.int64), t, np.full((n, len(self.sensors)), np.nan), reason)

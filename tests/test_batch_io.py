@@ -62,19 +62,39 @@ def test_malformed_rows_named_by_their_line_in_the_file(tmp_path, layout):
     expected = {i + 1 for i, cells in enumerate(lines[2:], start=2) if len(cells) != width}
     assert len(expected) == 4
     fr = _run(log, layout, tmp_path / "o")
-    bad = fr[fr["reason"].fillna("").str.startswith("malformed row")]
-    # each comes back once, with the time of its own line and no frame number
-    assert sorted(bad["time"]) == sorted(float(lines[i - 1][0]) for i in expected)
-    assert (bad["status"] == "rejected").all() and (bad["frame"] == -1).all()
-    # pyarrow's multithreaded parser gives no row number; a line, when named, is the right one
-    named = {int(r.rsplit(" ", 1)[1]) for r in bad["reason"] if " at line " in r}
-    assert named <= expected
     assert len(fr) == 1500
-    # the well-formed records keep their log order and their times
-    good = fr[fr["frame"] >= 0]
-    assert good["frame"].is_unique and good["frame"].is_monotonic_increasing
-    want = [float(cells[0]) for i, cells in enumerate(lines[2:], start=3) if i not in expected]
-    np.testing.assert_array_equal(good["time"].to_numpy(), want)
+    # every record once, in log order, numbered by its place among the records
+    np.testing.assert_array_equal(fr["frame"].to_numpy(), np.arange(1500))
+    np.testing.assert_array_equal(fr["time"].to_numpy(), [float(c[0]) for c in lines[2:]])
+    bad = fr[fr["reason"].fillna("").str.startswith("malformed row")]
+    assert (bad["status"] == "rejected").all()
+    # each named by its own line in the file
+    named = [int(r.rsplit(" ", 1)[1]) for r in bad["reason"]]
+    assert named == sorted(expected)
+    assert set(bad["frame"]) == {i - 3 for i in expected}  # line 3 holds record 0
+
+
+def test_malformed_rows_around_blank_lines_and_a_missing_last_line_end(tmp_path, layout):
+    # Blank lines are not records (pyarrow skips them); the line numbers still count them.
+    rng = np.random.default_rng(4)
+    rows = _rows(40, rng)
+    text = "time," + ",".join(f"s{i}" for i in range(N_SENSORS)) + "\n"
+    body = [f"{k}.0," + ",".join(r) for k, r in enumerate(rows)]
+    body[5] += ",1.0"
+    body.insert(7, "")
+    body[20] = "19.0,1,2"
+    log = tmp_path / "log.csv"
+    log.write_text(text + "\n".join(body))  # no line end after the last line
+    with open(log, newline="") as fh:
+        lines = list(csv.reader(fh))
+    expected = [i + 1 for i, cells in enumerate(lines) if cells and len(cells) != len(lines[0])]
+    fr = _run(log, layout, tmp_path / "o", chunk_rows=8)
+    assert len(fr) == 40
+    np.testing.assert_array_equal(fr["frame"].to_numpy(), np.arange(40))
+    np.testing.assert_array_equal(fr["time"].to_numpy(), np.arange(40.0))
+    bad = fr[fr["reason"].fillna("").str.startswith("malformed row")]
+    assert [int(r.rsplit(" ", 1)[1]) for r in bad["reason"]] == expected
+    assert (fr.loc[~fr.index.isin(bad.index), "status"] == "ok").all()
 
 
 def test_iso_times_over_many_pieces(tmp_path, layout):
