@@ -130,7 +130,11 @@ class StaticInverter:
     s : float, default=2.0
     level : float, default=0.9
     max_patterns : int, default=50000
-        Size of the pattern cache (least recently used patterns are dropped).
+        Size of the pattern cache (least recently used patterns are dropped); lowered so that
+        the cache holds at most ``cache_bytes``.
+    cache_bytes : int, default=256 MiB
+        Memory budget of the pattern cache (one entry is a ``(n_query + 1 + n_sensors) x
+        n_sensors`` matrix of float64).
 
     Notes
     -----
@@ -142,7 +146,7 @@ class StaticInverter:
     """
 
     def __init__(self, domain, points, sigma, lam, noise_sd, query, *, s=2.0, level=0.9,
-                 max_patterns=50000):
+                 max_patterns=50000, cache_bytes=256 * 2**20):
         self.domain = domain
         self.points = np.asarray(points, float)
         self.sigma = None if sigma is None else np.asarray(sigma, float)
@@ -159,7 +163,9 @@ class StaticInverter:
                       domain.eigenvalues, domain)
         self.Hq = domain.design(self.query)
         self.prior_sd = np.sqrt(SmoothnessPrior(s=s).shape(domain.eigenvalues, domain.degrees))
-        self.max_patterns = max_patterns
+        n = len(self.points)
+        entry = 8 * ((len(self.query) + 1 + n) * n + len(self.query) + 1)
+        self.max_patterns = int(max(1, min(max_patterns, cache_bytes // entry)))
         self._cache = OrderedDict()
         self._lock = threading.Lock()
         self.n_factorised = 0

@@ -111,6 +111,11 @@ def test_patterns_cached_across_calls_and_evicted():
     small = StaticInverter(dom, pts, None, 0.1, 0.1, [[0.0, 0.0]], max_patterns=3)
     parts = [small.solve(Y[i:i + 7]) for i in range(0, len(Y), 7)]
     assert len(small._cache) <= 3
+    # a memory budget of 2 entries (14 x 12 float64 + 2 sds each) caps the cache the same way
+    tight = StaticInverter(dom, pts, None, 0.1, 0.1, [[0.0, 0.0]], cache_bytes=2 * 8 * 170)
+    assert tight.max_patterns == 2
+    np.testing.assert_allclose(tight.solve(Y)[0], a[0], rtol=1e-12, atol=1e-12)
+    assert len(tight._cache) <= 2
     for x, y in zip(a, b, strict=True):
         np.testing.assert_array_equal(x, y)
     for j in range(5):
