@@ -14,7 +14,7 @@ covers the near-Gaussian 1–3 dimensional posteriors of (log tau, s, log noise)
 integrated autocorrelation time fell from about 4.4 steps (differential evolution alone) to
 about 1.5 in our runs (``bench/bench_mcmc.py``). Mixed with differential-evolution moves, it
 keeps a local move for shapes a single Student-t fits badly. It is not used for the
-all-coefficient baseline: in 26 dimensions its acceptance was 3 %.
+all-coefficient baseline: in 24 dimensions its acceptance was 3 %.
 
 References
 ----------

@@ -203,14 +203,14 @@ def _progress(total, progress, desc):
 
 
 def _moves(d):
-    """emcee moves for a ``d``-dimensional posterior.
+    """emcee moves for a ``d``-dimensional posterior, and their description.
 
     Differential evolution (ter Braak 2006) everywhere: on these posteriors its
     autocorrelation time was about 4x shorter than the stretch move's in our runs. Up to 3
     dimensions (the hyperparameters of the collapsed sampler), 80 % of the steps are
     independence proposals from a Student-t fitted to the complementary half-ensemble
     (:class:`~invert.stages._moves.FittedStudentMove`), which cut the autocorrelation time
-    from about 4.4 to 1.5-2 steps; in 26 dimensions (the all-coefficient baseline) that
+    from about 4.4 to 1.5-2 steps; in 24 dimensions (the all-coefficient baseline) that
     proposal was accepted 3 % of the time, so it is not used there. emcee's DESnookerMove is
     not used: mixed in at 20 % it gave posterior sds 7 % too small on a 17-dimensional
     Gaussian with known answer (emcee 3.1.6).
@@ -220,13 +220,9 @@ def _moves(d):
     from ._moves import FittedStudentMove
 
     if d <= 3:
-        return [(FittedStudentMove(), 0.8), (emcee.moves.DEMove(), 0.2)]
-    return emcee.moves.DEMove()
-
-
-def _describe_moves(d):
-    return ("80 % fitted Student-t independence, 20 % differential-evolution moves" if d <= 3
-            else "differential-evolution moves")
+        return ([(FittedStudentMove(), 0.8), (emcee.moves.DEMove(), 0.2)],
+                "80 % fitted Student-t independence, 20 % differential-evolution moves")
+    return emcee.moves.DEMove(), "differential-evolution moves"
 
 
 def _run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, check_every,
@@ -246,7 +242,8 @@ def _run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, chec
             p0[bad] = centres[k] + 0.1 * ball * rng.standard_normal((int(bad.sum()), d))
         else:
             raise RuntimeError("could not place the walkers where the posterior is positive")
-        sampler = emcee.EnsembleSampler(nwalkers, d, logp, vectorize=True, moves=_moves(d))
+        sampler = emcee.EnsembleSampler(nwalkers, d, logp, vectorize=True,
+                                        moves=_moves(d)[0])
         seed = int(rng.integers(2**32))
         states.append(emcee.State(p0, random_state=np.random.RandomState(seed).get_state()))
         samplers.append(sampler)
@@ -555,7 +552,7 @@ class MCMCSampler:
         self.chains_ = chains
         kept, ids, burn, thin = _thin(chains, int(self.n_draws))
         run.update(burn=burn, thin=thin, nwalkers=nw, n_ensembles=K,
-                   sampler=f"emcee ({_describe_moves(d)}), " +
+                   sampler=f"emcee ({_moves(d)[1]}), " +
                    ("coefficients integrated out" if self.collapsed else "all coefficients"))
         C, D, _ = kept.shape
         flat = kept.reshape(C * D, d)
