@@ -224,6 +224,9 @@ class LogReader:
         opts = pcsv.ReadOptions(column_names=self.raw_names, use_threads=True,
                                 block_size=1 << 20, encoding="utf8")
         parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
+        # Without quoting: a stray quote in a cell would otherwise run on over the following
+        # lines and swallow them into one field (used only when the rows do not add up).
+        unquoted = pcsv.ParseOptions(invalid_row_handler=on_invalid, quote_char=False)
 
         def convert(time_type, sensor_type):
             types = {n: (time_type if i == self.time_index else sensor_type)
@@ -237,7 +240,7 @@ class LogReader:
         numeric = convert(pa.float64(), pa.float64())
         typed, text = convert(pa.string(), pa.float64()), convert(pa.string(), pa.string())
 
-        def parse_piece(piece):
+        def parse_piece(piece, parse=parse):
             tries = (typed, text) if self.time_kind == "datetime" else (numeric, typed, text)
             for conv in tries:
                 bad.clear()
@@ -277,9 +280,12 @@ class LogReader:
                     got, n_rec = [], None
                     if bad:
                         line0 = lines.before(pos)
-                        got, n_rec = self._locate_malformed(bytes(piece), line0)
-                        if len(got) != len(bad) or table is None or \
-                                table.num_rows != n_rec - len(got):
+                        raw = bytes(piece)
+                        got, n_rec = self._locate_malformed(raw, line0)
+                        if not self._adds_up(table, got, bad, n_rec):
+                            table = parse_piece(piece, unquoted)
+                            got, n_rec = self._locate_malformed(raw, line0, quoted=False)
+                        if not self._adds_up(table, got, bad, n_rec):
                             # The reading disagrees with pyarrow's: keep pyarrow's rows,
                             # without places (they go to the end of the chunk).
                             got = [(line0 + num if num is not None and num > 0 else None,
@@ -316,12 +322,19 @@ class LogReader:
             yield Chunk(extra.frame[order], extra.t[order], extra.Y[order],
                         extra.reason[order])
 
-    def _locate_malformed(self, piece, line0):
+    @staticmethod
+    def _adds_up(table, located, reported, n_rec):
+        """Whether pyarrow's rows and malformed rows are the records read line by line."""
+        return len(located) == len(reported) and table is not None and \
+            table.num_rows == n_rec - len(located)
+
+    def _locate_malformed(self, piece, line0, quoted=True):
         """``([(line number, text, place among the piece's records)], number of records)``
         for the rows of ``piece`` whose number of cells differs from the header's.
 
         A record is a non-empty line (pyarrow skips empty ones; records never hold a quoted
-        line break, see :meth:`_batches`); cells are split by the csv module, quotes honoured.
+        line break, see :meth:`_batches`); cells are split by the csv module, quotes honoured,
+        or at every comma when ``quoted`` is False.
         """
         import csv
 
@@ -332,7 +345,8 @@ class LogReader:
             if not line:
                 continue
             text = line.decode("utf-8", errors="replace")
-            if len(next(csv.reader([text]))) != width:
+            cells = next(csv.reader([text])) if quoted else text.split(",")
+            if len(cells) != width:
                 out.append((line0 + i + 1, text, rec))
             rec += 1
         return out, rec

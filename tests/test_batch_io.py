@@ -97,6 +97,28 @@ def test_malformed_rows_around_blank_lines_and_a_missing_last_line_end(tmp_path,
     assert (fr.loc[~fr.index.isin(bad.index), "status"] == "ok").all()
 
 
+def test_stray_quote_does_not_swallow_the_following_rows(tmp_path, layout):
+    # A lone quote would make a CSV parser read on over the following lines (RFC 4180 quoting);
+    # every record must still come back once, in order, the one with the quote rejected for
+    # its cell, the rest read as written (Python's float of the cells as the oracle).
+    rng = np.random.default_rng(6)
+    rows = _rows(300, rng)
+    rows[130][2] = '"' + (rows[130][2] or "10.0")
+    rows[40][1] = '"' + (rows[40][1] or "10.0") + '"'   # a properly quoted number elsewhere
+    log = tmp_path / "log.csv"
+    _write(log, [str(float(k)) for k in range(300)], rows)
+    fr = _run(log, layout, tmp_path / "o")
+    assert len(fr) == 300
+    np.testing.assert_array_equal(fr["frame"].to_numpy(), np.arange(300))
+    np.testing.assert_array_equal(fr["time"].to_numpy(), np.arange(300.0))
+    assert fr.loc[130, "status"] == "rejected"
+    assert fr.loc[130, "reason"].startswith("non-numeric cell in column 's2'")
+    others = fr.drop(index=130)
+    assert set(others["status"]) <= {"ok", "no-data"}
+    want = [sum(c != "" for c in r) for i, r in enumerate(rows) if i != 130]
+    np.testing.assert_array_equal(others["n_used"].to_numpy(), want)
+
+
 def test_iso_times_over_many_pieces(tmp_path, layout):
     rng = np.random.default_rng(2)
     start = pd.Timestamp("2024-03-01T00:00:00Z")
