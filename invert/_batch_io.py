@@ -134,8 +134,10 @@ class LogReader:
         as text with a cell-by-cell fallback when a piece holds a non-number). Leading lines
         starting with ``#`` are comments. Malformed lines (wrong number of cells) come back as
         rejected frames in their place, numbered and with their line in the file named in the
-        reason (found by reading the piece line by line; should that reading ever disagree
-        with pyarrow's, they go to the end of their chunk with frame ``-1``).
+        reason (found by reading the piece line by line). When the rows do not add up, as
+        after a stray quote that would run on over the following lines, the piece is parsed
+        again without quoting, so the quote is a bad cell of its own row; should the counts
+        still disagree, the malformed rows go to the end of their chunk with frame ``-1``.
     sensors : sequence of str
         Sensor ids from the layout; the log's sensor columns must be among them.
     chunk_rows : int, default=65536
