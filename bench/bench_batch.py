@@ -40,7 +40,7 @@ print(json.dumps({"seconds": dt, "rows": tab.num_rows, "cpu": ru.ru_utime + ru.r
 
 CHILD_JOB = r"""
 import json, resource, sys, time
-from invert.batch import run_batch
+from invert.batch.runner import run_batch
 t = time.perf_counter()
 s = run_batch(sys.argv[1], sys.argv[2], radius=1.0, out=sys.argv[3], fmt="parquet",
               lam=0.01, noise_sd=0.05, say=lambda *a: None)

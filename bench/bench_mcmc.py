@@ -80,8 +80,8 @@ def _quadrature(problem, pts, s):
     """Exact query means and sds when only tau is sampled (s fixed, sigma given): quadrature
     over a fine grid of log tau of the Gaussian conditional moments (Bishop 2006, eqs.
     3.53-3.54; law of total variance). None when more than tau is sampled."""
-    from invert.stages._collapsed import CollapsedModel
-    from invert.stages.mcmc import _Hyper
+    from invert.stages.mcmc.collapsed import CollapsedModel
+    from invert.stages.mcmc.sampler import _Hyper
 
     smp = MCMCSampler(s=s, progress=False)
     prob, hyper, _ = smp._setup(problem, [])

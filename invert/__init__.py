@@ -1,26 +1,23 @@
-"""rim-invert: the harmonic field in a disk from rim and interior sensor readings.
+"""rim-invert: the harmonic field in a disk or ball from rim and interior sensor readings.
 
 Cite the methods you use (see the ``References`` section of each stage) and this package as
 "rim-invert, version 0.1".
 """
 
-from ._validation import InputError
 from .batch import run_batch
-from .advise import SensorAdvice
-from .ball import Ball, ball_poisson_kernel, poisson_kernel_nd, real_sph_harm
-from .diagnose import Diagnostics, ModelCheck, ModelCheckWarning, model_check
-from .domain import Disk, DomainError, arc_harmonic_measure, poisson_kernel
+from .diagnostics import Diagnostics, ModelCheck, SensorAdvice, model_check
+from .errors import DomainError, FitWarning, InputError, MCMCWarning, ModelCheckWarning
+from .geometry import (Ball, Disk, arc_harmonic_measure, ball_poisson_kernel, poisson_kernel,
+                       poisson_kernel_nd, real_sph_harm)
+from .io import Readings, load_layout, load_points, load_readings
 from .prior import SmoothnessPrior, truncation_degree
 from .problem import Estimate, LinearProblem, PointSummary
-from .readings import Readings, load_layout, load_points, load_readings
 from .stages import (
     RULES,
     CoefficientDynamics,
-    KalmanSmoother,
-    FitWarning,
     GaussianPosterior,
+    KalmanSmoother,
     MCMCSampler,
-    MCMCWarning,
     Tikhonov,
     gaussian_posterior,
     mcmc,

@@ -11,31 +11,11 @@ import math
 from pathlib import Path
 
 import numpy as np
+from .errors import InputError
 
-__all__ = ["InputError", "check_level", "read_table", "parse_number"]
+__all__ = ["check_level", "read_table", "parse_number"]
 
 
-class InputError(ValueError):
-    """Bad input: one line naming the source, row or column, and the problem.
-
-    Attributes
-    ----------
-    source : str
-        File name (or ``"<DataFrame>"``).
-    row : int or None
-        1-based line number in the file (the header is row 1), as a spreadsheet shows it.
-    column : str or None
-    problem : str
-    """
-
-    def __init__(self, source, problem, *, row=None, column=None):
-        self.source, self.problem, self.row, self.column = str(source), problem, row, column
-        parts = [self.source]
-        if row is not None:
-            parts.append(f"row {row}")
-        if column is not None:
-            parts.append(f"column '{column}'")
-        super().__init__(", ".join(parts) + ": " + problem)
 
 
 def check_level(level, name="level", where="fit"):

@@ -13,7 +13,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ._validation import InputError, check_level
+from ._validation import check_level
+from .errors import InputError
 
 EXIT_BAD_INPUT = 2
 
@@ -192,11 +193,11 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
             domain="disk"):
     """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict.
 
-    ``domain="ball"`` reads x,y,z positions and fits a :class:`~invert.ball.Ball`."""
+    ``domain="ball"`` reads x,y,z positions and fits a :class:`~invert.geometry.ball.Ball`."""
     from . import workflow
-    from .outputs import staged_output, write_fit_outputs
+    from .report.files import staged_output, write_fit_outputs
     from .problem import LinearProblem
-    from .readings import load_points, load_readings
+    from .io.readings import load_points, load_readings
 
     level = check_level(level)
     dim = 3 if domain == "ball" else 2
@@ -228,7 +229,7 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
                                                               "length_unit": length_unit,
                                                               "diagnostics": diag.to_dict()})
         if figures:
-            from .report import write_report
+            from .report.html import write_report
 
             write_report(stage, estimate, problem, readings, level=level, unit=unit,
                          length_unit=length_unit, threshold=threshold, diagnostics=diag,
@@ -242,7 +243,7 @@ def _diagnose(estimate, problem, level, threshold, seed, query=None):
     # Diagnostics of the fit; a failed model check goes first in the estimate's warnings.
     import dataclasses
 
-    from .diagnose import diagnose
+    from .diagnostics.diagnose import diagnose
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -284,10 +285,10 @@ def _cmd_demo(args):
 
 def _cmd_advise(args):
     from . import workflow
-    from .advise import advise
-    from .outputs import staged_output, to_jsonable
+    from .diagnostics.advise import advise
+    from .report.files import staged_output, to_jsonable
     from .problem import LinearProblem
-    from .readings import load_points, load_readings
+    from .io.readings import load_points, load_readings
 
     def points(path):
         if path is None:
@@ -333,7 +334,7 @@ def _cmd_advise(args):
 
 
 def _cmd_batch(args):
-    from .batch import run_batch
+    from .batch.runner import run_batch
 
     if args.calibrate and args.lam is not None:
         raise ValueError("--calibrate and --lam exclude each other")

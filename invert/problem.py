@@ -96,7 +96,7 @@ class LinearProblem:
 
     @classmethod
     def from_readings(cls, readings, domain):
-        """Build the problem from a :class:`~invert.readings.Readings` snapshot.
+        """Build the problem from a :class:`~invert.io.readings.Readings` snapshot.
 
         Gaps are dropped from ``G`` and ``y`` but kept in ``gap_sensor``/``gap_points``.
         """

@@ -1,6 +1,6 @@
 """One-call fitting for notebooks and the command line.
 
-``fit`` turns readings (a DataFrame, a CSV path or a :class:`~invert.readings.Readings`) into an
+``fit`` turns readings (a DataFrame, a CSV path or a :class:`~invert.io.readings.Readings`) into an
 :class:`~invert.problem.Estimate`: it builds the domain with a truncation degree chosen from the
 prior, the linear problem, and runs the chosen stage.
 """
@@ -9,10 +9,10 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .domain import Disk
+from .geometry.disk import Disk
 from .prior import truncation_degree
 from .problem import LinearProblem
-from .readings import Readings, load_readings
+from .io.readings import Readings, load_readings
 
 __all__ = ["fit", "make_domain", "as_readings", "run_stage", "METHODS"]
 
@@ -36,10 +36,10 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
     -----
     For a ball the omitted-variance tail on the sphere decays slowly, so the truncation uses
     ``tol=BALL_TRUNCATION_TOL`` and is capped at ``BALL_MAX_DEGREE`` (values and reasons in
-    :mod:`invert.ball`). ``s`` must exceed 1 on the sphere.
+    :mod:`invert.geometry.ball`). ``s`` must exceed 1 on the sphere.
     """
     if kind == "ball":
-        from .ball import BALL_MAX_DEGREE, BALL_TRUNCATION_TOL, Ball
+        from .geometry.ball import BALL_MAX_DEGREE, BALL_TRUNCATION_TOL, Ball
 
         if not s > 1:
             raise ValueError(f"The 's' parameter must be > 1 for a ball (finite pointwise prior "
@@ -86,7 +86,7 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
     n_modes : int, optional
         Truncation degree; chosen from ``s`` when omitted.
     kind : {"disk", "ball"}, default="disk"
-        The region; a ball reads ``x, y, z`` positions (see :class:`~invert.ball.Ball`).
+        The region; a ball reads ``x, y, z`` positions (see :class:`~invert.geometry.ball.Ball`).
     **options
         Passed to the stage.
 

@@ -1,11 +1,12 @@
 """Inference stages. Each takes a :class:`~invert.problem.LinearProblem` and returns an
 :class:`~invert.problem.Estimate`; none knows the shape of the region."""
 
+from ..errors import FitWarning, MCMCWarning
 from .assimilate import (CoefficientDynamics, KalmanSmoother, SmoothedSeries, fit_time_scale,
                          run_smoother)
 from .gaussian import GaussianPosterior, gaussian_posterior
-from .mcmc import MCMCSampler, MCMCWarning, mcmc
-from .tikhonov import RULES, FitWarning, Tikhonov, tikhonov
+from .mcmc import MCMCSampler, mcmc
+from .tikhonov import RULES, Tikhonov, tikhonov
 
 __all__ = ["Tikhonov", "tikhonov", "RULES", "FitWarning", "GaussianPosterior",
            "gaussian_posterior", "MCMCSampler", "MCMCWarning", "mcmc", "CoefficientDynamics",

@@ -46,10 +46,10 @@ from scipy import optimize
 
 from ..prior import SmoothnessPrior
 from ..problem import Estimate
-from ._collapsed import extend_modes, single_thread, truncation_floor
+from ._truncation import extend_modes, single_thread, truncation_floor
 from ._search import grid_then_refine
 from ._spectrum import Spectrum
-from .tikhonov import FitWarning
+from ..errors import FitWarning
 
 __all__ = ["GaussianPosterior", "gaussian_posterior", "DEFAULT_S_BOUNDS"]
 

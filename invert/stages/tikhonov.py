@@ -41,12 +41,12 @@ from scipy import optimize, stats
 from ..prior import SmoothnessPrior
 from ..problem import Estimate
 from ._spectrum import Spectrum
+from ..errors import FitWarning
 
 __all__ = [
     "Tikhonov",
     "tikhonov",
     "RULES",
-    "FitWarning",
     "gcv_score",
     "loo_score",
     "lcurve_curvature",
@@ -57,8 +57,6 @@ RULES = ("evidence", "gcv", "loo", "lcurve", "discrepancy", "upre", "fixed")
 _NEEDS_SIGMA = ("discrepancy", "upre")
 
 
-class FitWarning(UserWarning):
-    """Numerical or statistical trouble in a fit; the message carries advice and values."""
 
 
 def gcv_score(spec: Spectrum, alpha):

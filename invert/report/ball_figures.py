@@ -1,0 +1,152 @@
+"""Figures of a fit on a ball: a latitude/longitude map of the surface and interior slices.
+
+matplotlib is imported inside the functions that draw. :func:`invert.report.html.write_figures`
+calls :func:`write_figures_ball` when ``estimate.domain.kind == "ball"``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["write_figures_ball", "plot_surface_map", "plot_slices"]
+
+
+def _mpl():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _latlon(domain, points):
+    """Latitude and longitude in degrees of points (projected radially onto the sphere)."""
+    _, polar, azimuth = domain.to_spherical(points)
+    return 90.0 - np.rad2deg(polar), np.rad2deg(azimuth)
+
+
+def _surface_split(domain, points, tol=1e-3):
+    """Mask of points on the sphere (within the rim tolerance)."""
+    if points is None or len(points) == 0:
+        return np.zeros(0, bool)
+    rho, _, _ = domain.to_spherical(points)
+    return rho >= 1 - tol
+
+
+def plot_surface_map(fig, estimate, problem, level=0.9, n=480, unit=""):
+    """Mean and posterior sd on the sphere as latitude/longitude maps, sensors marked.
+
+    Parameters
+    ----------
+    fig : matplotlib Figure
+    estimate, problem
+        The fit.
+    level : float, default=0.9
+    n : int, default=480
+        Rim-grid size passed to ``domain.rim_grid`` (480 gives a 3.75-degree grid).
+    unit : str
+        Unit of the values, for the colour bars.
+    """
+    domain = estimate.domain
+    pts, cols = domain.rim_grid(n)
+    lat = np.unique(cols["lat_deg"])
+    lon = np.unique(cols["lon_deg"])
+    s = estimate.at(pts, level)
+    shape = (lat.size, lon.size)
+    axes = fig.subplots(1, 2, sharey=True)
+    on = _surface_split(domain, problem.points)
+    slat, slon = _latlon(domain, problem.points[on]) if on.any() else (np.array([]),) * 2
+    gaps = problem.gap_points
+    gon = _surface_split(domain, gaps)
+    glat, glon = _latlon(domain, gaps[gon]) if gon.any() else (np.array([]),) * 2
+    for ax, data, title, cmap in ((axes[0], s.mean, "estimated surface value", "inferno"),
+                                  (axes[1], s.sd, "posterior sd", "viridis")):
+        im = ax.pcolormesh(lon, lat, data.reshape(shape), cmap=cmap, shading="nearest")
+        fig.colorbar(im, ax=ax, shrink=0.85, label=f"{title} {unit}".strip())
+        ax.plot(slon, slat, "o", ms=4, mfc="w", mec="k", label="surface reading")
+        if glat.size:
+            ax.plot(glon, glat, "x", ms=7, mew=1.5, color="#d94801", label="no reading")
+        ax.set_xlim(-180, 180)
+        ax.set_ylim(-90, 90)
+        ax.set_xticks(range(-180, 181, 60))
+        ax.set_yticks(range(-90, 91, 30))
+        ax.set_xlabel("longitude (degrees from +x about +z)")
+        ax.set_title(title)
+    axes[0].set_ylabel("latitude (degrees)")
+    axes[1].legend(loc="lower right", fontsize=7)
+
+
+def plot_slices(fig, estimate, problem, level=0.9, n=81, unit="", axes_normal=("z", "x"),
+                near=0.1):
+    """Mean and posterior sd on central planes through the ball (rows: planes).
+
+    Readings within ``near * R`` of a plane are marked on it (interior probes as triangles,
+    surface sensors as circles).
+    """
+    domain = estimate.domain
+    names = {"z": ("x", "y"), "y": ("x", "z"), "x": ("y", "z")}
+    index = {"x": 0, "y": 1, "z": 2}
+    grid = fig.subplots(len(axes_normal), 2, squeeze=False)
+    c = np.asarray(domain.center)
+    on = _surface_split(domain, problem.points)
+    circle = np.linspace(0, 2 * np.pi, 400)
+    for row, axis in zip(grid, axes_normal):
+        us, vs, pts, inside = domain.slice_grid(n, axis)
+        s = estimate.at(pts[inside], level)
+        mean = np.full(len(pts), np.nan)
+        sd = np.full(len(pts), np.nan)
+        mean[inside], sd[inside] = s.mean, s.sd
+        k = index[axis]
+        iu, iv = (index[a] for a in names[axis])
+        close = np.abs(problem.points[:, k] - c[k]) <= near * domain.radius
+        for ax, data, title, cmap in ((row[0], mean, "estimated field", "inferno"),
+                                      (row[1], sd, "posterior sd", "viridis")):
+            im = ax.pcolormesh(us, vs, data.reshape(n, n), cmap=cmap, shading="auto")
+            fig.colorbar(im, ax=ax, shrink=0.85, label=f"{title} {unit}".strip())
+            ax.plot(c[iu] + domain.radius * np.cos(circle), c[iv] + domain.radius * np.sin(circle),
+                    color="k", lw=0.8)
+            ax.plot(problem.points[close & on, iu], problem.points[close & on, iv], "o", ms=4,
+                    mfc="w", mec="k", label="surface reading near plane")
+            ax.plot(problem.points[close & ~on, iu], problem.points[close & ~on, iv], "^", ms=6,
+                    mfc="w", mec="k", label="interior probe near plane")
+            ax.set_aspect("equal")
+            ax.set_xlabel(names[axis][0])
+            ax.set_ylabel(names[axis][1])
+            ax.set_title(f"{title}, plane {axis} = {c[k]:g}")
+        row[1].legend(loc="lower right", fontsize=6)
+
+
+def write_figures_ball(out_dir, estimate, problem, readings=None, level=0.9, unit=""):
+    """Write ``surface_map.png`` and ``interior_slices.png`` into ``out_dir``.
+
+    Parameters
+    ----------
+    out_dir : str or Path
+    estimate : Estimate
+        A fit on a :class:`~invert.geometry.ball.Ball`.
+    problem : LinearProblem
+    readings : Readings, optional
+        Not needed for the drawings (kept for the same call shape as the disk figures).
+    level : float, default=0.9
+    unit : str, default=""
+
+    Returns
+    -------
+    list of Path
+    """
+    plt = _mpl()
+    out = Path(out_dir)
+    fig = plt.figure(figsize=(12, 4.2), layout="constrained")
+    plot_surface_map(fig, estimate, problem, level, unit=unit)
+    fig.suptitle("surface of the ball (latitude/longitude map)")
+    fig.savefig(out / "surface_map.png", dpi=100)
+    plt.close(fig)
+    fig = plt.figure(figsize=(10, 8.4), layout="constrained")
+    plot_slices(fig, estimate, problem, level, unit=unit)
+    fig.suptitle("central slices through the ball")
+    fig.savefig(out / "interior_slices.png", dpi=100)
+    plt.close(fig)
+    return [out / "surface_map.png", out / "interior_slices.png"]
