@@ -19,7 +19,7 @@ from scipy import linalg, stats
 
 from ._validation import check_level
 
-__all__ = ["LinearProblem", "Estimate", "PointSummary"]
+__all__ = ["LinearProblem", "Estimate", "PointSummary", "PriorSummary"]
 
 
 @dataclass(frozen=True)
@@ -156,6 +156,31 @@ class PointSummary:
 
 
 @dataclass(frozen=True, eq=False)
+class PriorSummary:
+    r"""The smoothness prior a stage ended with: :math:`\operatorname{Var} c_n = \tau^2
+    (1+\lambda_n)^{-s}` (mean level broad).
+
+    Parameters
+    ----------
+    s, tau : float or None
+        Smoothness order and prior scale (posterior medians for sampled stages; None when the
+        stage has no prior, e.g. a Kalman smoother whose dynamics carry it).
+    s_draws, tau_draws : ndarray of shape (n_draws,) or None
+        Posterior draws of ``s`` and ``tau`` for sampled stages.
+    """
+
+    s: float | None = None
+    tau: float | None = None
+    s_draws: np.ndarray | None = None
+    tau_draws: np.ndarray | None = None
+
+    @property
+    def known(self) -> bool:
+        """Whether both ``s`` and ``tau`` are set."""
+        return self.s is not None and self.tau is not None
+
+
+@dataclass(frozen=True, eq=False)
 class Estimate:
     r"""Result of any stage: the coefficient posterior (Gaussian or draws) and its metadata.
 
@@ -173,6 +198,8 @@ class Estimate:
         The stage that produced the estimate.
     noise_sd : float or None
         Noise sd used or estimated for a new reading (adds to predictive intervals).
+    prior : PriorSummary
+        The prior's ``s`` and ``tau`` (and their draws for sampled stages).
     df : float or None
         Degrees of freedom of a Student-t posterior (``cov`` is then its scale matrix and
         intervals use t quantiles); None for a Gaussian posterior.
@@ -204,6 +231,7 @@ class Estimate:
     df: float | None = None
     info: dict = field(default_factory=dict)
     warnings: tuple = ()
+    prior: PriorSummary = field(default_factory=PriorSummary)
     extras: dict = field(default_factory=dict)
 
     def __post_init__(self):

@@ -96,32 +96,26 @@ def attenuation(rho, degrees):
     return rho[:, None] ** n[None, :]
 
 
-def _prior_params(info):
-    # (s, tau) recorded by the stage; for sampled hyperparameters, their posterior medians.
-    s, tau = info.get("s"), info.get("tau")
-    hyp = info.get("hyperparameters") or {}
-    if s is None and isinstance(hyp.get("s"), dict):
-        s = hyp["s"].get("median")
-    if tau is None and isinstance(hyp.get("tau"), dict):
-        tau = hyp["tau"].get("median")
-    return s, tau
+def _prior_params(estimate):
+    # (s, tau) the stage recorded; for sampled hyperparameters, their posterior medians.
+    return estimate.prior.s, estimate.prior.tau
 
 
 def prior_variances(estimate) -> np.ndarray:
     """Prior variance of each coefficient, from the ``s`` and ``tau`` the stage recorded.
 
-    Sampled hyperparameters (``info["hyperparameters"]`` of the MCMC stage) are plugged in at
-    their posterior medians.
+    Sampled hyperparameters (``estimate.prior`` of the MCMC stage) are plugged in at their
+    posterior medians.
 
     Raises
     ------
     ValueError
         If the estimate's ``info`` holds neither.
     """
-    s, tau = _prior_params(estimate.info)
+    s, tau = _prior_params(estimate)
     if s is None or tau is None:
-        raise ValueError("The estimate's info must hold the prior's 's' and 'tau'. Got keys "
-                         f"{sorted(estimate.info)} instead.")
+        raise ValueError("The estimate must carry the prior's 's' and 'tau' (Estimate.prior). "
+                         f"Got s={s!r}, tau={tau!r} instead.")
     d = estimate.domain
     return SmoothnessPrior(float(s), float(tau)).variances(d.eigenvalues, d.degrees)
 
@@ -223,7 +217,7 @@ def resolved_degree(estimate, rho, *, n_readings, noise_sd=None) -> np.ndarray:
     Parameters
     ----------
     estimate : Estimate
-        Supplies the prior variances :math:`v_n` (from ``info['s']`` and ``info['tau']``).
+        Supplies the prior variances :math:`v_n` (from ``estimate.prior``).
     rho : array_like
         Relative radii in (0, 1].
     n_readings : int
@@ -620,7 +614,7 @@ def _reml_basis(estimate, problem, noise):
     # decomposition Q' K Q = U diag(kappa) U' serves every tau: with B = Q U, w = B' W y,
     # P0 = W B diag(1/(tau^2 kappa + 1)) B' W (Patterson & Thompson 1971; Harville 1977).
     G, deg = _design(estimate, problem)
-    s_, _ = _prior_params(estimate.info)
+    s_, _ = _prior_params(estimate)
     d = estimate.domain
     shape = SmoothnessPrior(float(s_), 1.0).variances(d.eigenvalues, d.degrees)
     fixed = deg == 0
@@ -723,7 +717,7 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA, refit=True) -> ModelChe
     n_c = len(w)
     if n_c < 2:
         raise ValueError(f"The model check needs at least {p0 + 2} readings. Got {m} instead.")
-    _, tau_fit = _prior_params(estimate.info)
+    _, tau_fit = _prior_params(estimate)
     noise_fit = float(estimate.noise_sd or 1.0)
     if refit:
         x0 = float(tau_fit) ** 2 / (1.0 if known else noise_fit**2) if tau_fit else 1.0
@@ -936,7 +930,7 @@ def diagnose(estimate, problem, *, level=0.9, threshold=None, query=None, labels
     """
     d = estimate.domain
     disk = getattr(d, "kind", "disk") == "disk"
-    has_prior = None not in _prior_params(estimate.info)
+    has_prior = None not in _prior_params(estimate)
     res = radial = gaps = check = None
     at = {}
     warn = []

@@ -45,7 +45,7 @@ import numpy as np
 from scipy import optimize
 
 from ..prior import SmoothnessPrior
-from ..problem import Estimate
+from ..problem import Estimate, PriorSummary
 from ._truncation import extend_modes, single_thread, truncation_floor
 from ._search import grid_then_refine
 from ._spectrum import Spectrum
@@ -329,7 +329,8 @@ class GaussianPosterior:
             warnings.warn(n, FitWarning, stacklevel=2)
         return Estimate(mean=coef, cov=cov, domain=problem.domain, method="gaussian",
                         noise_sd=noise_pred, df=df, info=info,
-                        warnings=tuple(problem.notes) + tuple(notes))
+                        warnings=tuple(problem.notes) + tuple(notes),
+                        prior=PriorSummary(s=info["s"], tau=info["tau"]))
 
 
 def gaussian_posterior(problem, s=None, **kwargs) -> Estimate:

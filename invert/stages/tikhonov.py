@@ -39,7 +39,7 @@ import numpy as np
 from scipy import optimize, stats
 
 from ..prior import SmoothnessPrior
-from ..problem import Estimate
+from ..problem import Estimate, PriorSummary
 from ._spectrum import Spectrum
 from ..errors import FitWarning
 
@@ -238,6 +238,7 @@ class Tikhonov:
         return Estimate(
             mean=coef, cov=cov, domain=problem.domain, method="tikhonov",
             noise_sd=self.noise_sd_, df=t_df, info=info, warnings=tuple(problem.notes) + tuple(notes),
+            prior=PriorSummary(s=info["s"], tau=info["tau"]),
         )
 
     def _default_min_rdof(self, m, known):

@@ -24,6 +24,7 @@ from invert.diagnostics.diagnose import (
     unsensed_arcs,
 )
 from invert.prior import SmoothnessPrior
+from invert.problem import PriorSummary
 from invert.stages import Tikhonov
 
 M, N, SIGMA, LAM = 24, 8, 0.3, 0.05
@@ -219,9 +220,8 @@ def test_sampled_estimate_uses_conditional_posterior_at_median_hyperparameters(d
     # it must reproduce the same Fourier closed form (rtol 1e-8, algebra).
     pb, est = designed
     draws = est.sample(500, rng=0)
-    info = {"hyperparameters": {"s": {"median": 2.0}, "tau": {"median": 1 / np.sqrt(LAM)}}}
     sampled = Estimate(mean=draws.mean(axis=0), draws=draws, domain=pb.domain, method="mcmc",
-                       noise_sd=SIGMA, info=info)
+                       noise_sd=SIGMA, prior=PriorSummary(s=2.0, tau=1 / np.sqrt(LAM)))
     with pytest.raises(ValueError, match="needs the problem"):
         resolution(sampled)
     res = resolution(sampled, pb)

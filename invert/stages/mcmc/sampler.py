@@ -49,7 +49,7 @@ import warnings
 import numpy as np
 from scipy import optimize
 
-from ...problem import Estimate
+from ...problem import Estimate, PriorSummary
 from . import diagnostics as diag
 from .._truncation import extend_modes, single_thread, truncation_floor
 from .collapsed import CollapsedModel
@@ -649,6 +649,9 @@ class MCMCSampler:
         return Estimate(mean=mean, draws=draws, domain=problem.domain, method="mcmc",
                         noise_sd=noise_pred, info=info,
                         warnings=tuple(problem.notes) + tuple(notes),
+                        prior=PriorSummary(s=summ["s"]["median"], tau=summ["tau"]["median"],
+                                           s_draws=np.asarray(s, float).ravel(),
+                                           tau_draws=np.asarray(tau, float).ravel()),
                         extras={"posterior": dt, "sensor_table": table})
 
     def _model_name(self):
