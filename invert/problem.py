@@ -19,7 +19,7 @@ from scipy import linalg, stats
 
 from ._validation import check_level
 
-__all__ = ["LinearProblem", "Estimate", "PointSummary", "PriorSummary"]
+__all__ = ["LinearProblem", "Estimate", "PointSummary", "PriorSummary", "interval_z"]
 
 
 @dataclass(frozen=True)
@@ -134,6 +134,27 @@ class LinearProblem:
             None if self.points is None else self.points[keep], self.gap_sensor,
             self.gap_points, self.notes,
         )
+
+
+def interval_z(level, df=None) -> float:
+    r"""Half-width of the central interval at ``level`` in units of the sd.
+
+    The interval is :math:`m \pm z\,\mathrm{sd}` with :math:`z = \Phi^{-1}((1+\text{level})/2)`,
+    or the Student-t quantile on ``df`` degrees of freedom when ``df`` is given (Wahba 1983).
+
+    Parameters
+    ----------
+    level : float
+        Probability of the central interval, in (0, 1).
+    df : float, optional
+        Degrees of freedom of a Student-t posterior.
+
+    Returns
+    -------
+    float
+    """
+    q = (1 + level) / 2
+    return float(stats.norm.ppf(q) if df is None else stats.t.ppf(q, df))
 
 
 @dataclass(frozen=True)
@@ -315,10 +336,7 @@ class Estimate:
             else:
                 m = H @ self.mean
                 scale = np.sqrt(np.sum((H @ self._root) ** 2, axis=1) + noise**2)
-                if self.df is None:
-                    z = stats.norm.ppf(q[1])
-                else:
-                    z = stats.t.ppf(q[1], self.df)
+                z = interval_z(level, self.df)
                 mean[sl], sd[sl] = m, scale * np.sqrt(self._var_factor)
                 lower[sl], upper[sl] = m - z * scale, m + z * scale
         return PointSummary(mean, sd, lower, upper, level)
