@@ -28,6 +28,39 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
+__all__ = ["Spectrum", "standard_form", "rank_mask", "RANK_RTOL"]
+
+#: Singular values below this fraction of the largest are treated as zero (the numerical rank
+#: of the standard-form matrix; about 1e3 times the double-precision rounding level, common
+#: practice for rank decisions).
+RANK_RTOL = 1e-13
+
+
+def standard_form(G, weights, prior_sd):
+    r"""The standard-form matrix :math:`\tilde A = W G D` (stacks of designs broadcast).
+
+    Parameters
+    ----------
+    G : ndarray of shape (..., m, p)
+    weights : ndarray of shape (..., m)
+        :math:`1/\sigma_i` per reading.
+    prior_sd : ndarray of shape (p,)
+        Prior sd pattern :math:`d_j` with ``tau = 1``.
+
+    Returns
+    -------
+    ndarray of shape (..., m, p)
+    """
+    return (np.asarray(weights, float)[..., :, None] * G) * np.asarray(prior_sd, float)
+
+
+def rank_mask(s):
+    """Singular values kept: ``s > s_max * RANK_RTOL`` (``s`` descending along the last axis)."""
+    s = np.asarray(s, float)
+    if s.shape[-1] == 0:
+        return np.zeros(s.shape, bool)
+    return s > s[..., :1] * RANK_RTOL
+
 
 class Spectrum:
     """Standard-form SVD of a :class:`~invert.problem.LinearProblem` for a given prior shape.
@@ -43,10 +76,10 @@ class Spectrum:
         w = problem.weights
         self.d = np.asarray(prior_sd, dtype=float)
         self.m = problem.n_readings
-        A = (w[:, None] * problem.G) * self.d[None, :]
+        A = standard_form(problem.G, w, self.d)
         yt = w * problem.y
         U, s, Vt = linalg.svd(A, full_matrices=True, lapack_driver="gesdd")
-        k = int(np.sum(s > s[0] * 1e-13)) if s.size else 0
+        k = int(np.sum(rank_mask(s)))
         self.U, self.s, self.Vt = U[:, :k], s[:k], Vt[:k]
         # Rows k: of the full V^T span the null space of A~ (prior-only directions). Keeping
         # them lets the covariance be formed as a sum of positive terms, without the
