@@ -5,29 +5,25 @@ import warnings
 import numpy as np
 import pytest
 
-from invert import Disk, LinearProblem, SmoothnessPrior, Tikhonov, make_domain
+from scenarios import noisy_problem, outside_gap, prior_coefficients, ring_angles
+
+from invert import Disk, LinearProblem, Tikhonov, make_domain
 
 
 def draw_truth(rng, d, s=2.0):
-    v = SmoothnessPrior(s=s, tau=1.0).variances(d.eigenvalues, d.degrees)
-    v[0] = 1.0
-    c = np.sqrt(v) * rng.standard_normal(d.n_coef)
-    c[0] += 20.0
-    return c
+    return prior_coefficients(rng, d, s=s)
 
 
 def scenario(rng, d, known):
     n_rim = int(rng.integers(13, 41))
-    th = np.linspace(0, 2 * np.pi, n_rim, endpoint=False)
+    th = ring_angles(n_rim)
     g0 = rng.uniform(0, 2 * np.pi)
-    keep = (np.mod(th - g0, 2 * np.pi) >= 0.4 * np.pi) & (rng.random(n_rim) >= 0.1)
+    keep = outside_gap(th, g0, 0.2) & (rng.random(n_rim) >= 0.1)
     pts = np.vstack([d.from_polar(1.0, th[keep]),
                      d.from_polar(rng.uniform(0.2, 0.7, 3), rng.uniform(0, 2 * np.pi, 3))])
     sigma = rng.choice([0.02, 0.05, 0.1])
     c = draw_truth(rng, d)
-    y = d.design(pts) @ c + sigma * rng.standard_normal(len(pts))
-    prob = LinearProblem(d.design(pts), y, np.full(len(pts), sigma) if known else None,
-                         d.degrees, d.eigenvalues, d)
+    prob = noisy_problem(rng, d, pts, c, sigma, known=known)
     test = np.vstack([d.from_polar(rng.uniform(0, 0.9, 6), rng.uniform(0, 2 * np.pi, 6)),
                       d.from_polar(1.0, g0 + 0.4 * np.pi * rng.random(4))])  # interior + gap
     return prob, test, d.design(test) @ c

@@ -1,0 +1,42 @@
+"""The one scenario builder of the test suite: truths drawn from the smoothness prior, sensor
+rings with gaps, probes, noisy readings. Every test module that simulates builds from here.
+
+Random streams: each function draws in a fixed order from the ``rng`` it is given, so a test
+that calls them in the same order as before reproduces the same numbers.
+"""
+
+import numpy as np
+
+from invert import LinearProblem, SmoothnessPrior
+
+
+def prior_coefficients(rng, domain, *, s=2.0, tau=1.0, mean=20.0, mean_sd=1.0):
+    """Coefficients drawn from the smoothness prior ``tau^2 (1+lambda_n)^(-s)``.
+
+    The mean level is ``mean + mean_sd * z`` (``mean_sd=0`` fixes it at ``mean``); one call of
+    ``rng.standard_normal(domain.n_coef)``.
+    """
+    v = SmoothnessPrior(s=s, tau=tau).variances(domain.eigenvalues, domain.degrees)
+    v[0] = mean_sd**2
+    c = np.sqrt(v) * rng.standard_normal(domain.n_coef)
+    c[0] += mean
+    return c
+
+
+def ring_angles(n, *, offset=0.0):
+    """``n`` equally spaced angles from ``offset`` (radians)."""
+    return np.linspace(0, 2 * np.pi, n, endpoint=False) + offset
+
+
+def outside_gap(theta, start, gap):
+    """Mask of the angles outside the ccw arc of ``gap`` turns (fraction of 2 pi) from ``start``."""
+    return np.mod(theta - start, 2 * np.pi) >= 2 * np.pi * gap
+
+
+def noisy_problem(rng, domain, points, c, sigma, *, known=True, sensor=None):
+    """Readings ``G c + sigma * z`` at ``points`` as a LinearProblem (``sigma`` hidden unless
+    ``known``); one call of ``rng.standard_normal(len(points))``."""
+    G = domain.design(points)
+    y = G @ c + sigma * rng.standard_normal(len(points))
+    return LinearProblem(G, y, np.full(len(points), sigma) if known else None, domain.degrees,
+                         domain.eigenvalues, domain, sensor=sensor, points=points)
