@@ -11,7 +11,7 @@ PYTHON ?= $(shell for c in python3.13 python3.12 \
 	  if command -v $$c >/dev/null 2>&1 && $$c -c 'import sys; sys.exit(0 if sys.version_info >= (3, 12) else 1)' >/dev/null 2>&1; then \
 	    echo $$c; break; fi; done)
 
-.PHONY: demo test test-all bench clean venv
+.PHONY: demo test lint bench clean venv
 
 venv: $(STAMP)
 
@@ -32,6 +32,10 @@ demo: $(STAMP)
 # when dask workers or parallel tests run beside them.
 test: $(STAMP)
 	OMP_NUM_THREADS=1 OPENBLAS_NUM_THREADS=1 MKL_NUM_THREADS=1 $(VENV)/bin/python -m pytest -q tests
+
+# Lint with the rules pyproject.toml selects (CI runs this before the tests).
+lint: $(STAMP)
+	$(VENV)/bin/ruff check invert tests
 
 bench: $(STAMP)
 	for b in bench/bench_*.py; do $(VENV)/bin/python $$b || exit 1; done
