@@ -1,25 +1,24 @@
-"""Reading logged frames in bounded chunks and writing batch outputs part by part.
+"""Wide logs, CSV or Parquet: one time column and one column per sensor (a :class:`LogSource`).
 
-pandas and pyarrow live here (and in :mod:`invert.batch.runner`); the numerical stages never see them.
-
-A log is CSV or Parquet: one time column (named ``time``, any case, else the first column) and
-one column per sensor id; a blank or NaN cell is a missing reading. Every record comes back as a
-frame, with a rejection reason when it cannot be used (text in a number, an unparseable time, a
-row with the wrong number of cells), so nothing is silently dropped.
+The time column is named ``time`` (any case), else it is the first column; every other column
+is a sensor id of the layout; a blank or NaN cell is a missing reading. Every record comes back
+as a frame, with a rejection reason when it cannot be used (text in a number, an unparseable
+time, a row with the wrong number of cells), so nothing is silently dropped.
 """
 
 from __future__ import annotations
 
-import json
 import os
 import re
-import shutil
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import InputError
+from .arrow import float_values
+from .sources import Chunk
+
+__all__ = ["WideLogReader", "log_signature"]
 
 _NONBLANK = re.compile(rb"\S")
 
@@ -27,102 +26,16 @@ _NONBLANK = re.compile(rb"\S")
 _NULLS = ["", "NaN", "nan", "NA", "N/A", "null", "NULL", "None", "-nan", "#N/A"]
 
 
-#: Parquet compression of the outputs: float columns of estimates hardly compress, and
-#: encoding time matters at millions of frames.
-_COMPRESSION = "none"
-
-
-@dataclass
-class Chunk:
-    """One chunk of frames, in log order.
-
-    Attributes
-    ----------
-    frame : ndarray of int64, shape (L,)
-        0-based record number in the log (``-1`` for malformed lines found by the CSV parser).
-    t : ndarray of float, shape (L,)
-        Time in seconds (numeric logs: the number as written); NaN when unparseable.
-    Y : ndarray of shape (L, n_sensors)
-        Readings in layout order; NaN where missing (or where the cell was rejected).
-    reason : ndarray of object, shape (L,)
-        Rejection reason or None.
-    """
-
-    frame: np.ndarray
-    t: np.ndarray
-    Y: np.ndarray
-    reason: np.ndarray
-
-    def __len__(self):
-        return len(self.t)
-
-
-# --- numpy <-> Arrow without pyarrow's own conversions ------------------------------------------
-# pyarrow.array(...) and Array.to_numpy(...) import pandas on their first call (about a quarter
-# of a second); the static job on a numeric log needs neither, so its columns go through the
-# Arrow buffers directly: numbers as (validity bitmap, values), strings as (validity, offsets,
-# bytes), the layouts of the Arrow columnar format.
-def float_values(col):
-    """A float64 Arrow column (Array or ChunkedArray) as a float64 ndarray, nulls as NaN."""
-    import pyarrow as pa
-
-    if isinstance(col, pa.ChunkedArray):
-        out = np.empty(len(col))
-        a = 0
-        for c in col.chunks:
-            out[a:a + len(c)] = float_values(c)
-            a += len(c)
-        return out
-    n = len(col)
-    validity, data = col.buffers()[:2]
-    if data is None:  # an all-null column may carry no values
-        return np.full(n, np.nan)
-    vals = np.frombuffer(data, np.float64, count=n, offset=col.offset * 8)
-    if col.null_count:
-        bits = np.unpackbits(np.frombuffer(validity, np.uint8), bitorder="little")
-        vals = np.where(bits[col.offset:col.offset + n].astype(bool), vals, np.nan)
-    return vals
-
-
-def arrow_numbers(values, type, mask=None):
-    """A fixed-width Arrow array of ``type`` over ``values`` (nulls where ``mask``)."""
-    import pyarrow as pa
-
-    # timestamps are stored as int64 counts of their unit
-    dtype = np.int64 if pa.types.is_timestamp(type) else np.dtype(type.to_pandas_dtype())
-    vals = np.ascontiguousarray(values, dtype=dtype)
-    n = len(vals)
-    nulls = 0 if mask is None else int(np.count_nonzero(mask))
-    validity = None if not nulls else pa.py_buffer(np.packbits(~np.asarray(mask, bool),
-                                                               bitorder="little"))
-    return pa.Array.from_buffers(type, n, [validity, pa.py_buffer(vals)], null_count=nulls)
-
-
-def arrow_strings(items):
-    """An Arrow string array from a sequence of str or None."""
-    import pyarrow as pa
-
-    n = len(items)
-    enc = [b"" if x is None else str(x).encode() for x in items]
-    valid = np.fromiter((x is not None for x in items), bool, n)
-    offsets = np.zeros(n + 1, np.int64)
-    np.cumsum(np.fromiter(map(len, enc), np.int64, n), out=offsets[1:])
-    if offsets[-1] >= 2**31 - 1:  # beyond 32-bit offsets: pyarrow's own conversion
-        return pa.array(list(items), type=pa.string())
-    nulls = n - int(valid.sum())
-    validity = None if not nulls else pa.py_buffer(np.packbits(valid, bitorder="little"))
-    return pa.Array.from_buffers(pa.string(), n, [validity, pa.py_buffer(offsets.astype(np.int32)),
-                                                  pa.py_buffer(b"".join(enc))], null_count=nulls)
-
-
 def log_signature(path):
-    """Size and modification time of the log (a resumed run must see the same file)."""
+    """Return size and modification time of the log (a resumed run must see the same file)."""
     st = os.stat(path)
     return {"path": str(Path(path).resolve()), "size": st.st_size, "mtime_ns": st.st_mtime_ns}
 
 
-class LogReader:
-    """Iterate over a log in chunks of about ``chunk_rows`` frames.
+class WideLogReader:
+    """A wide CSV or Parquet log as a :class:`~invert.io.sources.LogSource`.
+
+    Iterating gives chunks of about ``chunk_rows`` frames.
 
     Parameters
     ----------
@@ -173,6 +86,10 @@ class LogReader:
         self.columns = [(self.raw_names[i], pos[c]) for i, c in
                         ((i, clean[i]) for i in range(len(clean)) if i != self.time_index)]
         self.time_kind = None  # "number" or "datetime", fixed by the first parseable cell
+
+    def signature(self):
+        """Return the resume signature: path, size and modification time of the file."""
+        return log_signature(self.path)
 
     def _names(self):
         if self.is_parquet:
@@ -331,8 +248,10 @@ class LogReader:
             table.num_rows == n_rec - len(located)
 
     def _locate_malformed(self, piece, line0, quoted=True):
-        """``([(line number, text, place among the piece's records)], number of records)``
-        for the rows of ``piece`` whose number of cells differs from the header's.
+        """Find the rows of ``piece`` whose number of cells differs from the header's.
+
+        Returns ``([(line number, text, place among the piece's records)], number of
+        records)``.
 
         A record is a non-empty line (pyarrow skips empty ones; records never hold a quoted
         line break, see :meth:`_batches`); cells are split by the csv module, quotes honoured,
@@ -356,7 +275,7 @@ class LogReader:
     # --- conversion -----------------------------------------------------------------------------
     def _malformed(self, rows):
         n = len(rows)
-        reason = np.array([f"malformed row (wrong number of cells)"
+        reason = np.array(["malformed row (wrong number of cells)"
                            + (f" at line {num}" if num is not None and num >= 0 else "")
                            for num, _, _ in rows], dtype=object)
         t = np.full(n, np.nan)
@@ -507,98 +426,3 @@ def _concat(a, b):
                  np.vstack([a.Y, b.Y]), np.concatenate([a.reason, b.reason]))
 
 
-# --- outputs -------------------------------------------------------------------------------------
-def write_table(table, path, fmt):
-    """Write a pyarrow table to ``path`` atomically (temporary file, then ``os.replace``).
-
-    A path ending in ``.arrow`` gets the Arrow IPC file format whatever ``fmt`` says (the part
-    files of a Parquet output: written and read back without encoding, see ``merge_parts``).
-    """
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    _write(table, tmp, "arrow" if path.suffix == ".arrow" else fmt)
-    os.replace(tmp, path)
-
-
-def _write(table, path, fmt):
-    if fmt == "arrow":
-        import pyarrow as pa
-        import pyarrow.ipc
-
-        with pa.OSFile(str(path), "wb") as sink, pa.ipc.new_file(sink, table.schema) as w:
-            w.write_table(table)
-    elif fmt == "parquet":
-        import pyarrow.parquet as pq
-
-        pq.write_table(table, path, compression=_COMPRESSION, use_dictionary=_dict_cols(table))
-    else:
-        import pyarrow.csv as pcsv
-
-        pcsv.write_csv(_plain(table), path)
-
-
-def _dict_cols(table):
-    """Dictionary-encode only the label/status columns (trying it on floats is slow)."""
-    import pyarrow as pa
-
-    return [f.name for f in table.schema if pa.types.is_dictionary(f.type)]
-
-
-def _plain(table):
-    """Dictionary columns as plain strings (the CSV writer wants plain types)."""
-    import pyarrow as pa
-
-    cols = [c.cast(c.type.value_type) if pa.types.is_dictionary(c.type) else c
-            for c in table.columns]
-    return pa.table(cols, names=table.column_names)
-
-
-def merge_parts(parts, path, fmt):
-    """Concatenate part files (in order) into ``path``, atomically."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    if fmt == "parquet":
-        import pyarrow.parquet as pq
-
-        writer = None
-        try:
-            for p in parts:
-                t = _read_part(p)
-                if writer is None:
-                    writer = pq.ParquetWriter(tmp, t.schema, compression=_COMPRESSION,
-                                              use_dictionary=_dict_cols(t))
-                writer.write_table(t)
-        finally:
-            if writer is not None:
-                writer.close()
-    else:
-        with open(tmp, "wb") as out:
-            for i, p in enumerate(parts):
-                with open(p, "rb") as fh:
-                    if i:
-                        fh.readline()  # header once
-                    shutil.copyfileobj(fh, out, 1 << 22)
-    os.replace(tmp, path)
-
-
-def _read_part(path):
-    """A part file as a table: Arrow IPC memory-mapped (no copy), else Parquet."""
-    import pyarrow as pa
-    import pyarrow.ipc
-    import pyarrow.parquet as pq
-
-    if Path(path).suffix == ".arrow":
-        with pa.memory_map(str(path)) as src:
-            return pa.ipc.open_file(src).read_all()
-    return pq.read_table(path)
-
-
-def write_json(obj, path):
-    """Write JSON atomically."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    with open(tmp, "w") as fh:
-        json.dump(obj, fh, indent=2)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
