@@ -43,15 +43,39 @@ from .job import BatchJob, job_chunks
 from .static import StaticInverter
 from .statuses import frame_statuses
 
-__all__ = ["run_batch", "run_job", "StaticInverter", "pooled_evidence_fit", "frame_statuses"]
+__all__ = ["run_batch", "run_job", "job_from_files", "StaticInverter", "pooled_evidence_fit", "frame_statuses"]
 
 
 def _digest(path):
     return None if path is None else hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
-def _job_from_files(layout, query, *, radius, center, smoothness, n_modes, **settings):
-    """Load the layout and query points, make the domain, and describe the job."""
+def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n_modes=None,
+                   **settings):
+    """Load the layout and query points, make the domain, and describe the job.
+
+    Parameters
+    ----------
+    layout : str or Path
+        LAYOUT.csv: ``sensor,x,y[,sigma]``.
+    query : str or Path, optional
+        POINTS.csv; default the centre of the disk (label ``centre``).
+    radius : float
+    center : (float, float), optional
+    smoothness : float, default=2.0
+    n_modes : int, optional
+    **settings
+        The other fields of :class:`~invert.batch.job.BatchJob` (``out`` is required).
+
+    Returns
+    -------
+    BatchJob
+
+    Raises
+    ------
+    InputError
+        Bad layout or query file, or a point outside the disk (naming its row).
+    """
     from .. import workflow
 
     sensors, points, sigma, rows = load_layout(layout)
@@ -129,7 +153,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                          f"Got {engine!r} instead.")
     if parallel_in_time is None:
         parallel_in_time = engine == "dask" and max_transient is None
-    job = _job_from_files(layout, query, radius=radius, center=center, smoothness=smoothness,
+    job = job_from_files(layout, query, radius=radius, center=center, smoothness=smoothness,
                           n_modes=n_modes, out=out, fmt=fmt, chunk_rows=chunk_rows,
                           resume=resume, level=level, lam=lam, noise_sd=noise_sd,
                           calibration_frames=calibration_frames, assimilate=assimilate,
