@@ -195,9 +195,9 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
 
     ``domain="ball"`` reads x,y,z positions and fits a :class:`~invert.geometry.ball.Ball`."""
     from . import workflow
-    from .report.files import staged_output, write_fit_outputs
     from .io.readings import check_inside, load_points, load_readings
     from .problem import LinearProblem
+    from .report.files import staged_output, write_fit_outputs
 
     level = check_level(level)
     dim = 3 if domain == "ball" else 2
@@ -282,9 +282,9 @@ def _cmd_demo(args):
 def _cmd_advise(args):
     from . import workflow
     from .diagnostics.advise import advise
-    from .report.files import staged_output, to_jsonable
     from .io.readings import check_inside, load_points, load_readings
     from .problem import LinearProblem
+    from .report.files import staged_output, to_jsonable
 
     def points(path):
         if path is None:

@@ -32,8 +32,8 @@ from pathlib import Path
 
 import numpy as np
 
+from ..io.logs import open_log
 from ..io.readings import check_inside, load_layout, load_points
-from ..io.sources import open_log
 from ..io.writers import write_json
 from ..report.files import CAUTIONS, to_jsonable
 from .calibration import pooled_evidence_fit
@@ -43,7 +43,8 @@ from .job import BatchJob, job_chunks
 from .static import StaticInverter
 from .statuses import frame_statuses
 
-__all__ = ["run_batch", "run_job", "job_from_files", "StaticInverter", "pooled_evidence_fit", "frame_statuses"]
+__all__ = ["run_batch", "run_job", "job_from_files", "StaticInverter", "pooled_evidence_fit",
+           "frame_statuses"]
 
 
 def _digest(path):
@@ -76,10 +77,10 @@ def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n
     InputError
         Bad layout or query file, or a point outside the disk (naming its row).
     """
-    from .. import workflow
+    from ..workflow import make_domain
 
     sensors, points, sigma, rows = load_layout(layout)
-    domain = workflow.make_domain(radius, center, s=smoothness, n_modes=n_modes)
+    domain = make_domain(radius, center, s=smoothness, n_modes=n_modes)
     check_inside(domain, points, rows, Path(layout).name)
     if query is not None:
         qpts, qlabels, qrows = load_points(query)

@@ -3,7 +3,8 @@
 The batch job (:mod:`invert.batch`) asks a log source for four things only: its chunks of
 frames, a resume signature, how its columns map onto the layout's sensors, and the kind of its
 times. A new source (a long-format file ``time,sensor,value``, a SQL table) is one new module
-with a class implementing :class:`LogSource`, and one line in :func:`open_log`.
+with a class implementing :class:`LogSource`, and one line in :func:`invert.io.logs.open_log`
+(which source reads which log).
 """
 
 from __future__ import annotations
@@ -14,7 +15,7 @@ from typing import Protocol, runtime_checkable
 
 import numpy as np
 
-__all__ = ["Chunk", "LogSource", "open_log"]
+__all__ = ["Chunk", "LogSource"]
 
 
 @dataclass
@@ -97,23 +98,3 @@ class LogSource(Protocol):
     def signature(self) -> dict:
         """Return the resume signature of the data."""
         ...
-
-
-def open_log(path, sensors, *, chunk_rows=65536) -> LogSource:
-    """Open the log at ``path`` as a :class:`LogSource` (today: wide CSV or Parquet files).
-
-    Parameters
-    ----------
-    path : str or Path
-    sensors : sequence of str
-        Sensor ids of the layout, in layout order.
-    chunk_rows : int, default=65536
-        Frames per chunk, about.
-
-    Returns
-    -------
-    LogSource
-    """
-    from .wide import WideLogReader
-
-    return WideLogReader(path, sensors, chunk_rows=chunk_rows)

@@ -114,8 +114,7 @@ class WideLogReader:
 
     # --- raw batches ---------------------------------------------------------------------------
     def _batches(self):
-        import pyarrow as pa
-
+        """Yield ``(table, malformed rows, number of records)`` piece by piece."""
         if self.is_parquet:
             import pyarrow.parquet as pq
 
@@ -123,23 +122,26 @@ class WideLogReader:
             for b in pf.iter_batches(batch_size=self.chunk_rows):
                 yield b, [], None
             return
-        import pyarrow.csv as pcsv
-
         bad = []
+        parse_piece, unquoted = self._csv_parser(bad)
+        for pos, piece, lines in self._pieces():
+            table = parse_piece(piece)
+            got, n_rec = [], None
+            if bad:
+                table, got, n_rec = self._place_malformed(table, piece, lines.before(pos), bad,
+                                                          parse_piece, unquoted)
+            bad.clear()
+            yield table, got, n_rec
+
+    def _csv_parser(self, bad):
+        """``(parse_piece, unquoted)``: a piece parser that appends malformed rows to ``bad``."""
+        import pyarrow as pa
+        import pyarrow.csv as pcsv
 
         def on_invalid(row):
             bad.append((row.number, row.text))
             return "skip"
 
-        # ~ bytes per row from the first lines, so that a piece holds about chunk_rows rows
-        with open(self.path, "rb") as fh:
-            head = fh.read(1 << 16)
-        lines = max(head.count(b"\n"), 1)
-        block = int(min(max(len(head) / lines * self.chunk_rows, 1 << 12), 1 << 30))
-        # The file is cut into pieces at line ends here and each piece parsed on its own
-        # (pyarrow.csv.read_csv on the piece, all threads): the streaming reader read ahead
-        # of a slow consumer, so its memory grew with the length of the log. A record must
-        # therefore not contain a quoted line break (logs of numbers never do).
         opts = pcsv.ReadOptions(column_names=self.raw_names, use_threads=True,
                                 block_size=1 << 20, encoding="utf8")
         parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
@@ -171,6 +173,22 @@ class WideLogReader:
                         raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
             return None  # pragma: no cover
 
+        return parse_piece, unquoted
+
+    def _pieces(self):
+        """Yield ``(file offset, piece, line counter)`` for the non-blank pieces of the file.
+
+        The file is cut into pieces of about ``chunk_rows`` lines at line ends here and each
+        piece parsed on its own (pyarrow.csv.read_csv on the piece, all threads): the
+        streaming reader read ahead of a slow consumer, so its memory grew with the length of
+        the log. A record must therefore not contain a quoted line break (logs of numbers
+        never do).
+        """
+        # ~ bytes per row from the first lines, so that a piece holds about chunk_rows rows
+        with open(self.path, "rb") as fh:
+            head = fh.read(1 << 16)
+        lines = max(head.count(b"\n"), 1)
+        block = int(min(max(len(head) / lines * self.chunk_rows, 1 << 12), 1 << 30))
         with open(self.path, "rb") as fh:
             for _ in range(self.skip_rows + 1):  # comments and the header
                 fh.readline()
@@ -189,30 +207,29 @@ class WideLogReader:
                     fh.seek(pos + cut)
                 else:
                     cut = len(data)
-                # a view, not a copy: the piece is handed to pyarrow as it is
-                piece = memoryview(data)[:cut]
                 if _NONBLANK.search(data, 0, cut):
-                    table = parse_piece(piece)
-                    # Malformed rows (rare): their line numbers in the file and their places
-                    # among the piece's records, found by reading the piece line by line;
-                    # newlines before the piece are counted only when there is such a row.
-                    got, n_rec = [], None
-                    if bad:
-                        line0 = lines.before(pos)
-                        raw = bytes(piece)
-                        got, n_rec = self._locate_malformed(raw, line0)
-                        if not self._adds_up(table, got, bad, n_rec):
-                            table = parse_piece(piece, unquoted)
-                            got, n_rec = self._locate_malformed(raw, line0, quoted=False)
-                        if not self._adds_up(table, got, bad, n_rec):
-                            # The reading disagrees with pyarrow's: keep pyarrow's rows,
-                            # without places (they go to the end of the chunk).
-                            got = [(line0 + num if num is not None and num > 0 else None,
-                                    txt, None) for num, txt in bad]
-                            n_rec = None
-                    bad.clear()
-                    yield table, got, n_rec
+                    # a view, not a copy: the piece is handed to pyarrow as it is
+                    yield pos, memoryview(data)[:cut], lines
                 pos += cut
+
+    def _place_malformed(self, table, piece, line0, bad, parse_piece, unquoted):
+        """Malformed rows (rare): their line numbers and places among the piece's records.
+
+        Found by reading the piece line by line (``line0``: lines before the piece, counted
+        only when there is such a row). When the rows do not add up the piece is parsed again
+        without quoting; should they still disagree, pyarrow's rows are kept without places
+        (they go to the end of the chunk). Returns ``(table, malformed, n_records)``.
+        """
+        raw = bytes(piece)
+        got, n_rec = self._locate_malformed(raw, line0)
+        if not self._adds_up(table, got, bad, n_rec):
+            table = parse_piece(piece, unquoted)
+            got, n_rec = self._locate_malformed(raw, line0, quoted=False)
+        if not self._adds_up(table, got, bad, n_rec):
+            got = [(line0 + num if num is not None and num > 0 else None, txt, None)
+                   for num, txt in bad]
+            n_rec = None
+        return table, got, n_rec
 
     def __iter__(self):
         start = 0

@@ -21,7 +21,8 @@ import pytest
 
 from invert.batch import DaskEngine, Engine, LocalEngine
 from invert.batch.runner import job_from_files, run_job
-from invert.io.sources import LogSource, open_log
+from invert.io.logs import open_log
+from invert.io.sources import LogSource
 from invert.prior import SmoothnessPrior
 
 ROOT = Path(__file__).resolve().parents[2]
