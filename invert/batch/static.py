@@ -381,17 +381,21 @@ def static_chunks(job, source, engine, work, hyper):
         n_factorised += n_new
         return ChunkDone("static", i, n)
 
-    for i, chunk in enumerate(prefetch(source)):
-        if i < done:
-            # statuses depend on the last accepted time, restored from the manifest
-            continue
-        kind = source.time_kind or "number"
-        status, reason, _, last_time = frame_statuses(chunk, last_time, min_readings=2)
-        fut = engine.submit(static_chunk, inverter, chunk, status, reason, job.query_labels,
-                            kind)
-        pending.append((i, fut, status, reason, last_time, len(chunk)))
-        while len(pending) > engine.in_flight:
-            yield commit()
+    chunks = prefetch(source)
+    try:  # closing the generator early stops the reader thread too
+        for i, chunk in enumerate(chunks):
+            if i < done:
+                # statuses depend on the last accepted time, restored from the manifest
+                continue
+            kind = source.time_kind or "number"
+            status, reason, _, last_time = frame_statuses(chunk, last_time, min_readings=2)
+            fut = engine.submit(static_chunk, inverter, chunk, status, reason,
+                                job.query_labels, kind)
+            pending.append((i, fut, status, reason, last_time, len(chunk)))
+            while len(pending) > engine.in_flight:
+                yield commit()
+    finally:
+        chunks.close()
     while pending:
         yield commit()
     man.setdefault("n_chunks", done)
