@@ -15,7 +15,6 @@ from pathlib import Path
 import numpy as np
 
 from .._validation import check_level
-from .assimilation import assimilation_chunks
 from .calibration import hyperparameters
 from .static import static_chunks
 
@@ -146,6 +145,9 @@ def job_chunks(job, source, engine, work):
     work.manifest["hyper"] = hyper
     work.save()
     if job.assimilate:
+        # imported here: the static job (and the CLI's start) need not load the filter
+        from .assimilation import assimilation_chunks
+
         extra = yield from assimilation_chunks(job, source, engine, work, hyper)
     else:
         extra = yield from static_chunks(job, source, engine, work, hyper)
