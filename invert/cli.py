@@ -195,9 +195,9 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
 
     ``domain="ball"`` reads x,y,z positions and fits a :class:`~invert.geometry.ball.Ball`."""
     from . import workflow
-    from .report.files import staged_output, write_fit_outputs
+    from .io.readings import check_inside, load_points, load_readings
     from .problem import LinearProblem
-    from .io.readings import load_points, load_readings
+    from .report.files import staged_output, write_fit_outputs
 
     level = check_level(level)
     dim = 3 if domain == "ball" else 2
@@ -209,11 +209,7 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
     q = None
     if query is not None:
         pts, labels, rows = load_points(query, dim=dim)
-        try:
-            domain.locate(pts)
-        except Exception as exc:  # DomainError: name the row of the query file
-            i = getattr(exc, "index", 0) or 0
-            raise InputError(Path(query).name, str(exc), row=int(rows[i])) from None
+        check_inside(domain, pts, rows, Path(query).name)
         q = (pts, labels)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -286,19 +282,15 @@ def _cmd_demo(args):
 def _cmd_advise(args):
     from . import workflow
     from .diagnostics.advise import advise
-    from .report.files import staged_output, to_jsonable
+    from .io.readings import check_inside, load_points, load_readings
     from .problem import LinearProblem
-    from .io.readings import load_points, load_readings
+    from .report.files import staged_output, to_jsonable
 
     def points(path):
         if path is None:
             return None
         pts, _, rows = load_points(path)
-        try:
-            domain.locate(pts)
-        except Exception as exc:  # DomainError: name the row
-            i = getattr(exc, "index", 0) or 0
-            raise InputError(Path(path).name, str(exc), row=int(rows[i])) from None
+        check_inside(domain, pts, rows, Path(path).name)
         return pts
 
     if args.count < 1:
@@ -344,7 +336,9 @@ def _cmd_batch(args):
                         lam=args.lam, noise_sd=args.noise_sd, level=args.level,
                         smoothness=args.smoothness, n_modes=args.n_modes, center=args.center,
                         time_scale=args.time_scale, chunk_rows=args.chunk_rows,
-                        max_transient=args.max_transient or None)
+                        max_transient=args.max_transient or None,
+                        # exact mode on dask runs the parallel-in-time smoother
+                        parallel_in_time=args.engine == "dask" and not args.max_transient)
     f = summary["frames"]
     print(f"batch ({summary['method']}, {summary['engine']}): {f['total']} frames, "
           f"{f.get('ok', 0)} ok, {f.get('no-data', 0)} no-data, {f.get('rejected', 0)} "

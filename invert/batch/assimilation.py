@@ -1,40 +1,96 @@
-"""Assimilation mode of :func:`invert.batch.runner.run_batch`: forward filter, backward smoother.
+r"""Assimilation mode of a batch run: Kalman filter and RTS smoother over the coefficients.
 
-The forward pass filters chunk after chunk and spills each filtered segment to the working
-folder (so memory stays bounded); the backward pass smooths the segments from the last to the
-first and writes each chunk's part files. The filter and smoother states passed from one chunk
-to its neighbour are small and are checkpointed with the manifest, so an interrupted run resumes
-at the chunk where it stopped. On the Dask engine each chunk's filter and smoother step runs as
-a task that receives its neighbour's state (the chain is sequential by nature; the output
-formatting of chunks runs in parallel).
+Sequential algorithm (the default): the forward pass filters chunk after chunk and spills each
+filtered segment to the working folder (so memory stays bounded); the backward pass smooths
+the segments from the last to the first and writes each chunk's part files. The filter and
+smoother states passed from one chunk to its neighbour are small and are checkpointed with the
+manifest, so an interrupted run resumes at the chunk where it stopped. Each chunk's step is an
+engine task that receives its neighbour's state (the chain is sequential by nature).
+
+Parallel-in-time algorithm (``job.parallel_in_time``, exact mode only): chunk summaries
+combined by an associative scan (Särkkä & García-Fernández 2021), every chunk filtered and
+smoothed as independent tasks; see :func:`parallel_chunks`.
+
+References
+----------
+.. [1] S. Särkkä, *Bayesian Filtering and Smoothing*, Cambridge University Press, 2013.
+.. [2] S. Särkkä and Á. F. García-Fernández, "Temporal parallelization of Bayesian smoothers",
+       IEEE Trans. Automatic Control 66:299–306, 2021. doi:10.1109/TAC.2020.2976316
 """
 
 from __future__ import annotations
 
-import os
-
 import numpy as np
 
-from . import runner as _b
-from ..stages.assimilate.core import (FilterState, SmootherState, _combine_filter, _combine_smoother,
-                                filter_segment, filter_summary, fit_time_scale, smooth_segment,
-                                smoother_summary)
+from ..prior import SmoothnessPrior
+from ..problem import interval_z
+from ..stages.assimilate.core import (
+    CoefficientDynamics,
+    FilterState,
+    SmootherState,
+    _combine_filter,
+    _combine_smoother,
+    filter_segment,
+    filter_summary,
+    fit_time_scale,
+    smooth_segment,
+    smoother_summary,
+)
+from .checkpoint import ChunkDone
+from .statuses import count_statuses, frame_statuses
+from .tables import empty_query, frames_table, query_table
+
+__all__ = ["assimilation_chunks", "parallel_chunks", "dynamics"]
+
+_DYNAMICS = ("per-harmonic Ornstein-Uhlenbeck with the smoothness prior as stationary law; "
+             "random-walk mean level")
 
 
-def _forward_task(model, state, chunk, last_time, steady_tol, max_transient=None):
-    status, reason, acc, last = _b.frame_statuses(chunk, last_time, min_readings=1)
-    state, seg = filter_segment(model, state, chunk.t[acc], chunk.Y[acc], steady_tol=steady_tol,
-                                max_transient=max_transient)
+def dynamics(job, hyper):
+    r"""Build the coefficient dynamics of the job (time scale 1, set later).
+
+    Parameters
+    ----------
+    job : BatchJob
+    hyper : dict
+        ``lam`` and ``noise_sd``: the prior variance is :math:`\tau^2 = \sigma^2/\lambda`.
+
+    Returns
+    -------
+    CoefficientDynamics
+    """
+    dom, sigma = job.domain, job.sigma
+    noise_var = sigma**2 if sigma is not None else np.full(len(job.sensors),
+                                                         hyper["noise_sd"] ** 2)
+    tau2 = (1.0 if sigma is not None else hyper["noise_sd"] ** 2) / hyper["lam"]
+    shape = SmoothnessPrior(s=job.s).shape(dom.eigenvalues, dom.degrees)
+    return CoefficientDynamics.from_prior(dom.design(job.points), noise_var, shape, dom.degrees,
+                                          tau2=tau2, time_scale=1.0)
+
+
+def _chunk_info(chunk, last_time):
+    status, reason, acc, last = frame_statuses(chunk, last_time, min_readings=1)
     info = {"t": chunk.t, "frame": chunk.frame, "status": status, "reason": reason,
             "acc": acc, "n_used": np.isfinite(chunk.Y).sum(axis=1)}
+    return info, last
+
+
+def forward_task(model, state, chunk, last_time, steady_tol, max_transient):
+    """Filter one chunk from ``state`` (an engine task): ``(state, segment, info, last)``."""
+    info, last = _chunk_info(chunk, last_time)
+    acc = info["acc"]
+    state, seg = filter_segment(model, state, chunk.t[acc], chunk.Y[acc], steady_tol=steady_tol,
+                                max_transient=max_transient)
     return state, seg, info, last
 
 
-def _backward_task(seg, bstate, steady_tol, max_transient=None):
+def backward_task(seg, bstate, steady_tol, max_transient):
+    """Smooth one filtered segment from the following chunk's smoother state (a task)."""
     return smooth_segment(seg, bstate, steady_tol=steady_tol, max_transient=max_transient)
 
 
-def _tables(info, seg, ms, sid, Ps_table, Hq, labels, z, kind):
+def chunk_tables(info, seg, ms, sid, Ps_table, Hq, labels, z, kind):
+    """Build the ``frames`` and ``query`` tables of one smoothed chunk (a task)."""
     L = len(info["t"])
     acc = info["acc"]
     cmean, csd, chi2 = np.full(L, np.nan), np.full(L, np.nan), np.full(L, np.nan)
@@ -49,117 +105,130 @@ def _tables(info, seg, ms, sid, Ps_table, Hq, labels, z, kind):
         chi2[acc] = nis
         qm = ms @ Hq.T
         qs = np.sqrt(np.clip(qvar[sid], 0, None))
-        qtab = _b._query_table(info["t"][acc], labels, qm, qs, z, kind)
+        qtab = query_table(info["t"][acc], labels, qm, qs, z, kind)
     else:
-        qtab = _b._empty_query(kind)
-    chunk = _b.bio.Chunk(info["frame"], info["t"], np.empty((L, 0)), info["reason"])
-    ftab = _b._frames_table(chunk, info["status"], info["reason"], info["n_used"], cmean, csd,
-                            chi2, kind)
+        qtab = empty_query(kind)
+    ftab = frames_table(info["t"], info["frame"], info["status"], info["reason"],
+                        info["n_used"], cmean, csd, chi2, kind)
     return ftab, qtab
 
 
-def run(ctx, model, time_scale, steady_tol, ml_frames, max_transient=None):
-    """Forward then backward over the log; returns summary entries."""
-    from scipy import stats
+def _time_scale(job, source, model, hyper, work):
+    """Fix the time scale of the dynamics: the job's, or maximum likelihood on the log."""
+    if hyper.get("time_scale") is not None:
+        return
+    if job.time_scale is not None:
+        hyper["time_scale"] = float(job.time_scale)
+        hyper["time_scale_how"] = "fixed by the user"
+    else:
+        ts, Ys, last = [], [], -np.inf
+        n = 0
+        for chunk in source:
+            _, _, acc, last = frame_statuses(chunk, last, min_readings=1)
+            ts.append(chunk.t[acc])
+            Ys.append(chunk.Y[acc])
+            n += int(acc.sum())
+            if n >= job.ml_frames:
+                break
+        t = np.concatenate(ts)[:job.ml_frames]
+        Y = np.vstack(Ys)[:job.ml_frames]
+        T, _ = fit_time_scale(model, t, Y, steady_tol=job.steady_tol)
+        hyper["time_scale"] = T
+        hyper["time_scale_how"] = (f"maximum likelihood (prediction-error decomposition) "
+                                   f"over the first {len(t)} frames")
+    work.save()
 
-    reader, work, fmt = ctx["reader"], ctx["work"], ctx["fmt"]
-    client = ctx.get("client")
-    hyper = work.manifest["hyper"]
-    if hyper.get("time_scale") is None:
-        if time_scale is not None:
-            hyper["time_scale"] = float(time_scale)
-            hyper["time_scale_how"] = "fixed by the user"
-        else:
-            ts, Ys, last = [], [], -np.inf
-            n = 0
-            for chunk in reader:
-                _, _, acc, last = _b.frame_statuses(chunk, last, min_readings=1)
-                ts.append(chunk.t[acc])
-                Ys.append(chunk.Y[acc])
-                n += int(acc.sum())
-                if n >= ml_frames:
-                    break
-            t = np.concatenate(ts)[:ml_frames]
-            Y = np.vstack(Ys)[:ml_frames]
-            T, ll = fit_time_scale(model, t, Y, steady_tol=steady_tol)
-            hyper["time_scale"] = T
-            hyper["time_scale_how"] = (f"maximum likelihood (prediction-error decomposition) "
-                                       f"over the first {len(t)} frames")
-        work.save()
+
+def assimilation_chunks(job, source, engine, work, hyper):
+    """Run the assimilation job, yielding after each chunk is committed.
+
+    Parameters
+    ----------
+    job : BatchJob
+    source : LogSource
+    engine : Engine
+    work : WorkFolder
+    hyper : dict
+        ``lam``, ``noise_sd`` (the manifest's entry: the time scale is added to it).
+
+    Yields
+    ------
+    ChunkDone
+
+    Returns
+    -------
+    dict
+        Summary entries.
+    """
+    model = dynamics(job, hyper)
+    _time_scale(job, source, model, hyper, work)
     model = model.with_time_scale(hyper["time_scale"])
-    if client is not None and max_transient is None:
-        return _run_parallel(ctx, model, hyper, steady_tol)
+    if job.parallel_in_time:
+        loglik = yield from parallel_chunks(job, source, engine, work, model)
+        extra = {"max_transient": None,
+                 "parallel": "associative scan over chunk summaries (Särkkä & "
+                             "García-Fernández 2021)"}
+    else:
+        yield from _forward_chunks(job, source, engine, work, model)
+        yield from _backward_chunks(job, source, engine, work)
+        loglik = work.manifest.get("loglik")
+        extra = {"max_transient": job.max_transient}
+    work.manifest.setdefault("counts", {})
+    return {"time_scale": hyper["time_scale"], "time_scale_how": hyper["time_scale_how"],
+            "loglik": loglik, "steady_tol": job.steady_tol, **extra, "dynamics": _DYNAMICS}
+
+
+def _forward_chunks(job, source, engine, work, model):
     done = work.manifest["done"]
+    if done.get("forward_complete"):
+        return
     n_fwd = done.get("forward", 0)
     state = work.load(f"fstate-{n_fwd - 1:06d}.pkl") if n_fwd else FilterState.initial(model)
     last = work.manifest.get("last_time")
     last = -np.inf if last is None else last
-    bar = _b._progress()
-    try:
-        if not done.get("forward_complete"):
-            for i, chunk in enumerate(reader):
-                if i < n_fwd:
-                    continue
-                if client is None:
-                    state, seg, info, last = _forward_task(model, state, chunk, last,
-                                                           steady_tol, max_transient)
-                else:
-                    state, seg, info, last = client.submit(
-                        _forward_task, model, state, chunk, last, steady_tol, max_transient,
-                        pure=False).result()
-                work.dump((seg, info), f"seg-{i:06d}.pkl")
-                work.dump(state, f"fstate-{i:06d}.pkl")
-                prev = work.dir / f"fstate-{i - 1:06d}.pkl"
-                done["forward"] = i + 1
-                work.manifest["last_time"] = last
-                work.save()
-                if prev.exists():
-                    os.remove(prev)
-                bar.update(len(chunk))
-                _b._sleep_for_tests()
-            done["forward_complete"] = True
-            work.manifest["n_chunks"] = done.get("forward", 0)
-            work.manifest["loglik"] = state.loglik
-            work.save()
-        n_chunks = work.manifest["n_chunks"]
-        kind = reader.time_kind or work.manifest.get("time_kind") or "number"
-        work.manifest["time_kind"] = kind
-        Hq = ctx["domain"].design(ctx["qpts"])
-        z = float(stats.norm.ppf((1 + ctx["level"]) / 2))
-        n_back = done.get("backward", 0)
-        bstate = work.load(f"bstate-{n_chunks - n_back:06d}.pkl") if n_back else SmootherState()
-        for i in range(n_chunks - 1 - n_back, -1, -1):
-            seg, info = work.load(f"seg-{i:06d}.pkl")
-            if client is None:
-                bstate, ms, sid, tab = _backward_task(seg, bstate, steady_tol, max_transient)
-                ftab, qtab = _tables(info, seg, ms, sid, tab, Hq, ctx["qlabels"], z, kind)
-            else:
-                bstate, ms, sid, tab = client.submit(_backward_task, seg, bstate, steady_tol,
-                                                     max_transient, pure=False).result()
-                fut = client.submit(_tables, info, seg, ms, sid, tab, Hq, ctx["qlabels"], z,
-                                    kind, pure=False)
-                ftab, qtab = fut.result()
-            _b.bio.write_table(ftab, work.part("frames", i, fmt), fmt)
-            _b.bio.write_table(qtab, work.part("query", i, fmt), fmt)
-            work.dump(bstate, f"bstate-{i:06d}.pkl")
-            _b._count(work, info["status"], info["reason"])
-            done["backward"] = n_chunks - i
-            work.save()
-            for old in (f"bstate-{i + 1:06d}.pkl", f"seg-{i:06d}.pkl"):
-                if (work.dir / old).exists():
-                    os.remove(work.dir / old)
-            bar.update(len(info["t"]))
-            _b._sleep_for_tests()
-    finally:
-        bar.close()
-    work.manifest.setdefault("counts", {})
-    return {"time_scale": hyper["time_scale"], "time_scale_how": hyper["time_scale_how"],
-            "loglik": work.manifest.get("loglik"), "steady_tol": steady_tol,
-            "max_transient": max_transient,
-            "dynamics": "per-harmonic Ornstein-Uhlenbeck with the smoothness prior as "
-                        "stationary law; random-walk mean level"}
+    for i, chunk in enumerate(source):
+        if i < n_fwd:
+            continue
+        state, seg, info, last = engine.submit(forward_task, model, state, chunk, last,
+                                               job.steady_tol, job.max_transient).result()
+        work.dump((seg, info), f"seg-{i:06d}.pkl")
+        work.dump(state, f"fstate-{i:06d}.pkl")
+        done["forward"] = i + 1
+        work.manifest["last_time"] = last
+        work.save()
+        work.remove(f"fstate-{i - 1:06d}.pkl")
+        yield ChunkDone("forward", i, len(chunk))
+    done["forward_complete"] = True
+    work.manifest["n_chunks"] = done.get("forward", 0)
+    work.manifest["loglik"] = state.loglik
+    work.save()
 
 
+def _backward_chunks(job, source, engine, work):
+    done = work.manifest["done"]
+    n_chunks = work.manifest["n_chunks"]
+    kind = source.time_kind or work.manifest.get("time_kind") or "number"
+    work.manifest["time_kind"] = kind
+    Hq = job.domain.design(job.query_points)
+    z = interval_z(job.level)
+    n_back = done.get("backward", 0)
+    bstate = work.load(f"bstate-{n_chunks - n_back:06d}.pkl") if n_back else SmootherState()
+    for i in range(n_chunks - 1 - n_back, -1, -1):
+        seg, info = work.load(f"seg-{i:06d}.pkl")
+        bstate, ms, sid, tab = engine.submit(backward_task, seg, bstate, job.steady_tol,
+                                             job.max_transient).result()
+        ftab, qtab = engine.submit(chunk_tables, info, seg, ms, sid, tab, Hq,
+                                   job.query_labels, z, kind).result()
+        work.write_parts(i, job.fmt, ftab, qtab)
+        work.dump(bstate, f"bstate-{i:06d}.pkl")
+        count_statuses(work.manifest, info["status"], info["reason"])
+        done["backward"] = n_chunks - i
+        work.save()
+        work.remove(f"bstate-{i + 1:06d}.pkl", f"seg-{i:06d}.pkl")
+        yield ChunkDone("backward", i, len(info["t"]))
+
+
+# --- parallel in time ----------------------------------------------------------------------------
 def _summary_task(model, t, Y, t_prev, first):
     return filter_summary(model, t, Y, t_prev=t_prev, first=first)
 
@@ -173,79 +242,96 @@ def _filter_from(model, m, P, t_prev, t, Y, steady_tol, offset=0):
 def _smooth_and_tables(seg, ms, Ps, pred, steady_tol, info, Hq, labels, z, kind):
     state = SmootherState() if ms is None else SmootherState(ms, Ps, pred)
     _, ms_out, sid, tab = smooth_segment(seg, state, steady_tol=steady_tol)
-    return _tables(info, seg, ms_out, sid, tab, Hq, labels, z, kind)
+    return chunk_tables(info, seg, ms_out, sid, tab, Hq, labels, z, kind)
 
 
-def _run_parallel(ctx, model, hyper, steady_tol):
-    """Dask, exact mode: chunk summaries combined by an associative scan, chunks in parallel.
-
-    1. Each chunk's filtering element (:func:`filter_summary`) on the cluster, in parallel.
-    2. An exclusive scan over the elements (driver, one small product per chunk) gives the
-       filtered mean and covariance entering every chunk; each chunk is then filtered from
-       its own entering state, in parallel.
-    3. Each chunk's smoothing element (:func:`smoother_summary`), in parallel; a reverse scan
-       gives the smoothed state leaving every chunk; each chunk is smoothed and formatted in
-       parallel.
-    The result equals the sequential smoother up to rounding (Särkkä & García-Fernández 2021);
-    with ``steady_tol > 0`` the shortcut restarts at each chunk, a difference of the order of
-    ``steady_tol``. Chunk data wait in the working folder between the phases; an interrupted
-    run restarts this mode from the beginning.
-    """
-    from scipy import stats
-
-    reader, work, fmt = ctx["reader"], ctx["work"], ctx["fmt"]
-    client = ctx["client"]
-    last = -np.inf
-    t_prev = np.nan
-    sum_futs, n = [], 0
-    bar = _b._progress()
-    for i, chunk in enumerate(reader):
-        status, reason, acc, last = _b.frame_statuses(chunk, last, min_readings=1)
-        info = {"t": chunk.t, "frame": chunk.frame, "status": status, "reason": reason,
-                "acc": acc, "n_used": np.isfinite(chunk.Y).sum(axis=1)}
-        ta, Ya = chunk.t[acc], chunk.Y[acc]
-        work.dump((ta, Ya, info, t_prev), f"pchunk-{i:06d}.pkl")
-        sum_futs.append(client.submit(_summary_task, model, ta, Ya, t_prev,
-                                      n == 0 and len(ta) > 0, pure=False))
-        if len(ta):
-            t_prev = float(ta[-1])
-            n += len(ta)
-        _b._count(work, status, reason)
-    n_chunks = len(sum_futs)
-    summaries = client.gather(sum_futs)
-    # exclusive scan: filtered state entering each chunk
+def _scan_entering(summaries):
+    """Exclusive scan of filtering elements: the filtered state entering each chunk."""
     entering, acc_el = [], None
     for el in summaries:
         entering.append(None if acc_el is None else (acc_el[1], acc_el[2]))
         if el is not None:
             acc_el = el if acc_el is None else _combine_filter(acc_el, el)
+    return entering
+
+
+def _scan_leaving(ssum):
+    """Reverse exclusive scan of smoothing elements: the smoothed state leaving each chunk."""
+    leaving, back = [None] * len(ssum), None
+    for i in range(len(ssum) - 1, -1, -1):
+        leaving[i] = back
+        if ssum[i] is not None:
+            back = ssum[i] if back is None else _combine_smoother(ssum[i], back)
+    return leaving
+
+
+def _filter_all(job, source, engine, work, model):
+    """Phases 1-2: chunk summaries, the scan, every chunk filtered from its entering state."""
+    last, t_prev = -np.inf, np.nan
+    sum_futs, n = [], 0
+    for i, chunk in enumerate(source):
+        info, last = _chunk_info(chunk, last)
+        acc = info["acc"]
+        ta, Ya = chunk.t[acc], chunk.Y[acc]
+        work.dump((ta, Ya, info, t_prev), f"pchunk-{i:06d}.pkl")
+        sum_futs.append(engine.submit(_summary_task, model, ta, Ya, t_prev,
+                                      n == 0 and len(ta) > 0))
+        if len(ta):
+            t_prev = float(ta[-1])
+            n += len(ta)
+        count_statuses(work.manifest, info["status"], info["reason"])
+    entering = _scan_entering(engine.gather(sum_futs))
     seg_futs = []
-    for i in range(n_chunks):
-        ta, Ya, info, tp = work.load(f"pchunk-{i:06d}.pkl")
-        m, P = entering[i] if entering[i] is not None else (None, None)
-        seg_futs.append(client.submit(_filter_from, model, m, P, tp, ta, Ya, steady_tol,
-                                      i << 40, pure=False))
-    results = client.gather(seg_futs)
+    for i, ent in enumerate(entering):
+        ta, Ya, _, tp = work.load(f"pchunk-{i:06d}.pkl")
+        m, P = ent if ent is not None else (None, None)
+        seg_futs.append(engine.submit(_filter_from, model, m, P, tp, ta, Ya, job.steady_tol,
+                                      i << 40))
+    return engine.gather(seg_futs)
+
+
+def parallel_chunks(job, source, engine, work, model):
+    """Exact mode, parallel in time: chunk summaries combined by an associative scan.
+
+    1. Each chunk's filtering element (:func:`filter_summary`) as a task, in parallel.
+    2. An exclusive scan over the elements (here, one small product per chunk) gives the
+       filtered mean and covariance entering every chunk; each chunk is then filtered from
+       its own entering state, in parallel.
+    3. Each chunk's smoothing element (:func:`smoother_summary`), in parallel; a reverse scan
+       gives the smoothed state leaving every chunk; each chunk is smoothed and formatted in
+       parallel.
+
+    The result equals the sequential smoother up to rounding (Särkkä & García-Fernández 2021);
+    with ``steady_tol > 0`` the shortcut restarts at each chunk, a difference of the order of
+    ``steady_tol``. Chunk data wait in the working folder between the phases; an interrupted
+    run restarts this mode from the beginning.
+
+    Yields
+    ------
+    ChunkDone
+        Phase ``"parallel"``, after each chunk's part files are written.
+
+    Returns
+    -------
+    float
+        The log-likelihood of the log.
+    """
+    work.manifest["counts"], work.manifest["reasons"] = {}, {}
+    results = _filter_all(job, source, engine, work, model)
     segs = [r[1] for r in results]
     loglik = float(sum(r[0].loglik for r in results))
-    # smoothing elements and the reverse scan
-    nxt = [None] * n_chunks
-    following = None
+    n_chunks = len(segs)
+    nxt, following = [None] * n_chunks, None
     for i in range(n_chunks - 1, -1, -1):
         nxt[i] = following
         if len(segs[i].t):
             following = segs[i].pred_table[segs[i].pid[0]], int(segs[i].pid[0])
-    ss_futs = [client.submit(smoother_summary, segs[i], None if nxt[i] is None else nxt[i][0],
-                             pure=False) for i in range(n_chunks)]
-    ssum = client.gather(ss_futs)
-    leaving, back = [None] * n_chunks, None
-    for i in range(n_chunks - 1, -1, -1):
-        leaving[i] = back
-        if ssum[i] is not None:
-            back = ssum[i] if back is None else _combine_smoother(ssum[i], back)
-    Hq = ctx["domain"].design(ctx["qpts"])
-    z = float(stats.norm.ppf((1 + ctx["level"]) / 2))
-    kind = reader.time_kind or "number"
+    leaving = _scan_leaving(engine.gather(
+        [engine.submit(smoother_summary, segs[i], None if nxt[i] is None else nxt[i][0])
+         for i in range(n_chunks)]))
+    Hq = job.domain.design(job.query_points)
+    z = interval_z(job.level)
+    kind = source.time_kind or "number"
     out_futs = []
     for i in range(n_chunks):
         _, _, info, _ = work.load(f"pchunk-{i:06d}.pkl")
@@ -254,20 +340,13 @@ def _run_parallel(ctx, model, hyper, steady_tol):
         else:
             (f, Pp), pid = nxt[i]
             ms, Ps, pred = leaving[i][1], leaving[i][2], (pid, f, Pp)
-        out_futs.append(client.submit(_smooth_and_tables, segs[i], ms, Ps, pred, steady_tol,
-                                      info, Hq, ctx["qlabels"], z, kind, pure=False))
+        out_futs.append(engine.submit(_smooth_and_tables, segs[i], ms, Ps, pred,
+                                      job.steady_tol, info, Hq, job.query_labels, z, kind))
     for i, fut in enumerate(out_futs):
         ftab, qtab = fut.result()
-        _b.bio.write_table(ftab, work.part("frames", i, fmt), fmt)
-        _b.bio.write_table(qtab, work.part("query", i, fmt), fmt)
-        bar.update(len(ftab))
-    bar.close()
+        work.write_parts(i, job.fmt, ftab, qtab)
+        yield ChunkDone("parallel", i, len(ftab))
     work.manifest["n_chunks"] = n_chunks
     work.manifest["loglik"] = loglik
     work.save()
-    return {"time_scale": hyper["time_scale"], "time_scale_how": hyper["time_scale_how"],
-            "loglik": loglik, "steady_tol": steady_tol, "max_transient": None,
-            "parallel": "associative scan over chunk summaries (Särkkä & García-Fernández "
-                        "2021)",
-            "dynamics": "per-harmonic Ornstein-Uhlenbeck with the smoothness prior as "
-                        "stationary law; random-walk mean level"}
+    return loglik

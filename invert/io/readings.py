@@ -16,7 +16,53 @@ import numpy as np
 from .._validation import parse_number, read_table
 from ..errors import DomainError, InputError
 
-__all__ = ["Readings", "load_readings", "load_points", "load_layout"]
+__all__ = ["Readings", "load_readings", "load_points", "load_layout", "row_of", "check_inside"]
+
+
+def row_of(rows, index):
+    """Return the file row of data record ``index``: ``rows[index]``, the first when None.
+
+    Parameters
+    ----------
+    rows : ndarray of int
+        Row of each record in its file (1-based, header = row 1, comment and blank lines
+        counted), as :func:`~invert._validation.read_table` and the loaders here return them.
+    index : int or None
+        0-based record index (e.g. :attr:`~invert.errors.DomainError.index`).
+
+    Returns
+    -------
+    int
+    """
+    return int(rows[0 if index is None else index])
+
+
+def check_inside(domain, points, rows, source):
+    """Locate ``points`` in ``domain``; a point outside is an error naming its file row.
+
+    Parameters
+    ----------
+    domain : Domain
+    points : ndarray of shape (n_points, dim)
+    rows : ndarray of int
+        File row of each point (see :func:`row_of`).
+    source : str
+        File name for the message.
+
+    Returns
+    -------
+    tuple
+        What ``domain.locate(points)`` returns.
+
+    Raises
+    ------
+    InputError
+        When ``domain.locate`` raises :class:`~invert.errors.DomainError`.
+    """
+    try:
+        return domain.locate(points)
+    except DomainError as exc:
+        raise InputError(source, str(exc), row=row_of(rows, exc.index)) from None
 
 
 @dataclass(frozen=True)
@@ -65,11 +111,7 @@ class Readings:
 
         Returns the number of points moved onto the rim from just outside it.
         """
-        try:
-            _, _, n_snapped = domain.locate(self.points)
-        except DomainError as exc:
-            i = exc.index if exc.index is not None else 0
-            raise InputError(self.source, str(exc), row=int(self.rows[i])) from None
+        _, _, n_snapped = check_inside(domain, self.points, self.rows, self.source)
         return n_snapped
 
     @classmethod
@@ -109,7 +151,8 @@ def load_readings(path, *, dim=2, center=None) -> Readings:
 def _column(header, rows, numbers, source, name, *, allow_blank=False):
     j = header.index(name)
     return np.array(
-        [parse_number(r[j], source, n, name, allow_blank=allow_blank) for r, n in zip(rows, numbers)]
+        [parse_number(r[j], source, n, name, allow_blank=allow_blank)
+         for r, n in zip(rows, numbers, strict=True)]
     )
 
 
@@ -173,7 +216,8 @@ def _check_duplicate_ids(sensor, points, numbers, source):
     for i, sid in enumerate(sensor):
         if sid in first:
             k = first[sid]
-            if not np.allclose(points[i], points[k], rtol=0, atol=1e-9 * (1 + np.abs(points[k]).max())):
+            atol = 1e-9 * (1 + np.abs(points[k]).max())
+            if not np.allclose(points[i], points[k], rtol=0, atol=atol):
                 raise InputError(
                     source,
                     f"sensor '{sid}' appears again at a different position (first at row "

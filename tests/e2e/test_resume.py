@@ -1,18 +1,17 @@
 """--resume: a batch killed with SIGKILL part-way continues and ends with the same result.
 
 Oracle: an uninterrupted run of the same job (value for value), and the input's record count.
-The slow-down variable RIM_INVERT_TEST_CHUNK_DELAY is test-only (seconds slept per chunk).
+The run to be killed is a small Python script calling ``run_batch`` with an ``on_chunk``
+callback that sleeps after each committed chunk, so that the kill lands part-way.
 """
 
 import json
-import os
 import signal
 import subprocess
 import sys
 import time
 from pathlib import Path
 
-import numpy as np
 import pandas as pd
 import pytest
 
@@ -28,11 +27,24 @@ def _cmd(out, *extra):
             "--resume", *extra]
 
 
+#: The run to be killed: run_batch with a callback that sleeps 0.15 s after each chunk.
+_SLOW = """
+import json, sys, time
+from invert.batch.runner import run_batch
+kw = json.loads(sys.argv[1])
+run_batch(kw.pop("log"), kw.pop("layout"), on_chunk=lambda i: time.sleep(0.15), **kw)
+"""
+
+
+def _slow_cmd(out, **extra):
+    kw = dict(log=str(LOG), layout=str(LAYOUT), radius=0.25, out=str(out), fmt="parquet",
+              chunk_rows=40, resume=True, **extra)
+    return [sys.executable, "-c", _SLOW, json.dumps(kw)]
+
+
 def _run_until(cmd, out, key, at_least, timeout=120):
     """Start the batch and SIGKILL it once the manifest shows ``key >= at_least``."""
-    env = dict(os.environ, RIM_INVERT_TEST_CHUNK_DELAY="0.15")
-    proc = subprocess.Popen(cmd, cwd=ROOT, env=env, stdout=subprocess.DEVNULL,
-                            stderr=subprocess.PIPE)
+    proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     man = Path(out) / ".batch-work" / "manifest.json"
     t0 = time.monotonic()
     try:
@@ -72,7 +84,7 @@ def test_static_resume_after_sigkill(tmp_path):
     ref = tmp_path / "ref"
     run_batch(LOG, LAYOUT, radius=0.25, out=ref, chunk_rows=40, say=lambda *_: None)
     out = tmp_path / "killed"
-    _run_until(_cmd(out), out, "static", 4)
+    _run_until(_slow_cmd(out), out, "static", 4)
     r = subprocess.run(_cmd(out), cwd=ROOT, capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
     _same(ref, out)
@@ -83,12 +95,13 @@ def test_static_resume_after_sigkill(tmp_path):
 @pytest.mark.slow
 def test_assimilation_resume_after_two_kills(tmp_path):
     extra = ("--assimilate", "--lam", "0.02", "--noise-sd", "0.05")
+    slow = dict(assimilate=True, lam=0.02, noise_sd=0.05)
     ref = tmp_path / "ref"
     run_batch(LOG, LAYOUT, radius=0.25, out=ref, chunk_rows=40, assimilate=True, lam=0.02,
               noise_sd=0.05, say=lambda *_: None)
     out = tmp_path / "killed"
-    _run_until(_cmd(out, *extra), out, "forward", 5)      # during the forward pass
-    _run_until(_cmd(out, *extra), out, "backward", 4)     # during the backward pass
+    _run_until(_slow_cmd(out, **slow), out, "forward", 5)    # during the forward pass
+    _run_until(_slow_cmd(out, **slow), out, "backward", 4)   # during the backward pass
     r = subprocess.run(_cmd(out, *extra), cwd=ROOT, capture_output=True, text=True,
                        timeout=300)
     assert r.returncode == 0, r.stderr

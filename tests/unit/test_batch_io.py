@@ -169,7 +169,7 @@ def test_arrow_buffers_round_trip_equals_pyarrow_conversions():
     # lengths that are not multiples of 8, all-null and empty arrays, non-ASCII text
     import pyarrow as pa
 
-    from invert.io.logs import arrow_numbers, arrow_strings, float_values
+    from invert.io.arrow import arrow_numbers, arrow_strings, float_values
 
     rng = np.random.default_rng(4)
     for n in (0, 1, 7, 13, 64, 1001):

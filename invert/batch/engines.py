@@ -1,0 +1,182 @@
+"""Engines that run the tasks of a batch job: in this process, or on a Dask cluster.
+
+The job's loops are written once against :class:`Engine`; the engine is chosen once, when the
+run starts (:func:`make_engine`), and never changes the algorithm: which algorithm runs is an
+option of the job (:attr:`~invert.batch.job.BatchJob.parallel_in_time`).
+"""
+
+from __future__ import annotations
+
+from typing import Any, Protocol, runtime_checkable
+
+__all__ = ["Engine", "Future", "LocalEngine", "DaskEngine", "make_engine", "ENGINES"]
+
+
+@runtime_checkable
+class Future(Protocol):
+    """A submitted task: ``result()`` waits for it and returns its value (or raises)."""
+
+    def result(self) -> Any:
+        """Return the task's value."""
+        ...
+
+
+@runtime_checkable
+class Engine(Protocol):
+    """Where tasks run (the contract of every engine).
+
+    Attributes
+    ----------
+    name : str
+        The engine's name (``"local"``, ``"dask"``), reported in the summary.
+    in_flight : int
+        Tasks worth keeping submitted before waiting for the oldest (0: the engine runs a task
+        when it is submitted, so waiting earns nothing).
+
+    Methods
+    -------
+    submit(fn, *args)
+        Run ``fn(*args)``; returns a :class:`Future`. ``fn`` and ``args`` must pickle (an
+        engine may run them in another process); ``fn`` must not rely on state kept between
+        calls (each call may see a fresh copy of its arguments).
+    gather(futures)
+        Their results, in order.
+    close()
+        Release what the engine started (idempotent).
+    """
+
+    name: str
+    in_flight: int
+
+    def submit(self, fn, /, *args) -> Future:
+        """Run ``fn(*args)``."""
+        ...
+
+    def gather(self, futures) -> list:
+        """Return the results of ``futures`` in order."""
+        ...
+
+    def close(self) -> None:
+        """Release the engine's resources."""
+        ...
+
+
+class _Done:
+    """A task already run: its value, or the exception it raised."""
+
+    def __init__(self, fn, args):
+        try:
+            self._value, self._error = fn(*args), None
+        except Exception as exc:  # noqa: BLE001 - raised again by result(), like a future
+            self._value, self._error = None, exc
+
+    def result(self):
+        if self._error is not None:
+            raise self._error
+        return self._value
+
+
+class LocalEngine:
+    """Run every task at once, in this process (objects passed by reference, not copied)."""
+
+    name = "local"
+    in_flight = 0
+
+    def submit(self, fn, /, *args):
+        """Run ``fn(*args)`` now; the returned future holds the value."""
+        return _Done(fn, args)
+
+    def gather(self, futures):
+        """Return the results of ``futures`` in order."""
+        return [f.result() for f in futures]
+
+    def close(self):
+        """Nothing to release."""
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+class DaskEngine:
+    """Run tasks on a ``dask.distributed`` cluster.
+
+    Parameters
+    ----------
+    scheduler : str, optional
+        Address of an existing scheduler; else a LocalCluster of in-process workers talking
+        over loopback TCP only is started (and closed by :meth:`close`).
+    n_workers : int, default=2
+        Workers of the LocalCluster (one thread each); also sets :attr:`in_flight`.
+    """
+
+    name = "dask"
+
+    def __init__(self, scheduler=None, *, n_workers=2):
+        from dask.distributed import Client, LocalCluster
+
+        self.scheduler = scheduler
+        self.n_workers = n_workers
+        self.in_flight = 2 * max(n_workers, 1)
+        self._cluster = None
+        if scheduler:
+            self._client = Client(scheduler)
+        else:
+            # nothing listens beyond this host
+            self._cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1,
+                                         processes=False, protocol="tcp://",
+                                         host="127.0.0.1", dashboard_address="127.0.0.1:0",
+                                         scheduler_kwargs={"dashboard": False})
+            self._client = Client(self._cluster)
+
+    def submit(self, fn, /, *args):
+        """Submit ``fn(*args)`` to the cluster (never cached: ``pure=False``)."""
+        return self._client.submit(fn, *args, pure=False)
+
+    def gather(self, futures):
+        """Return the results of ``futures`` in order."""
+        return self._client.gather(list(futures))
+
+    def close(self):
+        """Close the client, and the cluster when this engine started it."""
+        if self._client is not None:
+            self._client.close()
+            self._client = None
+        if self._cluster is not None:
+            self._cluster.close()
+            self._cluster = None
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+#: Engine name -> class (the CLI's ``--engine`` choices).
+ENGINES = {"local": LocalEngine, "dask": DaskEngine}
+
+
+def make_engine(name, *, scheduler=None, n_workers=2):
+    """Start the engine called ``name``.
+
+    Parameters
+    ----------
+    name : {"local", "dask"}
+    scheduler : str, optional
+        Dask only: address of an existing scheduler.
+    n_workers : int, default=2
+        Dask only: workers of the LocalCluster started when no scheduler is given.
+
+    Returns
+    -------
+    Engine
+    """
+    if name not in ENGINES:
+        raise ValueError(f"The 'engine' parameter of batch must be one of "
+                         f"{tuple(ENGINES)}. Got {name!r} instead.")
+    if name == "dask":
+        return DaskEngine(scheduler, n_workers=n_workers)
+    return LocalEngine()

@@ -1,0 +1,100 @@
+"""Log sources: where logged frames come from, behind one protocol.
+
+The batch job (:mod:`invert.batch`) asks a log source for four things only: its chunks of
+frames, a resume signature, how its columns map onto the layout's sensors, and the kind of its
+times. A new source (a long-format file ``time,sensor,value``, a SQL table) is one new module
+with a class implementing :class:`LogSource`, and one line in :func:`invert.io.logs.open_log`
+(which source reads which log).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Protocol, runtime_checkable
+
+import numpy as np
+
+__all__ = ["Chunk", "LogSource"]
+
+
+@dataclass
+class Chunk:
+    """One chunk of frames, in log order.
+
+    Attributes
+    ----------
+    frame : ndarray of int64, shape (L,)
+        0-based record number in the log (``-1`` for malformed lines found by the CSV parser).
+    t : ndarray of float, shape (L,)
+        Time in seconds (numeric logs: the number as written); NaN when unparseable.
+    Y : ndarray of shape (L, n_sensors)
+        Readings in layout order; NaN where missing (or where the cell was rejected).
+    reason : ndarray of object, shape (L,)
+        Rejection reason or None.
+    """
+
+    frame: np.ndarray
+    t: np.ndarray
+    Y: np.ndarray
+    reason: np.ndarray
+
+    def __len__(self):
+        return len(self.t)
+
+
+@runtime_checkable
+class LogSource(Protocol):
+    """What the batch job may ask of a log (the contract every source implements).
+
+    Attributes
+    ----------
+    source : str
+        Name used in messages (a file name, a table name); :class:`~invert.errors.InputError`
+        lines start with it.
+    sensors : list of str
+        The layout's sensor ids, in layout order: column ``j`` of every ``Chunk.Y`` is
+        ``sensors[j]``.
+    columns : list of (str, int)
+        The column mapping: each sensor column of the source as ``(name in the source, index
+        in sensors)``. A source column that is not a layout sensor, or a sensor given twice, is
+        an :class:`~invert.errors.InputError` raised when the source is opened.
+    missing_sensors : list of str
+        Layout sensors with no column in the source (always missing; the job warns).
+    time_kind : {"number", "datetime"} or None
+        Fixed by the first parseable time (None before): numbers are written as read,
+        date-times as seconds since the Unix epoch (UTC) in ``Chunk.t``.
+
+    Methods
+    -------
+    __iter__()
+        Chunks of about the requested number of frames, in source order. Every record comes
+        back exactly once as a frame, numbered by its 0-based place in the source
+        (``Chunk.frame``, increasing), with ``Chunk.reason`` set instead of dropping a record
+        that cannot be used (bad cell, unparseable time, malformed row). Iterating again
+        starts again from the first record and gives the same chunks (the job reads a source
+        more than once: calibration, resume). Memory stays bounded by a few chunks.
+    signature()
+        A JSON-serialisable dict that changes whenever the data may have changed (for a file:
+        path, size, modification time). A resumed run refuses a source whose signature differs
+        from the interrupted run's.
+
+    Notes
+    -----
+    Times need not be sorted: the job gives a frame whose time is not after the last accepted
+    one the status ``rejected`` (:func:`invert.batch.statuses.frame_statuses`).
+    """
+
+    source: str
+    sensors: list
+    columns: list
+    missing_sensors: list
+    time_kind: str | None
+
+    def __iter__(self) -> Iterator[Chunk]:
+        """Yield the chunks of the log in order."""
+        ...
+
+    def signature(self) -> dict:
+        """Return the resume signature of the data."""
+        ...

@@ -1,0 +1,445 @@
+"""Wide logs, CSV or Parquet: one time column and one column per sensor (a :class:`LogSource`).
+
+The time column is named ``time`` (any case), else it is the first column; every other column
+is a sensor id of the layout; a blank or NaN cell is a missing reading. Every record comes back
+as a frame, with a rejection reason when it cannot be used (text in a number, an unparseable
+time, a row with the wrong number of cells), so nothing is silently dropped.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+from .arrow import float_values
+from .sources import Chunk
+
+__all__ = ["WideLogReader", "log_signature"]
+
+_NONBLANK = re.compile(rb"\S")
+
+#: Cells read as missing readings (pyarrow's defaults cover these and more).
+_NULLS = ["", "NaN", "nan", "NA", "N/A", "null", "NULL", "None", "-nan", "#N/A"]
+
+
+def log_signature(path):
+    """Return size and modification time of the log (a resumed run must see the same file)."""
+    st = os.stat(path)
+    return {"path": str(Path(path).resolve()), "size": st.st_size, "mtime_ns": st.st_mtime_ns}
+
+
+class WideLogReader:
+    """A wide CSV or Parquet log as a :class:`~invert.io.sources.LogSource`.
+
+    Iterating gives chunks of about ``chunk_rows`` frames.
+
+    Parameters
+    ----------
+    path : str or Path
+        ``.parquet``/``.pq`` files are read with ``pyarrow.parquet.ParquetFile.iter_batches``,
+        anything else as CSV: the file is cut into pieces of about ``chunk_rows`` lines at
+        line ends and each piece parsed with ``pyarrow.csv.read_csv`` (all threads; every
+        column as float64 first, then the time column as text for date-times, then everything
+        as text with a cell-by-cell fallback when a piece holds a non-number). Leading lines
+        starting with ``#`` are comments. Malformed lines (wrong number of cells) come back as
+        rejected frames in their place, numbered and with their line in the file named in the
+        reason (found by reading the piece line by line). When the rows do not add up, as
+        after a stray quote that would run on over the following lines, the piece is parsed
+        again without quoting, so the quote is a bad cell of its own row; should the counts
+        still disagree, the malformed rows go to the end of their chunk with frame ``-1``.
+    sensors : sequence of str
+        Sensor ids from the layout; the log's sensor columns must be among them.
+    chunk_rows : int, default=65536
+    """
+
+    def __init__(self, path, sensors, *, chunk_rows=65536):
+        self.path = Path(path)
+        self.source = self.path.name
+        self.sensors = [str(s) for s in sensors]
+        self.chunk_rows = int(chunk_rows)
+        if not self.path.exists():
+            raise InputError(self.source, "file not found")
+        self.is_parquet = self.path.suffix.lower() in (".parquet", ".pq")
+        names = self._names()
+        clean = [str(n).strip() for n in names]
+        lower = [c.lower() for c in clean]
+        self.time_index = lower.index("time") if "time" in lower else 0
+        self.raw_names = list(names)
+        self.time_name = self.raw_names[self.time_index]
+        cols = [c for i, c in enumerate(clean) if i != self.time_index]
+        known = set(self.sensors)
+        for c in cols:
+            if c not in known:
+                raise InputError(self.source, f"sensor '{c}' is not in the layout",
+                                 column=c)
+        seen = set()
+        for c in cols:
+            if c in seen:
+                raise InputError(self.source, f"sensor column '{c}' appears twice", column=c)
+            seen.add(c)
+        self.missing_sensors = [s for s in self.sensors if s not in seen]
+        pos = {s: j for j, s in enumerate(self.sensors)}
+        self.columns = [(self.raw_names[i], pos[c]) for i, c in
+                        ((i, clean[i]) for i in range(len(clean)) if i != self.time_index)]
+        self.time_kind = None  # "number" or "datetime", fixed by the first parseable cell
+
+    def signature(self):
+        """Return the resume signature: path, size and modification time of the file."""
+        return log_signature(self.path)
+
+    def _names(self):
+        if self.is_parquet:
+            import pyarrow.parquet as pq
+
+            try:
+                return pq.ParquetFile(self.path).schema_arrow.names
+            except Exception as exc:  # noqa: BLE001 - any read failure is bad input
+                raise InputError(self.source, f"cannot be read as Parquet ({exc})") from None
+        # leading lines starting with '#' are comments (e.g. a SYNTHETIC label)
+        self.skip_rows = 0
+        with open(self.path, encoding="utf-8-sig", errors="replace") as fh:
+            first = fh.readline()
+            while first.lstrip().startswith("#"):
+                self.skip_rows += 1
+                first = fh.readline()
+        if not first.strip():
+            raise InputError(self.source, "the file is empty (no header)")
+        import csv
+
+        return next(csv.reader([first]))
+
+    # --- raw batches ---------------------------------------------------------------------------
+    def _batches(self):
+        """Yield ``(table, malformed rows, number of records)`` piece by piece."""
+        if self.is_parquet:
+            import pyarrow.parquet as pq
+
+            pf = pq.ParquetFile(self.path)
+            for b in pf.iter_batches(batch_size=self.chunk_rows):
+                yield b, [], None
+            return
+        bad = []
+        parse_piece, unquoted = self._csv_parser(bad)
+        for pos, piece, lines in self._pieces():
+            table = parse_piece(piece)
+            got, n_rec = [], None
+            if bad:
+                table, got, n_rec = self._place_malformed(table, piece, lines.before(pos), bad,
+                                                          parse_piece, unquoted)
+            bad.clear()
+            yield table, got, n_rec
+
+    def _csv_parser(self, bad):
+        """``(parse_piece, unquoted)``: a piece parser that appends malformed rows to ``bad``."""
+        import pyarrow as pa
+        import pyarrow.csv as pcsv
+
+        def on_invalid(row):
+            bad.append((row.number, row.text))
+            return "skip"
+
+        opts = pcsv.ReadOptions(column_names=self.raw_names, use_threads=True,
+                                block_size=1 << 20, encoding="utf8")
+        parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
+        # Without quoting: a stray quote in a cell would otherwise run on over the following
+        # lines and swallow them into one field (used only when the rows do not add up).
+        unquoted = pcsv.ParseOptions(invalid_row_handler=on_invalid, quote_char=False)
+
+        def convert(time_type, sensor_type):
+            types = {n: (time_type if i == self.time_index else sensor_type)
+                     for i, n in enumerate(self.raw_names)}
+            return pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
+                                       null_values=_NULLS, quoted_strings_can_be_null=True)
+
+        # Fast path: every column float64 (numeric times). After a failure, the time column as
+        # text (numbers or date-times) with float64 sensors, then everything as text (the
+        # cell-by-cell fallback of _convert finds the bad cells). Date-time logs skip the first.
+        numeric = convert(pa.float64(), pa.float64())
+        typed, text = convert(pa.string(), pa.float64()), convert(pa.string(), pa.string())
+
+        def parse_piece(piece, parse=parse):
+            tries = (typed, text) if self.time_kind == "datetime" else (numeric, typed, text)
+            for conv in tries:
+                bad.clear()
+                try:
+                    return pcsv.read_csv(pa.py_buffer(piece), read_options=opts,
+                                         parse_options=parse, convert_options=conv)
+                except pa.ArrowInvalid as exc:
+                    if conv is text:
+                        raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
+            return None  # pragma: no cover
+
+        return parse_piece, unquoted
+
+    def _pieces(self):
+        """Yield ``(file offset, piece, line counter)`` for the non-blank pieces of the file.
+
+        The file is cut into pieces of about ``chunk_rows`` lines at line ends here and each
+        piece parsed on its own (pyarrow.csv.read_csv on the piece, all threads): the
+        streaming reader read ahead of a slow consumer, so its memory grew with the length of
+        the log. A record must therefore not contain a quoted line break (logs of numbers
+        never do).
+        """
+        # ~ bytes per row from the first lines, so that a piece holds about chunk_rows rows
+        with open(self.path, "rb") as fh:
+            head = fh.read(1 << 16)
+        lines = max(head.count(b"\n"), 1)
+        block = int(min(max(len(head) / lines * self.chunk_rows, 1 << 12), 1 << 30))
+        with open(self.path, "rb") as fh:
+            for _ in range(self.skip_rows + 1):  # comments and the header
+                fh.readline()
+            lines = _LineCounter(self.path, fh.tell(), self.skip_rows + 1)
+            pos = fh.tell()  # file offset of the current piece
+            while True:
+                data = fh.read(block)
+                if not data:
+                    return
+                if len(data) == block:  # not at the end: the piece stops at the last line end
+                    cut = data.rfind(b"\n") + 1
+                    if cut == 0:  # a line longer than the block
+                        block *= 2
+                        fh.seek(pos)
+                        continue
+                    fh.seek(pos + cut)
+                else:
+                    cut = len(data)
+                if _NONBLANK.search(data, 0, cut):
+                    # a view, not a copy: the piece is handed to pyarrow as it is
+                    yield pos, memoryview(data)[:cut], lines
+                pos += cut
+
+    def _place_malformed(self, table, piece, line0, bad, parse_piece, unquoted):
+        """Malformed rows (rare): their line numbers and places among the piece's records.
+
+        Found by reading the piece line by line (``line0``: lines before the piece, counted
+        only when there is such a row). When the rows do not add up the piece is parsed again
+        without quoting; should they still disagree, pyarrow's rows are kept without places
+        (they go to the end of the chunk). Returns ``(table, malformed, n_records)``.
+        """
+        raw = bytes(piece)
+        got, n_rec = self._locate_malformed(raw, line0)
+        if not self._adds_up(table, got, bad, n_rec):
+            table = parse_piece(piece, unquoted)
+            got, n_rec = self._locate_malformed(raw, line0, quoted=False)
+        if not self._adds_up(table, got, bad, n_rec):
+            got = [(line0 + num if num is not None and num > 0 else None, txt, None)
+                   for num, txt in bad]
+            n_rec = None
+        return table, got, n_rec
+
+    def __iter__(self):
+        start = 0
+        for batch, malformed, n_rec in self._batches():
+            ch = self._convert(batch, start) if batch is not None and batch.num_rows else None
+            if not malformed:
+                if ch is not None:
+                    start += len(ch)
+                    yield ch
+                continue
+            extra = self._malformed(malformed)
+            if n_rec is None:  # places unknown: at the end of the chunk, frame -1
+                if ch is not None:
+                    start += len(ch)
+                yield extra if ch is None else _concat(ch, extra)
+                continue
+            # every record in log order, numbered by its place in the log
+            at = np.array([r for _, _, r in malformed], np.int64)
+            good = np.setdiff1d(np.arange(n_rec), at)
+            extra.frame[:] = start + at
+            if ch is not None:
+                ch.frame[:] = start + good
+                extra = _concat(ch, extra)
+            order = np.argsort(extra.frame, kind="stable")
+            start += n_rec
+            yield Chunk(extra.frame[order], extra.t[order], extra.Y[order],
+                        extra.reason[order])
+
+    @staticmethod
+    def _adds_up(table, located, reported, n_rec):
+        """Whether pyarrow's rows and malformed rows are the records read line by line."""
+        return len(located) == len(reported) and table is not None and \
+            table.num_rows == n_rec - len(located)
+
+    def _locate_malformed(self, piece, line0, quoted=True):
+        """Find the rows of ``piece`` whose number of cells differs from the header's.
+
+        Returns ``([(line number, text, place among the piece's records)], number of
+        records)``.
+
+        A record is a non-empty line (pyarrow skips empty ones; records never hold a quoted
+        line break, see :meth:`_batches`); cells are split by the csv module, quotes honoured,
+        or at every comma when ``quoted`` is False.
+        """
+        import csv
+
+        width = len(self.raw_names)
+        out, rec = [], 0
+        for i, raw in enumerate(piece.split(b"\n")):
+            line = raw.rstrip(b"\r")
+            if not line:
+                continue
+            text = line.decode("utf-8", errors="replace")
+            cells = next(csv.reader([text])) if quoted else text.split(",")
+            if len(cells) != width:
+                out.append((line0 + i + 1, text, rec))
+            rec += 1
+        return out, rec
+
+    # --- conversion -----------------------------------------------------------------------------
+    def _malformed(self, rows):
+        n = len(rows)
+        reason = np.array(["malformed row (wrong number of cells)"
+                           + (f" at line {num}" if num is not None and num >= 0 else "")
+                           for num, _, _ in rows], dtype=object)
+        t = np.full(n, np.nan)
+        for i, (_, text, _) in enumerate(rows):
+            cell = (text or "").split(",")[self.time_index] if text else ""
+            t[i] = self._time_cells(np.array([cell.strip()], dtype=object))[0][0]
+        return Chunk(np.full(n, -1, np.int64), t, np.full((n, len(self.sensors)), np.nan), reason)
+
+    def _convert(self, batch, start):
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        L = batch.num_rows
+        Y = np.full((L, len(self.sensors)), np.nan)
+        reason = np.full(L, None, dtype=object)
+        for name, j in self.columns:
+            col = batch.column(name)
+            if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
+                vals = float_values(col.cast(pa.float64()))
+                bad = np.zeros(L, bool)
+            else:
+                if not pa.types.is_string(col.type):
+                    col = col.cast(pa.string())
+                try:
+                    vals = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
+                    bad = np.zeros(L, bool)
+                except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+                    vals, bad = _parse_cells(col)
+            vals = np.asarray(vals, float)
+            nonfinite = np.isinf(vals)
+            if bad.any() or nonfinite.any():
+                text = col.to_pylist() if bad.any() or nonfinite.any() else None
+                for i in np.flatnonzero(bad | nonfinite):
+                    if reason[i] is None:
+                        what = "non-numeric" if bad[i] else "non-finite"
+                        reason[i] = f"{what} cell in column '{name.strip()}': {text[i]!r}"
+                vals = np.where(bad | nonfinite, np.nan, vals)
+            Y[:, j] = vals
+        t, tbad = self._time_column(batch.column(self.time_name))
+        for i in np.flatnonzero(tbad):
+            if reason[i] is None:
+                reason[i] = "unparseable time" if tbad[i] == 1 else "missing time"
+        return Chunk(np.arange(start, start + L, dtype=np.int64), t, Y, reason)
+
+    def _time_column(self, col):
+        import pyarrow as pa
+        import pyarrow.compute as pc
+
+        if pa.types.is_timestamp(col.type) or pa.types.is_date(col.type):
+            self.time_kind = self.time_kind or "datetime"
+            ns = col.cast(pa.timestamp("ns")).cast(pa.int64()).to_numpy(zero_copy_only=False)
+            t = np.asarray(ns, float) / 1e9
+            null = np.asarray(col.is_null().to_numpy(zero_copy_only=False))
+            t[null] = np.nan
+            if self.time_kind != "datetime":
+                return np.full(len(t), np.nan), np.ones(len(t), np.int8)
+            return t, null.astype(np.int8) * 2
+        if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
+            t = float_values(col.cast(pa.float64()))
+            if self.time_kind is None and np.isfinite(t).any():
+                self.time_kind = "number"
+            if self.time_kind == "datetime":
+                return np.full(len(t), np.nan), np.ones(len(t), np.int8)
+            bad = np.where(np.isnan(t), 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
+            return np.where(bad == 0, t, np.nan), bad
+        if not pa.types.is_string(col.type):
+            col = col.cast(pa.string())
+        if self.time_kind in (None, "number"):
+            try:
+                t = np.asarray(pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False), float)
+                if self.time_kind is None and np.isfinite(t).any():
+                    self.time_kind = "number"
+                if self.time_kind == "number":
+                    null = np.asarray(col.is_null().to_numpy(zero_copy_only=False))
+                    bad = np.where(null, 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
+                    return np.where(bad == 0, t, np.nan), bad
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+                pass
+        cells = np.array(col.to_pylist(), dtype=object)
+        return self._time_cells(cells)
+
+    def _time_cells(self, cells):
+        """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
+        import pandas as pd
+
+        n = len(cells)
+        t = np.full(n, np.nan)
+        bad = np.zeros(n, np.int8)
+        text = np.array(["" if c is None else str(c).strip() for c in cells], dtype=object)
+        blank = np.array([x == "" or x in _NULLS for x in text])
+        bad[blank] = 2
+        num = pd.to_numeric(pd.Series(text), errors="coerce").to_numpy(float)
+        if self.time_kind is None:
+            first = next((i for i in range(n) if not blank[i]), None)
+            if first is not None:
+                self.time_kind = "number" if np.isfinite(num[first]) else "datetime"
+        if self.time_kind == "number":
+            ok = np.isfinite(num) & ~blank
+            t[ok] = num[ok]
+        elif self.time_kind == "datetime":
+            dt = pd.to_datetime(pd.Series(text), errors="coerce", format="ISO8601", utc=True)
+            ok = dt.notna().to_numpy() & ~blank
+            # nanoseconds whatever unit pandas chose (pandas 3 may give microseconds)
+            vals = dt.dt.tz_localize(None).to_numpy().astype("datetime64[ns]").view(np.int64)
+            t[ok] = vals[ok] / 1e9
+        else:
+            ok = np.zeros(n, bool)
+        bad[~ok & ~blank] = 1
+        return t, bad
+
+
+class _LineCounter:
+    """Number of lines before a byte offset of a file, counted on demand, front to back."""
+
+    def __init__(self, path, offset, lines):
+        self.path, self.offset, self.lines = path, offset, lines
+
+    def before(self, offset):
+        with open(self.path, "rb") as fh:
+            fh.seek(self.offset)
+            left = offset - self.offset
+            while left > 0:
+                data = fh.read(min(left, 1 << 24))
+                if not data:
+                    break
+                self.lines += data.count(b"\n")
+                left -= len(data)
+        self.offset = offset
+        return self.lines
+
+
+def _parse_cells(col):
+    """Numbers from a string column cell by cell; ``bad`` marks non-blank non-numbers."""
+    import pandas as pd
+
+    s = pd.Series(col.to_pylist(), dtype=object)
+    blank = s.isna().to_numpy()
+    vals = pd.to_numeric(s.str.strip(), errors="coerce").to_numpy(float)
+    bad = np.isnan(vals) & ~blank
+    # literal NaN spellings are missing readings, not bad cells
+    low = s.str.strip().str.lower()
+    bad &= ~low.isin([v.lower() for v in _NULLS]).to_numpy()
+    return vals, bad
+
+
+def _concat(a, b):
+    return Chunk(np.concatenate([a.frame, b.frame]), np.concatenate([a.t, b.t]),
+                 np.vstack([a.Y, b.Y]), np.concatenate([a.reason, b.reason]))
+
+
