@@ -240,18 +240,6 @@ def _pattern_codes(packed):
     return inv.ravel().astype(np.uint64)
 
 
-def _pattern_codes(packed):
-    """One integer per row identifying its drop-out pattern (``packed``: rows of packed bits)."""
-    nb = packed.shape[1]
-    if nb <= 8:
-        pad = np.zeros((len(packed), 8), np.uint8)
-        pad[:, :nb] = packed
-        return pad.view(np.uint64).ravel()
-    # wider layouts: the index of the row among the distinct rows
-    _, inv = np.unique(packed, axis=0, return_inverse=True)
-    return inv.ravel().astype(np.uint64)
-
-
 def prefetch(iterable, depth=1):
     """Iterate over ``iterable`` in a background thread, at most ``depth`` items ahead.
 
