@@ -1,8 +1,8 @@
 r"""The ball in three dimensions: real solid spherical harmonics and the Poisson kernel.
 
-:class:`Ball` has the same interface as :class:`~invert.geometry.disk.Disk` (``dim``, ``kind``,
-``n_coef``, ``degrees``, ``eigenvalues``, ``design``, ``field``, ``rim_grid``, ``field_grid``,
-...), so the linear problem, every stage and every output work on it unchanged. The "rim" is
+:class:`Ball` provides the :class:`~invert.geometry.base.Domain` contract, so the linear
+problem, every stage and every output work on it unchanged; it has no ``rim_arcs`` (the sphere
+is not parametrised by one angle), so the gap and depth diagnostics are skipped. The "rim" is
 the sphere :math:`|x - c| = R`. This module depends on NumPy and SciPy only.
 
 Notes
@@ -71,6 +71,7 @@ import numpy as np
 from scipy import special
 
 from ..errors import DomainError
+from .base import RoundDomain
 from .disk import RIM_TOLERANCE
 
 __all__ = [
@@ -221,7 +222,7 @@ def ball_poisson_kernel(x, zeta, radius=1.0):
 
 
 @dataclass(frozen=True)
-class Ball:
+class Ball(RoundDomain):
     r"""A ball of radius ``radius`` centred at ``center``, with harmonics up to degree ``n_modes``.
 
     Parameters
@@ -238,8 +239,9 @@ class Ball:
     Column :math:`j = \ell^2+\ell+m` is :math:`\rho^\ell B_{\ell m}` with
     :math:`B_{\ell m} = \sqrt{4\pi}\,Y_{\ell m}` (see the module notes): orthonormal under the
     mean over the sphere, constant column 1, so ``coef[0]`` is the surface mean and the centre
-    value. The truncation chosen by :func:`invert.workflow.make_domain` for
-    ``kind="ball"`` uses :data:`BALL_TRUNCATION_TOL` and :data:`BALL_MAX_DEGREE`.
+    value. The truncation chosen by :meth:`from_prior` (and so by
+    :func:`invert.workflow.make_domain` for ``kind="ball"``) uses :data:`BALL_TRUNCATION_TOL`
+    and :data:`BALL_MAX_DEGREE` (:meth:`truncation_rule`).
 
     Examples
     --------
@@ -255,6 +257,11 @@ class Ball:
 
     dim = 3
     kind = "ball"
+    #: Truncation rule (:meth:`truncation_rule`): see :data:`BALL_TRUNCATION_TOL` and
+    #: :data:`BALL_MAX_DEGREE` (the same cap at construction and extension).
+    truncation_tol = BALL_TRUNCATION_TOL
+    max_degree = BALL_MAX_DEGREE
+    initial_max_degree = BALL_MAX_DEGREE
 
     def __post_init__(self):
         if not (np.isfinite(self.radius) and self.radius > 0):
@@ -299,14 +306,33 @@ class Ball:
         n = np.asarray(n, dtype=float)
         return n * (n + 1)
 
+    @staticmethod
+    def rim_mean_square(n):
+        """Sum over the columns of degree ``n`` of their mean square on the sphere: ``2 n + 1``
+        (the columns are orthonormal under the surface mean)."""
+        return Ball.degree_multiplicity(n) * 1.0
+
+    @property
+    def coefficient_names(self) -> tuple:
+        """``c_l_m`` for column ``l**2 + l + m``: ``("c_0_0", "c_1_-1", "c_1_0", ...)``."""
+        return tuple(f"c_{ell}_{m}" for ell, m in zip(self.degrees, self.orders))
+
+    @classmethod
+    def check_smoothness(cls, s):
+        r"""Raise ``ValueError`` unless ``s > 1`` (finite pointwise prior variance on the sphere:
+        the tail of :math:`\sum (2\ell+1)(1+\ell(\ell+1))^{-s}` diverges for ``s <= 1``)."""
+        if not s > 1:
+            raise ValueError(f"The 's' parameter must be > 1 for a ball (finite pointwise prior "
+                             f"variance on the sphere). Got {s!r} instead.")
+
     def with_modes(self, n_modes: int) -> Ball:
-        """The same ball with another truncation degree."""
-        return Ball(self.radius, self.center, n_modes)
+        """The same ball with another truncation degree (same class)."""
+        return type(self)(self.radius, self.center, n_modes)
 
     def describe(self) -> dict:
         """Plain description for summaries."""
         return {
-            "domain": "ball",
+            "domain": self.kind,
             "radius": self.radius,
             "center": list(self.center),
             "n_modes": self.n_modes,
