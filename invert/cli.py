@@ -199,7 +199,9 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
             domain="disk"):
     """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict.
 
-    ``domain="ball"`` reads x,y,z positions and fits a :class:`~invert.geometry.ball.Ball`."""
+    ``domain`` is a name in :data:`invert.geometry.DOMAINS`; readings, ``center`` and query
+    points have that domain's ``dim`` coordinates (``"ball"``: x, y, z).
+    """
     from . import workflow
     from .report.files import staged_output, write_fit_outputs
     from .problem import LinearProblem

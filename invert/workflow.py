@@ -10,7 +10,6 @@ from __future__ import annotations
 from pathlib import Path
 
 from .geometry import domain_class
-from .prior import truncation_degree
 from .problem import LinearProblem
 from .io.readings import Readings, load_readings
 
@@ -20,7 +19,7 @@ METHODS = ("tikhonov", "gaussian", "mcmc")
 
 
 def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
-    """A domain whose truncation degree leaves a negligible share of prior variance out.
+    """Build a domain whose truncation degree leaves a negligible share of prior variance out.
 
     Parameters
     ----------
@@ -29,7 +28,8 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
     kind : str, default="disk"
         A name registered in :data:`invert.geometry.DOMAINS` (``"disk"``, ``"ball"``).
     s : float, default=2.0
-        Smoothness order used to choose the truncation (see :func:`~invert.prior.truncation_degree`).
+        Smoothness order used to choose the truncation (see
+        :func:`~invert.prior.truncation_degree`).
     n_modes : int, optional
         Force the truncation degree.
 
@@ -44,7 +44,7 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
 
 
 def as_readings(data, *, dim=2) -> Readings:
-    """Readings from a DataFrame, a CSV path, or a Readings object."""
+    """Return Readings from a DataFrame, a CSV path, or a Readings object."""
     if isinstance(data, Readings):
         return data
     if isinstance(data, (str, Path)):
@@ -70,7 +70,8 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
     n_modes : int, optional
         Truncation degree; chosen from ``s`` when omitted.
     kind : str, default="disk"
-        The region, a name in :data:`invert.geometry.DOMAINS`; a ball reads ``x, y, z`` positions (see :class:`~invert.geometry.ball.Ball`).
+        The region, a name in :data:`invert.geometry.DOMAINS`; readings have the domain's
+        ``dim`` coordinates (a ball reads ``x, y, z``, see :class:`~invert.geometry.ball.Ball`).
     **options
         Passed to the stage.
 

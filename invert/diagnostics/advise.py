@@ -51,7 +51,9 @@ __all__ = [
 
 
 def disk_mean_variance_weights(degrees) -> np.ndarray:
-    r"""Diagonal of :math:`M = \frac{1}{\pi R^2}\int_\text{disk} h(x)h(x)^\top dA` for the disk
+    r"""Return the region-mean weights of the disk columns.
+
+    Diagonal of :math:`M = \frac{1}{\pi R^2}\int_\text{disk} h(x)h(x)^\top dA` for the disk
     basis, so that the mean posterior variance over the disk is :math:`\operatorname{tr}(\Gamma
     M)`.
 
@@ -89,7 +91,9 @@ def target_matrix(domain, query=None) -> np.ndarray:
 
 
 def variance_gain(cov, H, rows, noise_var) -> np.ndarray:
-    r"""Reduction of :math:`\operatorname{tr}(H\Gamma H^\top)` from one new reading at each of
+    r"""Return the target reduction from one new reading at each candidate.
+
+    Reduction of :math:`\operatorname{tr}(H\Gamma H^\top)` from one new reading at each of
     ``rows`` (shape (n_candidates, n_coef)): :math:`\|H\Gamma g\|^2/(\sigma^2+g^\top\Gamma g)`.
     """
     rows = np.atleast_2d(rows)
@@ -100,8 +104,11 @@ def variance_gain(cov, H, rows, noise_var) -> np.ndarray:
 
 
 def rank_one_update(cov, g, noise_var) -> np.ndarray:
-    r"""Posterior covariance after one more reading with row ``g`` and noise variance
-    ``noise_var``: :math:`\Gamma - \Gamma gg^\top\Gamma/(\sigma^2 + g^\top\Gamma g)`."""
+    r"""Return the posterior covariance after one more reading.
+
+    Posterior covariance after one more reading with row ``g`` and noise variance
+    ``noise_var``: :math:`\Gamma - \Gamma gg^\top\Gamma/(\sigma^2 + g^\top\Gamma g)`.
+    """
     g = np.asarray(g, float)
     Gg = cov @ g
     new = cov - np.outer(Gg, Gg) / (float(noise_var) + g @ Gg)
@@ -150,8 +157,11 @@ def greedy_design(cov, H, rows, noise_var, count, *, points=None, min_distance=0
 
 
 def default_candidates(domain, n_rim=360):
-    """Rim positions every ``360/n_rim`` degrees and interior points on rings at 1/4, 1/2 and
-    3/4 of the radius every 10 degrees (rings from the domain's ``rim_arcs``)."""
+    """Return the default candidate positions for new sensors.
+
+    Rim positions every ``360/n_rim`` degrees and interior points on rings at 1/4, 1/2 and
+    3/4 of the radius every 10 degrees (rings from the domain's ``rim_arcs``).
+    """
     rings = require_arcs(domain, "default_candidates")
     rim, _ = domain.rim_grid(n_rim)
     th = np.deg2rad(np.arange(0, 360, 10.0))

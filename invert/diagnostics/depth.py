@@ -86,7 +86,7 @@ def _posterior_cov(estimate, problem=None) -> np.ndarray:
 
 @dataclass(frozen=True)
 class Resolution:
-    """Per-degree resolution of the coefficients.
+    r"""Per-degree resolution of the coefficients.
 
     Attributes
     ----------
@@ -96,7 +96,7 @@ class Resolution:
     resolution : ndarray of shape (N+1,)
         Diagonal of the model resolution averaged by degree, ``1 - variance_ratio``.
     column_resolution : ndarray of shape (n_coef,)
-        Diagonal of :math:`R = I - \\Sigma_{post}\\Sigma_p^{-1}` per column.
+        Diagonal of :math:`R = I - \Sigma_{post}\Sigma_p^{-1}` per column.
     effective_dof : float
         Trace of :math:`R`, the number of parameters the data determine.
     """

@@ -16,8 +16,15 @@ import numpy as np
 
 from ..errors import ModelCheckWarning
 from ._common import prior_params
-from .depth import (RadialProfile, Resolution, attenuation, prior_variances, radial_sd_profile,
-                    resolution, resolved_degree)
+from .depth import (
+    RadialProfile,
+    Resolution,
+    attenuation,
+    prior_variances,
+    radial_sd_profile,
+    resolution,
+    resolved_degree,
+)
 from .exceedance import MaxExceedance, exceedance_probability, max_exceedance
 from .gaps import GapDependence, gap_dependence, half_mass_width, unsensed_arcs
 from .model_check import CHECK_ALPHA, ModelCheck, model_check, psis_loo
@@ -61,7 +68,7 @@ class Diagnostics:
     gap_labels: tuple = ()
 
     def to_dict(self) -> dict:
-        """The ``diagnostics`` block of ``summary.json``."""
+        """Return the ``diagnostics`` block of ``summary.json``."""
         out = {}
         if self.check is not None:
             out["model_check"] = self.check.to_dict()

@@ -41,14 +41,14 @@ def exceedance_probability(estimate, points, threshold) -> np.ndarray:
 
 @dataclass(frozen=True)
 class MaxExceedance:
-    """Probability that the maximum of the field anywhere in the region exceeds a threshold.
+    r"""Probability that the maximum of the field anywhere in the region exceeds a threshold.
 
     Attributes
     ----------
     threshold : float
     probability : float
     mc_se : float
-        Monte-Carlo standard error :math:`\\sqrt{p(1-p)/n}`.
+        Monte-Carlo standard error :math:`\sqrt{p(1-p)/n}`.
     n_draws, n_rim : int
     max_lower, max_median, max_upper : float
         Central ``level`` interval and median of the maximum.

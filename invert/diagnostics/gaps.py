@@ -25,7 +25,7 @@ __all__ = ["GapDependence", "require_arcs", "unsensed_arcs", "half_mass_width",
 
 
 def require_arcs(domain, what):
-    """The domain's ``rim_arcs``; ``ValueError`` naming ``what`` when it has none."""
+    """Return the domain's ``rim_arcs``; ``ValueError`` naming ``what`` when it has none."""
     arcs = getattr(domain, "rim_arcs", None)
     if arcs is None:
         raise ValueError(f"{what} needs a domain with rim arcs (a rim parametrised by one "

@@ -1,4 +1,4 @@
-r"""Model check: do the readings fit a source-free harmonic field?
+r"""Model check: whether the readings fit a source-free harmonic field.
 
 Under the model, readings are Gaussian with covariance :math:`C = G_1\Sigma_{p,1}G_1^\top +
 \Sigma_e` (the broad mean level treated as a fixed effect); the residual quadratic form, a

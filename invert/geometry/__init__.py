@@ -26,7 +26,7 @@ def domain_names() -> tuple:
 
 
 def domain_class(kind):
-    """The domain class registered under ``kind``.
+    """Return the domain class registered under ``kind``.
 
     Raises
     ------

@@ -69,7 +69,9 @@ def arc_fourier_coefficients(alpha, beta, n_modes):
 
 
 def half_mass_width(rho):
-    r"""Width (radians) of the rim arc, centred below a point at relative radius ``rho``, that
+    r"""Return the width of the rim arc holding half a point's kernel mass.
+
+    Width (radians) of the rim arc, centred below a point at relative radius ``rho``, that
     holds half of its Poisson-kernel mass.
 
     Notes

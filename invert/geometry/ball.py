@@ -168,7 +168,8 @@ def poisson_kernel_nd(x, zeta, radius=1.0):
     the area of the unit sphere in :math:`\mathbb R^n` [1]_, so that
     :math:`\oint_{|\zeta|=R} P\,dS = 1` and :math:`u(x) = \oint P(x,\zeta) f(\zeta)\,dS(\zeta)`.
     For :math:`n = 2`, :math:`\omega_1 = 2\pi` and ``R * poisson_kernel_nd`` is the disk kernel
-    :func:`invert.geometry.disk.poisson_kernel` (a density in the rim angle, :math:`dS = R\,d\varphi`).
+    :func:`invert.geometry.disk.poisson_kernel` (a density in the rim angle,
+    :math:`dS = R\,d\varphi`).
 
     References
     ----------
@@ -297,7 +298,7 @@ class Ball(RoundDomain):
 
     @staticmethod
     def degree_multiplicity(n):
-        """Number of basis functions of degree ``n``: ``2 n + 1``."""
+        """Return the number of basis functions of degree ``n``: ``2 n + 1``."""
         return 2 * np.asarray(n) + 1
 
     @staticmethod
@@ -308,8 +309,11 @@ class Ball(RoundDomain):
 
     @staticmethod
     def rim_mean_square(n):
-        """Sum over the columns of degree ``n`` of their mean square on the sphere: ``2 n + 1``
-        (the columns are orthonormal under the surface mean)."""
+        """Return the rim mean square of the columns of degree ``n``.
+
+        Sum over the columns of degree ``n`` of their mean square on the sphere: ``2 n + 1``
+        (the columns are orthonormal under the surface mean).
+        """
         return Ball.degree_multiplicity(n) * 1.0
 
     @property
@@ -319,14 +323,17 @@ class Ball(RoundDomain):
 
     @classmethod
     def check_smoothness(cls, s):
-        r"""Raise ``ValueError`` unless ``s > 1`` (finite pointwise prior variance on the sphere:
-        the tail of :math:`\sum (2\ell+1)(1+\ell(\ell+1))^{-s}` diverges for ``s <= 1``)."""
+        r"""Check that the prior's ``s`` gives a finite rim point variance.
+
+        Raise ``ValueError`` unless ``s > 1`` (finite pointwise prior variance on the sphere:
+        the tail of :math:`\sum (2\ell+1)(1+\ell(\ell+1))^{-s}` diverges for ``s <= 1``).
+        """
         if not s > 1:
             raise ValueError(f"The 's' parameter must be > 1 for a ball (finite pointwise prior "
                              f"variance on the sphere). Got {s!r} instead.")
 
     def with_modes(self, n_modes: int) -> Ball:
-        """The same ball with another truncation degree (same class)."""
+        """Return the same ball with another truncation degree (same class)."""
         return type(self)(self.radius, self.center, n_modes)
 
     def describe(self) -> dict:
@@ -393,13 +400,19 @@ class Ball(RoundDomain):
         return xi, on_rim, int((rho > 1 + 1e-6).sum())
 
     def to_spherical(self, points):
-        """Return ``(rho, polar, azimuth)``: radius relative to ``R``, polar angle from ``+z``
-        and azimuth counter-clockwise from ``+x``, in radians (no snapping or checks)."""
+        """Return spherical coordinates of points.
+
+        Return ``(rho, polar, azimuth)``: radius relative to ``R``, polar angle from ``+z``
+        and azimuth counter-clockwise from ``+x``, in radians (no snapping or checks).
+        """
         return _spherical(self._xi(points))
 
     def from_spherical(self, rho, polar, azimuth):
-        """Points of shape (n, 3) at relative radius ``rho`` and angles ``polar``, ``azimuth``
-        (radians)."""
+        """Return points at given spherical coordinates.
+
+        Points of shape (n, 3) at relative radius ``rho`` and angles ``polar``, ``azimuth``
+        (radians).
+        """
         rho, polar, azimuth = np.broadcast_arrays(*(np.asarray(a, float)
                                                     for a in (rho, polar, azimuth)))
         s = np.sin(polar)
@@ -415,9 +428,12 @@ class Ball(RoundDomain):
 
     # --- design matrices -------------------------------------------------------------------
     def _solid(self, xi, n_modes=None, *, negative=True) -> np.ndarray:
-        r"""Complex solid harmonics :math:`\sqrt{4\pi}\rho^\ell Y_\ell^m`, shape
+        r"""Return the complex solid harmonics of scaled points.
+
+        Complex solid harmonics :math:`\sqrt{4\pi}\rho^\ell Y_\ell^m`, shape
         ``(L+1, 2L+1, n)``; order ``m`` sits at index ``m`` (negative ``m`` from the end).
-        With ``negative=False`` only the orders ``m >= 0`` are kept, shape ``(L+1, L+1, n)``."""
+        With ``negative=False`` only the orders ``m >= 0`` are kept, shape ``(L+1, L+1, n)``.
+        """
         L = self.n_modes if n_modes is None else n_modes
         rho, polar, azimuth = _spherical(xi)
         Y = special.sph_harm_y_all(L, L, polar, azimuth)
@@ -504,11 +520,14 @@ class Ball(RoundDomain):
         return D
 
     def design_normal_derivative(self, points) -> np.ndarray:
-        r"""Rows mapping coefficients to the radial derivative :math:`\partial u/\partial r` at
+        r"""Return rows mapping coefficients to the radial derivative.
+
+        Rows mapping coefficients to the radial derivative :math:`\partial u/\partial r` at
         ``points`` (off the centre, where the direction is undefined and the rows are NaN).
 
         On the sphere this is :math:`\sum (\ell/R)\,c_{\ell m} B_{\ell m}`; it is computed as
-        the gradient rows projected on :math:`\hat\xi = \xi/\rho`."""
+        the gradient rows projected on :math:`\hat\xi = \xi/\rho`.
+        """
         xi, _, _ = self.locate(points)
         rho = np.linalg.norm(xi, axis=1)
         unit = xi / np.where(rho > 0, rho, np.nan)[:, None]
@@ -525,8 +544,11 @@ class Ball(RoundDomain):
         return coef
 
     def field(self, coef, points) -> np.ndarray:
-        """Field values ``u`` at ``points`` for ``coef`` of shape ``(n_coef,)`` (or a stack
-        ``(..., n_coef)``, giving ``(..., n_points)``), evaluated in blocks of points."""
+        """Return the field values at points.
+
+        Field values ``u`` at ``points`` for ``coef`` of shape ``(n_coef,)`` (or a stack
+        ``(..., n_coef)``, giving ``(..., n_points)``), evaluated in blocks of points.
+        """
         coef = self._check_coef(coef)
         xi, _, _ = self.locate(points)
         out = np.empty(coef.shape[:-1] + (len(xi),))
@@ -580,7 +602,7 @@ class Ball(RoundDomain):
         return pts, {"lat_deg": LAT.ravel(), "lon_deg": LON.ravel()}
 
     def slice_grid(self, n: int = 101, axis="z", offset: float = 0.0):
-        """An ``n`` x ``n`` grid on the plane through the centre normal to ``axis``.
+        """Return an ``n`` x ``n`` grid on the plane through the centre normal to ``axis``.
 
         Parameters
         ----------
@@ -613,8 +635,11 @@ class Ball(RoundDomain):
         return us, vs, pts, inside
 
     def field_grid(self, n: int = 81):
-        """Interior points of the three central slices (planes z = c_z, y = c_y, x = c_x), each
-        an ``n`` x ``n`` grid, and their table columns ``{"x", "y", "z"}``."""
+        """Return interior points of the three central slices and their table columns.
+
+        The slices are the planes z = c_z, y = c_y, x = c_x, each an ``n`` x ``n`` grid; the
+        columns are ``{"x", "y", "z"}``.
+        """
         parts = []
         for axis in ("z", "y", "x"):
             _, _, pts, inside = self.slice_grid(n, axis)
@@ -623,8 +648,9 @@ class Ball(RoundDomain):
         return pts, {"x": pts[:, 0], "y": pts[:, 1], "z": pts[:, 2]}
 
     def rim_quadrature(self, n_lat: int | None = None):
-        r"""Product Gauss–Legendre (in :math:`\cos\vartheta`) x uniform (in :math:`\varphi`) rule
-        on the sphere.
+        r"""Return a product quadrature rule for the mean over the sphere.
+
+        Gauss–Legendre in :math:`\cos\vartheta` times a uniform rule in :math:`\varphi`.
 
         Parameters
         ----------
@@ -648,11 +674,14 @@ class Ball(RoundDomain):
         return self.from_spherical(1.0, T.ravel(), P.ravel()), W
 
     def rim_coefficients(self, values, n_lat: int | None = None) -> np.ndarray:
-        """Coefficients of surface ``values`` sampled at the nodes of
+        """Return the coefficients of sampled rim values.
+
+        Coefficients of surface ``values`` sampled at the nodes of
         :meth:`rim_quadrature` (``n_lat``), by quadrature: ``c_j = mean(f * B_j)``.
 
         Exact for band-limited data of degree ``<= n_lat - 1`` (``n_lat`` defaults to
-        ``n_modes + 1``)."""
+        ``n_modes + 1``).
+        """
         pts, w = self.rim_quadrature(n_lat)
         f = np.asarray(values, dtype=float)
         if f.shape != w.shape:

@@ -88,7 +88,7 @@ class Domain(Protocol):
     def rim_arcs(self): ...  # noqa: D102
 
     def degree_multiplicity(self, n):
-        """Number of columns of degree ``n``."""
+        """Return the number of columns of degree ``n``."""
 
     def degree_eigenvalue(self, n):
         """Rim eigenvalue of degree ``n``."""
@@ -100,7 +100,7 @@ class Domain(Protocol):
         """``(tol, max_degree)`` for choosing or extending the truncation degree."""
 
     def with_modes(self, n_modes):
-        """The same region with another truncation degree."""
+        """Return the same region with another truncation degree."""
 
     def describe(self) -> dict:
         """Plain description for summaries."""
@@ -136,7 +136,7 @@ class Domain(Protocol):
         """Interior points and their output table columns."""
 
     def rim_search_size(self) -> int:
-        """The ``rim_grid`` argument fine enough to find a field's maximum on the rim."""
+        """Return the ``rim_grid`` argument fine enough to find a field's maximum on the rim."""
 
     def region_mean_square(self):
         """Diagonal of the region mean of the squared columns, or None (no closed form)."""
@@ -216,7 +216,7 @@ class RoundDomain:
 
     @classmethod
     def from_prior(cls, radius=1.0, center=None, *, s=2.0, n_modes=None):
-        """A domain whose truncation leaves a negligible share of prior rim variance out.
+        """Build a domain whose truncation leaves a negligible share of prior rim variance out.
 
         Parameters
         ----------

@@ -154,7 +154,7 @@ class Disk(RoundDomain):
 
     @staticmethod
     def degree_multiplicity(n):
-        """Number of basis functions of degree ``n`` (1 for ``n = 0``, else 2)."""
+        """Return the number of basis functions of degree ``n`` (1 for ``n = 0``, else 2)."""
         return np.where(np.asarray(n) == 0, 1, 2)
 
     @staticmethod
@@ -200,7 +200,7 @@ class Disk(RoundDomain):
         return CircleArcs(self)
 
     def with_modes(self, n_modes: int) -> Disk:
-        """The same disk with another truncation degree (same class, so subclasses keep theirs)."""
+        """Return the same disk with another truncation degree (same class: subclasses stay)."""
         return type(self)(self.radius, self.center, n_modes)
 
     def describe(self) -> dict:
@@ -329,7 +329,9 @@ class Disk(RoundDomain):
         return D
 
     def design_normal_derivative(self, points) -> np.ndarray:
-        r"""Rows mapping coefficients to the radial derivative :math:`\partial u/\partial r` at
+        r"""Return rows mapping coefficients to the radial derivative.
+
+        Rows mapping coefficients to the radial derivative :math:`\partial u/\partial r` at
         ``points`` (on the rim: the outward normal derivative).
 
         Parameters
@@ -377,8 +379,11 @@ class Disk(RoundDomain):
         return acc
 
     def analytic(self, coef, points) -> np.ndarray:
-        r"""The analytic function :math:`F(w) = u + i v` at ``points``, by Horner's rule in
-        :math:`w = (z-c)/R`; ``v`` is the harmonic conjugate with :math:`v(c) = 0`."""
+        r"""Return the analytic function whose real part is the field.
+
+        The analytic function :math:`F(w) = u + i v` at ``points``, by Horner's rule in
+        :math:`w = (z-c)/R`; ``v`` is the harmonic conjugate with :math:`v(c) = 0`.
+        """
         C = self._complex_coef(coef)
         w, _, _ = self.locate(points)
         return self._horner(C, w)
@@ -388,8 +393,11 @@ class Disk(RoundDomain):
         return self.analytic(coef, points).real
 
     def conjugate(self, coef, points) -> np.ndarray:
-        """Harmonic conjugate ``v`` (stream function) with ``v(center) = 0``; flux lines of
-        ``-k grad u`` are its level sets."""
+        """Return the harmonic conjugate (stream function) of the field.
+
+        Harmonic conjugate ``v`` (stream function) with ``v(center) = 0``; flux lines of
+        ``-k grad u`` are its level sets.
+        """
         return self.analytic(coef, points).imag
 
     def gradient(self, coef, points) -> np.ndarray:
@@ -443,8 +451,11 @@ class Disk(RoundDomain):
         return pts, {"x": pts[:, 0], "y": pts[:, 1]}
 
     def rim_coefficients(self, values) -> np.ndarray:
-        """Coefficients of the trigonometric interpolant of rim ``values`` sampled at
-        ``len(values)`` equally spaced angles from 0 (FFT), truncated to ``n_modes``."""
+        """Return the coefficients of sampled rim values.
+
+        Coefficients of the trigonometric interpolant of rim ``values`` sampled at
+        ``len(values)`` equally spaced angles from 0 (FFT), truncated to ``n_modes``.
+        """
         f = np.asarray(values, dtype=float)
         M = f.size
         F = np.fft.rfft(f) / M

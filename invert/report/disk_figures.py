@@ -11,8 +11,18 @@ from pathlib import Path
 
 import numpy as np
 
-from .plots import (BAND, GAP, LINE, READ, WARN, axis_label, mpl_pyplot, plot_residuals,
-                    plot_traces, save_figure)
+from .plots import (
+    BAND,
+    GAP,
+    LINE,
+    READ,
+    WARN,
+    axis_label,
+    mpl_pyplot,
+    plot_residuals,
+    plot_traces,
+    save_figure,
+)
 
 __all__ = ["write_figures_disk", "plot_rim_profile", "plot_field_maps", "plot_exceedance",
            "plot_depth", "plot_gap_dependence"]
@@ -47,8 +57,11 @@ def _full(inside, values):
 # figures
 # --------------------------------------------------------------------------------------------
 def plot_rim_profile(ax, estimate, problem, level=0.9, unit="", arcs=None):
-    """Rim profile: mean, central band at ``level``, rim readings (with ±sigma bars), unsensed
-    arcs shaded and failed sensors marked."""
+    """Plot the rim profile with its band, readings and unsensed arcs.
+
+    Rim profile: mean, central band at ``level``, rim readings (with ±sigma bars), unsensed
+    arcs shaded and failed sensors marked.
+    """
     from ..diagnostics.diagnose import unsensed_arcs
 
     domain = estimate.domain
@@ -118,7 +131,8 @@ def plot_exceedance(fig, estimate, problem, threshold, max_exceed=None, n=101, u
     p = _full(inside, exceedance_probability(estimate, pts[inside], threshold))
     ax = fig.subplots()
     im = ax.pcolormesh(xs, ys, p.reshape(n, n), cmap="Reds", vmin=0, vmax=1, shading="auto")
-    fig.colorbar(im, ax=ax, shrink=0.85, label=f"P(value > {threshold:g}{' ' + unit if unit else ''})")
+    u = f" {unit}" if unit else ""
+    fig.colorbar(im, ax=ax, shrink=0.85, label=f"P(value > {threshold:g}{u})")
     if np.nanmax(p) > 0.05:
         ax.contour(xs, ys, p.reshape(n, n), levels=[0.05, 0.5, 0.95], colors="k",
                    linewidths=0.7)

@@ -20,8 +20,11 @@ __all__ = ["FIGURES", "figures_for", "write_figures", "write_figures_ball_report
 
 def write_figures_ball_report(out_dir, estimate, problem, readings=None, level=0.9, unit="",
                               **_):
-    """Sphere figures (:func:`invert.report.ball_figures.write_figures_ball`) with captions made
-    from the file names; the diagnostics keywords of the disk writer are not used."""
+    """Write the sphere figures and return them with captions.
+
+    Sphere figures (:func:`invert.report.ball_figures.write_figures_ball`) with captions made
+    from the file names; the diagnostics keywords of the disk writer are not used.
+    """
     out = Path(out_dir)
     before = set(out.glob("*.png"))
     made = ball_figures.write_figures_ball(out, estimate, problem, readings, level, unit=unit)
@@ -34,7 +37,7 @@ FIGURES = {Disk: write_figures_disk, Ball: write_figures_ball_report}
 
 
 def figures_for(domain):
-    """The figure writer registered for ``domain``'s class or its nearest base, or None."""
+    """Return the figure writer registered for ``domain``'s class or its nearest base, or None."""
     for cls in type(domain).__mro__:
         if cls in FIGURES:
             return FIGURES[cls]

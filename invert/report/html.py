@@ -14,8 +14,13 @@ from pathlib import Path
 
 import numpy as np
 
-from .disk_figures import (plot_depth, plot_exceedance, plot_field_maps, plot_gap_dependence,
-                           plot_rim_profile)
+from .disk_figures import (
+    plot_depth,
+    plot_exceedance,
+    plot_field_maps,
+    plot_gap_dependence,
+    plot_rim_profile,
+)
 from .figures import write_figures
 from .plots import plot_residuals, plot_traces
 

@@ -1,5 +1,6 @@
-"""Shared pieces of every figure: colours, the matplotlib import, saving, and the figures that
-do not depend on the domain (residuals per sensor, MCMC traces).
+"""Shared pieces of every figure, and the figures that do not depend on the domain.
+
+Colours, the matplotlib import, saving; residuals per sensor and MCMC traces.
 
 matplotlib is imported inside :func:`mpl_pyplot`, only when something is drawn.
 """
@@ -76,7 +77,9 @@ def _trace_arrays(posterior, max_vars=6):
 
 
 def plot_traces(fig, posterior, max_chains=8):
-    """MCMC traces of the sampled scalar posterior variables (up to ``max_chains`` chains, one
+    """Plot MCMC traces of the sampled scalar variables.
+
+    MCMC traces of the sampled scalar posterior variables (up to ``max_chains`` chains, one
     colour each) beside a histogram of all draws; returns False when there is nothing to draw.
     """
     arrays = [(n, a) for n, a in _trace_arrays(posterior) if np.ptp(a) > 0]

@@ -7,7 +7,6 @@ import html
 import re
 import shutil
 import subprocess
-import sys
 import tempfile
 from pathlib import Path
 
