@@ -201,3 +201,11 @@ def test_from_prior_uses_the_truncation_rule(named):
     assert wgt[d.n_modes:].sum() / wgt.sum() <= tol or d.n_modes == cls.initial_max_degree
     with pytest.raises(ValueError, match="coordinates"):
         cls.from_prior(1.0, (0.0,) * (cls.dim + 1), s=3.0)
+
+
+def test_unknown_name_is_rejected_with_the_registered_names():
+    from invert.workflow import make_domain
+
+    with pytest.raises(ValueError, match="'kind' parameter must be") as exc:
+        make_domain(1.0, kind="no such domain")
+    assert all(repr(name) in str(exc.value) for name in DOMAINS)

@@ -90,6 +90,22 @@ def test_toy_domain_meets_the_contract(toy, rng):
     check_all(make_domain(1.7, (0.2, -0.1), kind=toy, s=2.5, n_modes=6), toy, rng)
 
 
+def test_toy_domain_gaussian_stage_extends_the_toy(toy, rng):
+    # The Gaussian stage raises the truncation through domain.with_modes: the extended domain
+    # stays a FlippedDisk and the fit still equals the disk's (exact sign flips: rounding,
+    # 1e-10 of values ~20).
+    df = _readings(rng)
+    q = np.array([[0.0, 0.0], [0.4, -0.2], [-0.9, 0.5], [RADIUS, 0.0]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # FitWarning notes (e.g. truncation raised)
+        est_t = invert.fit(df, radius=RADIUS, kind=toy, method="gaussian")
+        est_d = invert.fit(df, radius=RADIUS, kind="disk", method="gaussian")
+    assert type(est_t.domain) is FlippedDisk
+    st, sd_ = est_t.at(q), est_d.at(q)
+    np.testing.assert_allclose(st.mean, sd_.mean, rtol=0, atol=1e-10)
+    np.testing.assert_allclose(st.sd, sd_.sd, rtol=0, atol=1e-10)
+
+
 def test_toy_domain_fit_diagnostics_report_advice(toy, rng, tmp_path):
     df = _readings(rng)
     q = np.array([[0.0, 0.0], [0.4, -0.2], [-0.9, 0.5], [RADIUS, 0.0]])
