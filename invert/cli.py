@@ -85,6 +85,12 @@ def _methods():
     return list(METHODS)
 
 
+def _domains():
+    from .geometry import domain_names
+
+    return list(domain_names())
+
+
 def build_parser():
     """The argument parser (exposed for documentation and tests)."""
     parser = _Parser(prog="rim-invert",
@@ -98,7 +104,7 @@ def build_parser():
     p.add_argument("--out", type=Path, required=True, help="output folder")
     p.add_argument("--center", type=float, nargs="+", metavar="C", default=None,
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
-    p.add_argument("--domain", default="disk", choices=["disk", "ball"],
+    p.add_argument("--domain", default="disk", choices=_domains(),
                    help="region: disk (readings x,y) or ball (readings x,y,z; boundary.csv on "
                         "a latitude/longitude grid) (default: disk)")
     _add_fit_options(p)
@@ -193,14 +199,18 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
             domain="disk"):
     """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict.
 
-    ``domain="ball"`` reads x,y,z positions and fits a :class:`~invert.geometry.ball.Ball`."""
+    ``domain`` is a name in :data:`invert.geometry.DOMAINS`; readings, ``center`` and query
+    points have that domain's ``dim`` coordinates (``"ball"``: x, y, z).
+    """
     from . import workflow
     from .io.readings import check_inside, load_points, load_readings
     from .problem import LinearProblem
     from .report.files import staged_output, write_fit_outputs
 
     level = check_level(level)
-    dim = 3 if domain == "ball" else 2
+    from .geometry import domain_class
+
+    dim = domain_class(domain).dim
     if center is not None and len(center) != dim:
         raise ValueError(f"--center needs {dim} numbers for a {domain}, got {len(center)}")
     readings = load_readings(readings_path, dim=dim, center=center)

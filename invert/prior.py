@@ -67,12 +67,24 @@ class SmoothnessPrior:
         return self.tau**2 * self.shape(eigenvalues, degrees)
 
     def point_variance(self, domain, n_max: int = 100000) -> float:
-        """Prior variance of the rim field about its mean level, summed to ``n_max``."""
-        # Sum over the columns of degree n of their mean square on the rim: cos^2 and sin^2
-        # average 1/2 on the circle (so one v_n per degree), and the ball's columns are
-        # orthonormal under the surface mean (so 2l + 1 of them).
+        r"""Prior variance of the rim field about its mean level, averaged over the rim.
+
+        Parameters
+        ----------
+        domain : Domain
+            Supplies ``rim_mean_square(n)`` (the sum over the columns of degree ``n`` of their
+            mean square on the rim) and ``degree_eigenvalue(n)``.
+        n_max : int, default=100000
+            Highest degree summed.
+
+        Returns
+        -------
+        float
+            :math:`\tau^2 \sum_{n=1}^{n_{max}} w_n (1 + \lambda_n)^{-s}`, :math:`w_n` the rim
+            mean square of degree :math:`n` (1 on the circle, :math:`2\ell+1` on the sphere).
+        """
         n = np.arange(1, n_max + 1)
-        weight = domain.degree_multiplicity(n) * (0.5 if domain.kind == "disk" else 1.0)
+        weight = domain.rim_mean_square(n)
         return float(self.tau**2 * np.sum(weight * (1 + domain.degree_eigenvalue(n)) ** -self.s))
 
 
@@ -85,7 +97,7 @@ def truncation_degree(domain, s, *, tol=1e-4, minimum=8, maximum=256):
 
     Parameters
     ----------
-    domain : Disk or Ball
+    domain : Domain
         Supplies ``degree_multiplicity`` and ``degree_eigenvalue``.
     s : float
         Smoothness order of the prior.

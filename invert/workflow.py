@@ -9,8 +9,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from .geometry.disk import Disk
-from .prior import truncation_degree
+from .geometry import domain_class
 from .problem import LinearProblem
 from .io.readings import Readings, load_readings
 
@@ -20,47 +19,32 @@ METHODS = ("tikhonov", "gaussian", "mcmc")
 
 
 def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
-    """A domain whose truncation degree leaves a negligible share of prior variance out.
+    """Build a domain whose truncation degree leaves a negligible share of prior variance out.
 
     Parameters
     ----------
     radius : float
     center : sequence of float, optional
-    kind : {"disk", "ball"}
+    kind : str, default="disk"
+        A name registered in :data:`invert.geometry.DOMAINS` (``"disk"``, ``"ball"``).
     s : float, default=2.0
-        Smoothness order used to choose the truncation (see :func:`~invert.prior.truncation_degree`).
+        Smoothness order used to choose the truncation (see
+        :func:`~invert.prior.truncation_degree`).
     n_modes : int, optional
         Force the truncation degree.
 
     Notes
     -----
-    For a ball the omitted-variance tail on the sphere decays slowly, so the truncation uses
-    ``tol=BALL_TRUNCATION_TOL`` and is capped at ``BALL_MAX_DEGREE`` (values and reasons in
-    :mod:`invert.geometry.ball`). ``s`` must exceed 1 on the sphere.
+    The registered class builds itself (``from_prior``) with its own truncation rule
+    (``truncation_rule()``). For a ball the omitted-variance tail on the sphere decays slowly,
+    so the truncation uses ``tol=BALL_TRUNCATION_TOL`` and is capped at ``BALL_MAX_DEGREE``
+    (values and reasons in :mod:`invert.geometry.ball`); ``s`` must exceed 1 on the sphere.
     """
-    if kind == "ball":
-        from .geometry.ball import BALL_MAX_DEGREE, BALL_TRUNCATION_TOL, Ball
-
-        if not s > 1:
-            raise ValueError(f"The 's' parameter must be > 1 for a ball (finite pointwise prior "
-                             f"variance on the sphere). Got {s!r} instead.")
-        center = (0.0, 0.0, 0.0) if center is None else tuple(center)
-        if len(center) != 3:
-            raise ValueError(f"The 'center' of a ball must have 3 coordinates. Got {center}.")
-        probe = Ball(radius, center, 0)
-        L = n_modes if n_modes is not None else truncation_degree(
-            probe, s, tol=BALL_TRUNCATION_TOL, maximum=BALL_MAX_DEGREE)
-        return Ball(radius, center, L)
-    if kind != "disk":
-        raise ValueError(f"The 'kind' parameter must be 'disk' or 'ball'. Got {kind!r} instead.")
-    center = (0.0, 0.0) if center is None else tuple(center)
-    probe = Disk(radius, center, 0)
-    N = n_modes if n_modes is not None else truncation_degree(probe, s)
-    return Disk(radius, center, N)
+    return domain_class(kind).from_prior(radius, center, s=s, n_modes=n_modes)
 
 
 def as_readings(data, *, dim=2) -> Readings:
-    """Readings from a DataFrame, a CSV path, or a Readings object."""
+    """Return Readings from a DataFrame, a CSV path, or a Readings object."""
     if isinstance(data, Readings):
         return data
     if isinstance(data, (str, Path)):
@@ -85,8 +69,9 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
         Smoothness order of the prior.
     n_modes : int, optional
         Truncation degree; chosen from ``s`` when omitted.
-    kind : {"disk", "ball"}, default="disk"
-        The region; a ball reads ``x, y, z`` positions (see :class:`~invert.geometry.ball.Ball`).
+    kind : str, default="disk"
+        The region, a name in :data:`invert.geometry.DOMAINS`; readings have the domain's
+        ``dim`` coordinates (a ball reads ``x, y, z``, see :class:`~invert.geometry.ball.Ball`).
     **options
         Passed to the stage.
 
@@ -103,7 +88,7 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
     if method not in METHODS:
         raise ValueError(f"The 'method' parameter of fit must be one of {METHODS}. "
                          f"Got {method!r} instead.")
-    r = as_readings(readings, dim=3 if kind == "ball" else 2)
+    r = as_readings(readings, dim=domain_class(kind).dim)
     domain = make_domain(radius, center, kind=kind, s=s, n_modes=n_modes)
     problem = LinearProblem.from_readings(r, domain)
     if method == "tikhonov":

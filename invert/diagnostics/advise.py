@@ -3,6 +3,8 @@ r"""Where to add a sensor, and which failed sensor to repair first.
 A new reading :math:`g^\top c + e`, :math:`e \sim N(0,\sigma^2)`, changes the posterior
 covariance by a rank-one update, so the gain of every candidate is known before any reading is
 taken (the design needs no data). Depends on NumPy only (pandas inside :meth:`to_frames`).
+Rim angles (sensor spacing, candidate rings) come from the domain's ``rim_arcs``; a domain
+without them (a ball) gets a clear ``ValueError``.
 
 Notes
 -----
@@ -34,6 +36,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .gaps import require_arcs
+
 __all__ = [
     "SensorAdvice",
     "advise",
@@ -47,7 +51,9 @@ __all__ = [
 
 
 def disk_mean_variance_weights(degrees) -> np.ndarray:
-    r"""Diagonal of :math:`M = \frac{1}{\pi R^2}\int_\text{disk} h(x)h(x)^\top dA` for the disk
+    r"""Return the region-mean weights of the disk columns.
+
+    Diagonal of :math:`M = \frac{1}{\pi R^2}\int_\text{disk} h(x)h(x)^\top dA` for the disk
     basis, so that the mean posterior variance over the disk is :math:`\operatorname{tr}(\Gamma
     M)`.
 
@@ -66,23 +72,28 @@ def target_matrix(domain, query=None) -> np.ndarray:
 
     Parameters
     ----------
-    domain : Disk (or any domain with ``design`` and ``field_grid``)
+    domain : Domain
+        Asked for ``design``, ``region_mean_square()`` and, when that is None, ``field_grid``.
     query : ndarray of shape (n_points, dim), optional
         With query points the target is the mean variance at them, :math:`H = G_q/\sqrt{n_q}`;
-        otherwise the mean variance over the region (closed form on a disk, a grid average
-        otherwise).
+        otherwise the mean variance over the region: closed form when the domain gives
+        ``region_mean_square()`` (the disk, :func:`disk_mean_variance_weights`), a grid average
+        otherwise.
     """
     if query is not None:
         q = np.asarray(query, float)
         return domain.design(q) / np.sqrt(len(q))
-    if getattr(domain, "kind", "") == "disk":
-        return np.diag(np.sqrt(disk_mean_variance_weights(domain.degrees)))
+    weights = domain.region_mean_square()
+    if weights is not None:
+        return np.diag(np.sqrt(weights))
     pts, _ = domain.field_grid(41)
     return domain.design(pts) / np.sqrt(len(pts))
 
 
 def variance_gain(cov, H, rows, noise_var) -> np.ndarray:
-    r"""Reduction of :math:`\operatorname{tr}(H\Gamma H^\top)` from one new reading at each of
+    r"""Return the target reduction from one new reading at each candidate.
+
+    Reduction of :math:`\operatorname{tr}(H\Gamma H^\top)` from one new reading at each of
     ``rows`` (shape (n_candidates, n_coef)): :math:`\|H\Gamma g\|^2/(\sigma^2+g^\top\Gamma g)`.
     """
     rows = np.atleast_2d(rows)
@@ -93,8 +104,11 @@ def variance_gain(cov, H, rows, noise_var) -> np.ndarray:
 
 
 def rank_one_update(cov, g, noise_var) -> np.ndarray:
-    r"""Posterior covariance after one more reading with row ``g`` and noise variance
-    ``noise_var``: :math:`\Gamma - \Gamma gg^\top\Gamma/(\sigma^2 + g^\top\Gamma g)`."""
+    r"""Return the posterior covariance after one more reading.
+
+    Posterior covariance after one more reading with row ``g`` and noise variance
+    ``noise_var``: :math:`\Gamma - \Gamma gg^\top\Gamma/(\sigma^2 + g^\top\Gamma g)`.
+    """
     g = np.asarray(g, float)
     Gg = cov @ g
     new = cov - np.outer(Gg, Gg) / (float(noise_var) + g @ Gg)
@@ -143,11 +157,15 @@ def greedy_design(cov, H, rows, noise_var, count, *, points=None, min_distance=0
 
 
 def default_candidates(domain, n_rim=360):
-    """Rim positions every ``360/n_rim`` degrees and interior points on rings at 1/4, 1/2 and
-    3/4 of the radius every 10 degrees."""
+    """Return the default candidate positions for new sensors.
+
+    Rim positions every ``360/n_rim`` degrees and interior points on rings at 1/4, 1/2 and
+    3/4 of the radius every 10 degrees (rings from the domain's ``rim_arcs``).
+    """
+    rings = require_arcs(domain, "default_candidates")
     rim, _ = domain.rim_grid(n_rim)
     th = np.deg2rad(np.arange(0, 360, 10.0))
-    inner = np.vstack([domain.from_polar(r, th) for r in (0.25, 0.5, 0.75)])
+    inner = np.vstack([rings.ring(r, th) for r in (0.25, 0.5, 0.75)])
     return np.vstack([rim, inner])
 
 
@@ -217,7 +235,7 @@ class SensorAdvice:
 def _nominal_spacing(domain, problem):
     # Median ccw gap between consecutive rim sensors (working or failed), radians.
     pts = [p for p in (problem.points, problem.gap_points) if p is not None and len(p)]
-    rho, th = domain.to_polar(np.vstack(pts))
+    rho, th = require_arcs(domain, "advise").polar(np.vstack(pts))
     a = np.sort(np.mod(th[rho > 0.999], 2 * np.pi))
     if a.size < 2:
         return np.deg2rad(10.0)
@@ -270,7 +288,7 @@ def advise(estimate, problem, *, count=5, candidates=None, query=None, min_spaci
     before = float(np.sum((H @ cov) * H)) * factor
     cand = default_candidates(d) if candidates is None else np.asarray(candidates, float)
     rows = d.design(cand)
-    rho, th = d.to_polar(cand)
+    rho, th = require_arcs(d, "advise").polar(cand)
     on_rim = rho > 0.999
     if min_spacing_deg is None:
         min_spacing_deg = float(np.rad2deg(_nominal_spacing(d, problem))) / 2

@@ -1,8 +1,8 @@
 r"""The ball in three dimensions: real solid spherical harmonics and the Poisson kernel.
 
-:class:`Ball` has the same interface as :class:`~invert.geometry.disk.Disk` (``dim``, ``kind``,
-``n_coef``, ``degrees``, ``eigenvalues``, ``design``, ``field``, ``rim_grid``, ``field_grid``,
-...), so the linear problem, every stage and every output work on it unchanged. The "rim" is
+:class:`Ball` provides the :class:`~invert.geometry.base.Domain` contract, so the linear
+problem, every stage and every output work on it unchanged; it has no ``rim_arcs`` (the sphere
+is not parametrised by one angle), so the gap and depth diagnostics are skipped. The "rim" is
 the sphere :math:`|x - c| = R`. This module depends on NumPy and SciPy only.
 
 Notes
@@ -71,7 +71,10 @@ import numpy as np
 from scipy import special
 
 from ..errors import DomainError
+from .base import RoundDomain
 from .disk import RIM_TOLERANCE
+from .sphere_grids import SphereGrids
+from .spherical import ball_poisson_kernel, poisson_kernel_nd, real_sph_harm
 
 __all__ = [
     "Ball",
@@ -102,126 +105,9 @@ BALL_MAX_DEGREE = 24
 #: (L+1)(2L+1) rows).
 _BLOCK = 2048
 
-_AXES = {"x": 0, "y": 1, "z": 2}
-
-
-def real_sph_harm(degree, order, polar, azimuth):
-    r"""Real spherical harmonic :math:`Y_{\ell m}`, orthonormal on the unit sphere.
-
-    Parameters
-    ----------
-    degree : int or array_like of int
-        :math:`\ell \ge 0`.
-    order : int or array_like of int
-        :math:`m`, with :math:`|m| \le \ell` (otherwise the value is 0).
-    polar : array_like
-        Polar angle :math:`\vartheta \in [0, \pi]`, radians, measured from :math:`+z`.
-    azimuth : array_like
-        Azimuth :math:`\varphi`, radians, counter-clockwise from :math:`+x`.
-
-    Returns
-    -------
-    ndarray
-        Broadcast over the inputs.
-
-    Notes
-    -----
-    Built from :func:`scipy.special.sph_harm_y` (``sph_harm_y(n, m, theta, phi)``: degree
-    first, ``theta`` the polar angle) as
-    :math:`\sqrt2(-1)^m\operatorname{Re}Y_\ell^m` for :math:`m>0`, :math:`Y_\ell^0` for
-    :math:`m=0` and :math:`\sqrt2(-1)^m\operatorname{Im}Y_\ell^{|m|}` for :math:`m<0`.
-
-    Examples
-    --------
-    >>> round(float(real_sph_harm(0, 0, 0.3, 1.2)), 15)
-    0.282094791773878
-    """
-    degree, order = np.asarray(degree), np.asarray(order)
-    Y = special.sph_harm_y(degree, np.abs(order), polar, azimuth)
-    sign = np.where(order % 2 == 0, 1.0, -1.0)
-    return np.where(order > 0, np.sqrt(2) * sign * Y.real,
-                    np.where(order < 0, np.sqrt(2) * sign * Y.imag, Y.real))
-
-
-def poisson_kernel_nd(x, zeta, radius=1.0):
-    r"""Poisson kernel of the ball of radius ``radius`` about the origin in :math:`\mathbb R^n`.
-
-    Parameters
-    ----------
-    x : array_like of shape (..., n)
-        Interior points, :math:`|x| < R`.
-    zeta : array_like of shape (..., n)
-        Points on the sphere :math:`|\zeta| = R`; broadcast against ``x``.
-    radius : float, default=1.0
-
-    Returns
-    -------
-    ndarray
-        :math:`P(x, \zeta)`, a density with respect to surface measure on the sphere.
-
-    Notes
-    -----
-    .. math:: P(x,\zeta) = \frac{R^2 - |x|^2}{R\,\omega_{n-1}\,|x - \zeta|^n},\qquad
-              \omega_{n-1} = \frac{2\pi^{n/2}}{\Gamma(n/2)},
-
-    the area of the unit sphere in :math:`\mathbb R^n` [1]_, so that
-    :math:`\oint_{|\zeta|=R} P\,dS = 1` and :math:`u(x) = \oint P(x,\zeta) f(\zeta)\,dS(\zeta)`.
-    For :math:`n = 2`, :math:`\omega_1 = 2\pi` and ``R * poisson_kernel_nd`` is the disk kernel
-    :func:`invert.geometry.disk.poisson_kernel` (a density in the rim angle, :math:`dS = R\,d\varphi`).
-
-    References
-    ----------
-    .. [1] L. C. Evans, *Partial Differential Equations*, 2nd ed., §2.2.4.
-    """
-    x = np.asarray(x, dtype=float)
-    zeta = np.asarray(zeta, dtype=float)
-    n = x.shape[-1]
-    R = float(radius)
-    omega = 2 * np.pi ** (n / 2) / special.gamma(n / 2)
-    dist = np.linalg.norm(x - zeta, axis=-1)
-    return (R * R - np.sum(x * x, axis=-1)) / (R * omega * dist**n)
-
-
-def ball_poisson_kernel(x, zeta, radius=1.0):
-    r"""Poisson kernel of the ball in :math:`\mathbb R^3`, centred at the origin.
-
-    Parameters
-    ----------
-    x : array_like of shape (..., 3)
-        Interior points.
-    zeta : array_like of shape (..., 3)
-        Points on the sphere of radius ``radius``.
-    radius : float, default=1.0
-
-    Returns
-    -------
-    ndarray
-        :math:`P(x,\zeta) = (R^2 - |x|^2)/(4\pi R\,|x-\zeta|^3)`, a density in surface measure.
-
-    Notes
-    -----
-    The case :math:`n = 3` of :func:`poisson_kernel_nd` [1]_. In the unit ball it has the
-    series :math:`P = \sum_\ell \frac{2\ell+1}{4\pi} r^\ell P_\ell(\cos\gamma)`, with
-    :math:`\gamma` the angle between :math:`x` and :math:`\zeta`.
-
-    References
-    ----------
-    .. [1] L. C. Evans, *Partial Differential Equations*, 2nd ed., §2.2.4.
-
-    Examples
-    --------
-    >>> round(float(ball_poisson_kernel([0.0, 0.0, 0.0], [0.0, 0.0, 1.0])), 12)  # 1/(4 pi)
-    0.079577471546
-    """
-    x = np.asarray(x, dtype=float)
-    zeta = np.asarray(zeta, dtype=float)
-    R = float(radius)
-    dist = np.linalg.norm(x - zeta, axis=-1)
-    return (R * R - np.sum(x * x, axis=-1)) / (4 * np.pi * R * dist**3)
-
 
 @dataclass(frozen=True)
-class Ball:
+class Ball(SphereGrids, RoundDomain):
     r"""A ball of radius ``radius`` centred at ``center``, with harmonics up to degree ``n_modes``.
 
     Parameters
@@ -238,8 +124,9 @@ class Ball:
     Column :math:`j = \ell^2+\ell+m` is :math:`\rho^\ell B_{\ell m}` with
     :math:`B_{\ell m} = \sqrt{4\pi}\,Y_{\ell m}` (see the module notes): orthonormal under the
     mean over the sphere, constant column 1, so ``coef[0]`` is the surface mean and the centre
-    value. The truncation chosen by :func:`invert.workflow.make_domain` for
-    ``kind="ball"`` uses :data:`BALL_TRUNCATION_TOL` and :data:`BALL_MAX_DEGREE`.
+    value. The truncation chosen by :meth:`from_prior` (and so by
+    :func:`invert.workflow.make_domain` for ``kind="ball"``) uses :data:`BALL_TRUNCATION_TOL`
+    and :data:`BALL_MAX_DEGREE` (:meth:`truncation_rule`).
 
     Examples
     --------
@@ -255,6 +142,11 @@ class Ball:
 
     dim = 3
     kind = "ball"
+    #: Truncation rule (:meth:`truncation_rule`): see :data:`BALL_TRUNCATION_TOL` and
+    #: :data:`BALL_MAX_DEGREE` (the same cap at construction and extension).
+    truncation_tol = BALL_TRUNCATION_TOL
+    max_degree = BALL_MAX_DEGREE
+    initial_max_degree = BALL_MAX_DEGREE
 
     def __post_init__(self):
         if not (np.isfinite(self.radius) and self.radius > 0):
@@ -290,7 +182,7 @@ class Ball:
 
     @staticmethod
     def degree_multiplicity(n):
-        """Number of basis functions of degree ``n``: ``2 n + 1``."""
+        """Return the number of basis functions of degree ``n``: ``2 n + 1``."""
         return 2 * np.asarray(n) + 1
 
     @staticmethod
@@ -299,14 +191,39 @@ class Ball:
         n = np.asarray(n, dtype=float)
         return n * (n + 1)
 
+    @staticmethod
+    def rim_mean_square(n):
+        """Return the rim mean square of the columns of degree ``n``.
+
+        Sum over the columns of degree ``n`` of their mean square on the sphere: ``2 n + 1``
+        (the columns are orthonormal under the surface mean).
+        """
+        return Ball.degree_multiplicity(n) * 1.0
+
+    @property
+    def coefficient_names(self) -> tuple:
+        """``c_l_m`` for column ``l**2 + l + m``: ``("c_0_0", "c_1_-1", "c_1_0", ...)``."""
+        return tuple(f"c_{ell}_{m}" for ell, m in zip(self.degrees, self.orders))
+
+    @classmethod
+    def check_smoothness(cls, s):
+        r"""Check that the prior's ``s`` gives a finite rim point variance.
+
+        Raise ``ValueError`` unless ``s > 1`` (finite pointwise prior variance on the sphere:
+        the tail of :math:`\sum (2\ell+1)(1+\ell(\ell+1))^{-s}` diverges for ``s <= 1``).
+        """
+        if not s > 1:
+            raise ValueError(f"The 's' parameter must be > 1 for a ball (finite pointwise prior "
+                             f"variance on the sphere). Got {s!r} instead.")
+
     def with_modes(self, n_modes: int) -> Ball:
-        """The same ball with another truncation degree."""
-        return Ball(self.radius, self.center, n_modes)
+        """Return the same ball with another truncation degree (same class)."""
+        return type(self)(self.radius, self.center, n_modes)
 
     def describe(self) -> dict:
         """Plain description for summaries."""
         return {
-            "domain": "ball",
+            "domain": self.kind,
             "radius": self.radius,
             "center": list(self.center),
             "n_modes": self.n_modes,
@@ -367,13 +284,19 @@ class Ball:
         return xi, on_rim, int((rho > 1 + 1e-6).sum())
 
     def to_spherical(self, points):
-        """Return ``(rho, polar, azimuth)``: radius relative to ``R``, polar angle from ``+z``
-        and azimuth counter-clockwise from ``+x``, in radians (no snapping or checks)."""
+        """Return spherical coordinates of points.
+
+        Return ``(rho, polar, azimuth)``: radius relative to ``R``, polar angle from ``+z``
+        and azimuth counter-clockwise from ``+x``, in radians (no snapping or checks).
+        """
         return _spherical(self._xi(points))
 
     def from_spherical(self, rho, polar, azimuth):
-        """Points of shape (n, 3) at relative radius ``rho`` and angles ``polar``, ``azimuth``
-        (radians)."""
+        """Return points at given spherical coordinates.
+
+        Points of shape (n, 3) at relative radius ``rho`` and angles ``polar``, ``azimuth``
+        (radians).
+        """
         rho, polar, azimuth = np.broadcast_arrays(*(np.asarray(a, float)
                                                     for a in (rho, polar, azimuth)))
         s = np.sin(polar)
@@ -389,9 +312,12 @@ class Ball:
 
     # --- design matrices -------------------------------------------------------------------
     def _solid(self, xi, n_modes=None, *, negative=True) -> np.ndarray:
-        r"""Complex solid harmonics :math:`\sqrt{4\pi}\rho^\ell Y_\ell^m`, shape
+        r"""Return the complex solid harmonics of scaled points.
+
+        Complex solid harmonics :math:`\sqrt{4\pi}\rho^\ell Y_\ell^m`, shape
         ``(L+1, 2L+1, n)``; order ``m`` sits at index ``m`` (negative ``m`` from the end).
-        With ``negative=False`` only the orders ``m >= 0`` are kept, shape ``(L+1, L+1, n)``."""
+        With ``negative=False`` only the orders ``m >= 0`` are kept, shape ``(L+1, L+1, n)``.
+        """
         L = self.n_modes if n_modes is None else n_modes
         rho, polar, azimuth = _spherical(xi)
         Y = special.sph_harm_y_all(L, L, polar, azimuth)
@@ -478,11 +404,14 @@ class Ball:
         return D
 
     def design_normal_derivative(self, points) -> np.ndarray:
-        r"""Rows mapping coefficients to the radial derivative :math:`\partial u/\partial r` at
+        r"""Return rows mapping coefficients to the radial derivative.
+
+        Rows mapping coefficients to the radial derivative :math:`\partial u/\partial r` at
         ``points`` (off the centre, where the direction is undefined and the rows are NaN).
 
         On the sphere this is :math:`\sum (\ell/R)\,c_{\ell m} B_{\ell m}`; it is computed as
-        the gradient rows projected on :math:`\hat\xi = \xi/\rho`."""
+        the gradient rows projected on :math:`\hat\xi = \xi/\rho`.
+        """
         xi, _, _ = self.locate(points)
         rho = np.linalg.norm(xi, axis=1)
         unit = xi / np.where(rho > 0, rho, np.nan)[:, None]
@@ -499,8 +428,11 @@ class Ball:
         return coef
 
     def field(self, coef, points) -> np.ndarray:
-        """Field values ``u`` at ``points`` for ``coef`` of shape ``(n_coef,)`` (or a stack
-        ``(..., n_coef)``, giving ``(..., n_points)``), evaluated in blocks of points."""
+        """Return the field values at points.
+
+        Field values ``u`` at ``points`` for ``coef`` of shape ``(n_coef,)`` (or a stack
+        ``(..., n_coef)``, giving ``(..., n_points)``), evaluated in blocks of points.
+        """
         coef = self._check_coef(coef)
         xi, _, _ = self.locate(points)
         out = np.empty(coef.shape[:-1] + (len(xi),))
@@ -524,115 +456,6 @@ class Ball:
     def normal_flux(self, coef, points, conductivity=1.0) -> np.ndarray:
         """Outward flux density ``-k du/dr`` through the sphere at surface ``points``."""
         return -conductivity * self.design_normal_derivative(points) @ self._check_coef(coef)
-
-    # --- grids -----------------------------------------------------------------------------
-    def rim_grid(self, n: int = 360):
-        """Points of a latitude/longitude grid on the sphere, and their table columns.
-
-        Parameters
-        ----------
-        n : int, default=360
-            Resolution, read as on the disk's rim (``n`` points per full circle) but thinned
-            five-fold: the grid spacing is ``1800 / n`` degrees, so ``n = 360`` gives a 5-degree
-            grid of 37 latitudes x 72 longitudes = 2664 points (both poles included, each
-            repeated once per longitude so the table is a full rectangle).
-
-        Returns
-        -------
-        points : ndarray of shape (n_lat * n_lon, 3)
-            Latitude-major order (south to north, then west to east).
-        columns : dict
-            ``{"lat_deg": ..., "lon_deg": ...}``; latitude is 90 degrees minus the polar angle
-            from ``+z``, longitude the azimuth from ``+x`` in [-180, 180).
-        """
-        n_lon = max(int(round(n / 5)), 4)
-        n_lat = max(int(round(n / 10)), 2) + 1
-        lat = np.linspace(-90.0, 90.0, n_lat)
-        lon = -180.0 + np.arange(n_lon) * (360.0 / n_lon)
-        LAT, LON = np.meshgrid(lat, lon, indexing="ij")
-        pts = self.from_latlon(LAT.ravel(), LON.ravel())
-        return pts, {"lat_deg": LAT.ravel(), "lon_deg": LON.ravel()}
-
-    def slice_grid(self, n: int = 101, axis="z", offset: float = 0.0):
-        """An ``n`` x ``n`` grid on the plane through the centre normal to ``axis``.
-
-        Parameters
-        ----------
-        n : int, default=101
-        axis : {"x", "y", "z"} or {0, 1, 2}, default="z"
-            Normal of the plane; ``"z"`` gives the equatorial (x, y) slice.
-        offset : float, default=0.0
-            Distance of the plane from the centre along ``axis``, in the unit of the radius.
-
-        Returns
-        -------
-        us, vs : ndarray of shape (n,)
-            Grid axes: the remaining two coordinates in order (x, y), (x, z) or (y, z).
-        points : ndarray of shape (n*n, 3)
-            All grid points, row-major in ``v`` then ``u``.
-        inside : ndarray of bool, shape (n*n,)
-        """
-        k = _AXES.get(axis, axis) if isinstance(axis, str) else int(axis)
-        if k not in (0, 1, 2):
-            raise ValueError(f"The 'axis' parameter of slice_grid must be 'x', 'y' or 'z'. "
-                             f"Got {axis!r} instead.")
-        iu, iv = [j for j in range(3) if j != k]
-        c = np.asarray(self.center)
-        us = c[iu] + self.radius * np.linspace(-1, 1, n)
-        vs = c[iv] + self.radius * np.linspace(-1, 1, n)
-        U, V = np.meshgrid(us, vs)
-        pts = np.empty((n * n, 3))
-        pts[:, iu], pts[:, iv], pts[:, k] = U.ravel(), V.ravel(), c[k] + offset
-        inside = np.linalg.norm(pts - c, axis=1) <= self.radius
-        return us, vs, pts, inside
-
-    def field_grid(self, n: int = 81):
-        """Interior points of the three central slices (planes z = c_z, y = c_y, x = c_x), each
-        an ``n`` x ``n`` grid, and their table columns ``{"x", "y", "z"}``."""
-        parts = []
-        for axis in ("z", "y", "x"):
-            _, _, pts, inside = self.slice_grid(n, axis)
-            parts.append(pts[inside])
-        pts = np.vstack(parts)
-        return pts, {"x": pts[:, 0], "y": pts[:, 1], "z": pts[:, 2]}
-
-    def rim_quadrature(self, n_lat: int | None = None):
-        r"""Product Gauss–Legendre (in :math:`\cos\vartheta`) x uniform (in :math:`\varphi`) rule
-        on the sphere.
-
-        Parameters
-        ----------
-        n_lat : int, optional
-            Number of Gauss–Legendre nodes; default ``n_modes + 1``. With ``2 * n_lat``
-            azimuths the rule integrates every spherical polynomial of degree
-            ``<= 2 * n_lat - 1`` exactly, so Gram matrices of degree ``<= n_lat - 1`` are exact.
-
-        Returns
-        -------
-        points : ndarray of shape (n_lat * 2 * n_lat, 3)
-        weights : ndarray
-            Weights of the surface *mean* (they sum to 1).
-        """
-        n_lat = self.n_modes + 1 if n_lat is None else int(n_lat)
-        t, wt = np.polynomial.legendre.leggauss(n_lat)
-        n_lon = 2 * n_lat
-        phi = np.arange(n_lon) * (2 * np.pi / n_lon)
-        T, P = np.meshgrid(np.arccos(t), phi, indexing="ij")
-        W = np.repeat(wt / 2, n_lon) / n_lon
-        return self.from_spherical(1.0, T.ravel(), P.ravel()), W
-
-    def rim_coefficients(self, values, n_lat: int | None = None) -> np.ndarray:
-        """Coefficients of surface ``values`` sampled at the nodes of
-        :meth:`rim_quadrature` (``n_lat``), by quadrature: ``c_j = mean(f * B_j)``.
-
-        Exact for band-limited data of degree ``<= n_lat - 1`` (``n_lat`` defaults to
-        ``n_modes + 1``)."""
-        pts, w = self.rim_quadrature(n_lat)
-        f = np.asarray(values, dtype=float)
-        if f.shape != w.shape:
-            raise ValueError(f"values must have shape {w.shape} (the quadrature nodes). "
-                             f"Got {f.shape} instead.")
-        return self.design(pts).T @ (w * f)
 
 
 def _spherical(xi):

@@ -25,7 +25,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from ..errors import DomainError
+from .arcs import CircleArcs, arc_fourier_coefficients, arc_harmonic_measure
+from .base import RoundDomain
 
 __all__ = [
     "Disk",
@@ -86,52 +89,8 @@ def poisson_kernel(r, theta, phi, radius=1.0):
     return (R * R - r * r) / (2 * np.pi * (R * R - 2 * R * r * np.cos(theta - phi) + r * r))
 
 
-def arc_harmonic_measure(z, alpha, beta):
-    r"""Harmonic measure at ``z`` of the counter-clockwise rim arc from ``alpha`` to ``beta``.
-
-    Parameters
-    ----------
-    z : complex or array_like of complex
-        Points in the open unit disk.
-    alpha, beta : float
-        Arc end angles in radians, ``alpha < beta <= alpha + 2*pi``.
-
-    Returns
-    -------
-    ndarray
-        The probability that Brownian motion from ``z`` leaves the disk through the arc, equal
-        to the Poisson-kernel mass of the arc.
-
-    Notes
-    -----
-    .. math:: \omega(z) = \frac{1}{\pi}\arg_{[0,2\pi)}\frac{e^{i\beta}-z}{e^{i\alpha}-z}
-              - \frac{\beta-\alpha}{2\pi}
-
-    with the argument taken in :math:`[0, 2\pi)` (Garnett & Marshall 2005, ch. I).
-    """
-    z = np.asarray(z, dtype=complex)
-    ang = np.angle((np.exp(1j * beta) - z) / (np.exp(1j * alpha) - z))
-    ang = np.mod(ang, 2 * np.pi)
-    return ang / np.pi - (beta - alpha) / (2 * np.pi)
-
-
-def arc_fourier_coefficients(alpha, beta, n_modes):
-    r"""Fourier coefficients of the indicator of the rim arc ``alpha``–``beta``.
-
-    Returns the vector ``(a0, a1, b1, ..., aN, bN)`` with :math:`a_0 = (\beta-\alpha)/2\pi`,
-    :math:`a_n = (\sin n\beta - \sin n\alpha)/(n\pi)`,
-    :math:`b_n = (\cos n\alpha - \cos n\beta)/(n\pi)`.
-    """
-    n = np.arange(1, n_modes + 1)
-    c = np.empty(2 * n_modes + 1)
-    c[0] = (beta - alpha) / (2 * np.pi)
-    c[1::2] = (np.sin(n * beta) - np.sin(n * alpha)) / (n * np.pi)
-    c[2::2] = (np.cos(n * alpha) - np.cos(n * beta)) / (n * np.pi)
-    return c
-
-
 @dataclass(frozen=True)
-class Disk:
+class Disk(RoundDomain):
     r"""A disk of radius ``radius`` centred at ``center``, with harmonics up to ``n_modes``.
 
     Parameters
@@ -163,6 +122,11 @@ class Disk:
 
     dim = 2
     kind = "disk"
+    #: Truncation rule (:meth:`truncation_rule`): omit under 1e-4 of the prior rim variance
+    #: (about 1 % of the rim sd); a stage extends up to degree 128, construction caps at 256.
+    truncation_tol = 1e-4
+    max_degree = 128
+    initial_max_degree = 256
 
     def __post_init__(self):
         if not (np.isfinite(self.radius) and self.radius > 0):
@@ -190,7 +154,7 @@ class Disk:
 
     @staticmethod
     def degree_multiplicity(n):
-        """Number of basis functions of degree ``n`` (1 for ``n = 0``, else 2)."""
+        """Return the number of basis functions of degree ``n`` (1 for ``n = 0``, else 2)."""
         return np.where(np.asarray(n) == 0, 1, 2)
 
     @staticmethod
@@ -198,14 +162,51 @@ class Disk:
         """Rim Laplacian eigenvalue of degree ``n`` on the unit circle, ``n**2``."""
         return np.asarray(n, dtype=float) ** 2
 
+    @staticmethod
+    def rim_mean_square(n):
+        r"""Sum over the columns of degree ``n`` of their mean square on the rim.
+
+        :math:`\cos^2 n\theta` and :math:`\sin^2 n\theta` average 1/2 on the circle, so a
+        degree :math:`n \ge 1` contributes :math:`2 \cdot 1/2`; the constant column 1.
+        """
+        n = np.asarray(n)
+        return np.where(n == 0, 1.0, Disk.degree_multiplicity(n) * 0.5)
+
+    @property
+    def coefficient_names(self) -> tuple:
+        """``("a0", "a1", "b1", ..., "aN", "bN")``."""
+        return ("a0",) + tuple(f"{ab}{n}" for n in range(1, self.n_modes + 1) for ab in "ab")
+
+    def rim_search_size(self) -> int:
+        """``max(720, 16 * n_modes)``: at least 16 rim points per shortest wavelength."""
+        return int(max(720, 16 * self.n_modes))
+
+    def region_mean_square(self) -> np.ndarray:
+        r"""Diagonal of :math:`\frac{1}{\pi R^2}\int_\text{disk} h h^\top dA` (it is diagonal).
+
+        Notes
+        -----
+        The columns :math:`\rho^n\cos n\theta`, :math:`\rho^n\sin n\theta` are orthogonal
+        over the disk, and :math:`\frac1\pi\int_0^1\int_0^{2\pi}\rho^{2n}\cos^2
+        n\theta\,d\theta\,\rho\,d\rho = \frac{1}{2n+2}` for :math:`n \ge 1`; the constant
+        column gives 1.
+        """
+        n = np.asarray(self.degrees, float)
+        return np.where(n == 0, 1.0, 1.0 / (2 * n + 2))
+
+    @property
+    def rim_arcs(self) -> CircleArcs:
+        """Angle-based rim tools (:class:`~invert.geometry.arcs.CircleArcs`)."""
+        return CircleArcs(self)
+
     def with_modes(self, n_modes: int) -> Disk:
-        """The same disk with another truncation degree."""
-        return Disk(self.radius, self.center, n_modes)
+        """Return the same disk with another truncation degree (same class: subclasses stay)."""
+        return type(self)(self.radius, self.center, n_modes)
 
     def describe(self) -> dict:
         """Plain description for summaries."""
         return {
-            "domain": "disk",
+            "domain": self.kind,
             "radius": self.radius,
             "center": list(self.center),
             "n_modes": self.n_modes,
@@ -327,15 +328,34 @@ class Disk:
             D[:, 1, 2::2] = dw.real
         return D
 
-    def design_normal_derivative(self, theta) -> np.ndarray:
-        r"""Rows mapping coefficients to the outward normal derivative :math:`\partial u/\partial r`
-        on the rim at angles ``theta`` (radians): :math:`\sum_n (n/R)(a_n\cos n\theta + b_n\sin
-        n\theta)`."""
-        theta = np.atleast_1d(np.asarray(theta, dtype=float))
+    def design_normal_derivative(self, points) -> np.ndarray:
+        r"""Return rows mapping coefficients to the radial derivative.
+
+        Rows mapping coefficients to the radial derivative :math:`\partial u/\partial r` at
+        ``points`` (on the rim: the outward normal derivative).
+
+        Parameters
+        ----------
+        points : array_like of shape (n_points, 2)
+            Off the centre, where the direction is undefined and the rows are NaN.
+
+        Returns
+        -------
+        ndarray of shape (n_points, n_coef)
+
+        Notes
+        -----
+        :math:`\partial_r u = \sum_n (n/R)\rho^{n-1}(a_n\cos n\theta + b_n\sin n\theta)`, on
+        the rim :math:`\sum_n (n/R)(a_n\cos n\theta + b_n\sin n\theta)`.
+        """
+        w, _, _ = self.locate(points)
+        rho, theta = np.abs(w), np.angle(w)
         n = np.arange(1, self.n_modes + 1)
-        D = np.zeros((theta.size, self.n_coef))
-        D[:, 1::2] = n / self.radius * np.cos(np.outer(theta, n))
-        D[:, 2::2] = n / self.radius * np.sin(np.outer(theta, n))
+        D = np.zeros((w.size, self.n_coef))
+        scale = n / self.radius * rho[:, None] ** (n - 1)
+        D[:, 1::2] = scale * np.cos(np.outer(theta, n))
+        D[:, 2::2] = scale * np.sin(np.outer(theta, n))
+        D[rho == 0] = np.nan
         return D
 
     # --- fast evaluation -------------------------------------------------------------------
@@ -359,8 +379,11 @@ class Disk:
         return acc
 
     def analytic(self, coef, points) -> np.ndarray:
-        r"""The analytic function :math:`F(w) = u + i v` at ``points``, by Horner's rule in
-        :math:`w = (z-c)/R`; ``v`` is the harmonic conjugate with :math:`v(c) = 0`."""
+        r"""Return the analytic function whose real part is the field.
+
+        The analytic function :math:`F(w) = u + i v` at ``points``, by Horner's rule in
+        :math:`w = (z-c)/R`; ``v`` is the harmonic conjugate with :math:`v(c) = 0`.
+        """
         C = self._complex_coef(coef)
         w, _, _ = self.locate(points)
         return self._horner(C, w)
@@ -370,8 +393,11 @@ class Disk:
         return self.analytic(coef, points).real
 
     def conjugate(self, coef, points) -> np.ndarray:
-        """Harmonic conjugate ``v`` (stream function) with ``v(center) = 0``; flux lines of
-        ``-k grad u`` are its level sets."""
+        """Return the harmonic conjugate (stream function) of the field.
+
+        Harmonic conjugate ``v`` (stream function) with ``v(center) = 0``; flux lines of
+        ``-k grad u`` are its level sets.
+        """
         return self.analytic(coef, points).imag
 
     def gradient(self, coef, points) -> np.ndarray:
@@ -383,9 +409,9 @@ class Disk:
         dF = dF / self.radius
         return np.column_stack([dF.real, -dF.imag])
 
-    def normal_flux(self, coef, theta, conductivity=1.0) -> np.ndarray:
-        """Outward flux density ``-k du/dr`` through the rim at angles ``theta`` (radians)."""
-        return -conductivity * self.design_normal_derivative(theta) @ np.asarray(coef, float)
+    def normal_flux(self, coef, points, conductivity=1.0) -> np.ndarray:
+        """Outward flux density ``-k du/dr`` through the rim at rim ``points``."""
+        return -conductivity * self.design_normal_derivative(points) @ np.asarray(coef, float)
 
     # --- grids -----------------------------------------------------------------------------
     def rim_grid(self, n: int = 360):
@@ -425,8 +451,11 @@ class Disk:
         return pts, {"x": pts[:, 0], "y": pts[:, 1]}
 
     def rim_coefficients(self, values) -> np.ndarray:
-        """Coefficients of the trigonometric interpolant of rim ``values`` sampled at
-        ``len(values)`` equally spaced angles from 0 (FFT), truncated to ``n_modes``."""
+        """Return the coefficients of sampled rim values.
+
+        Coefficients of the trigonometric interpolant of rim ``values`` sampled at
+        ``len(values)`` equally spaced angles from 0 (FFT), truncated to ``n_modes``.
+        """
         f = np.asarray(values, dtype=float)
         M = f.size
         F = np.fft.rfft(f) / M

@@ -1,7 +1,8 @@
 """Figures of a fit on a ball: a latitude/longitude map of the surface and interior slices.
 
-matplotlib is imported inside the functions that draw. :func:`invert.report.html.write_figures`
-calls :func:`write_figures_ball` when ``estimate.domain.kind == "ball"``.
+matplotlib is imported inside the functions that draw. :func:`write_figures_ball` is registered
+for :class:`~invert.geometry.ball.Ball` (through a captioning adapter) in
+:data:`invert.report.figures.FIGURES`.
 """
 
 from __future__ import annotations

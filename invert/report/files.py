@@ -64,7 +64,7 @@ def to_jsonable(obj):
 
 
 def summary_dict(estimate, problem, readings, *, level, extra=None):
-    """The content of summary.json for a fit."""
+    """Return the content of summary.json for a fit."""
     d = {
         "method": estimate.method,
         "level": level,
@@ -110,9 +110,8 @@ def write_fit_outputs(stage_dir, estimate, problem, readings, *, level=0.9, quer
     if query is not None:
         pts, labels = query
         s = estimate.at(pts, level)
-        cols = {"label": labels, "x": pts[:, 0], "y": pts[:, 1]}
-        if pts.shape[1] == 3:
-            cols["z"] = pts[:, 2]
+        cols = {"label": labels}
+        cols.update({c: pts[:, k] for k, c in enumerate(estimate.domain.point_columns)})
         _write_csv(s.to_frame(**cols), stage_dir / "query.csv")
     pts, cols = estimate.domain.field_grid(grid)
     s = estimate.at(pts, level)

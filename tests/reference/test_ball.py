@@ -153,7 +153,8 @@ def test_ball_kernel_series_check_value():
 
 def test_kernel_nd_reduces_to_disk_and_ball():
     # omega_{n-1} = 2 pi^{n/2} / Gamma(n/2) (Evans §2.2.4): n = 2 gives 2 pi and the disk kernel
-    # (a density in arc length; invert.geometry.disk.poisson_kernel is a density in angle, dS = R dphi);
+    # (a density in arc length; invert.geometry.disk.poisson_kernel is a density in angle,
+    # dS = R dphi);
     # n = 3 gives 4 pi and the ball kernel. Same formula, so agreement is to rounding (1e-13).
     rng = np.random.default_rng(2)
     R = 1.8

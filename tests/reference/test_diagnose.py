@@ -133,8 +133,8 @@ def test_unsensed_arc_of_one_contiguous_gap():
 def test_gap_share_matches_kernel_quadrature(rng):
     # Share of Poisson-kernel mass over the unsensed arc = harmonic measure of the arc (closed
     # form, Garnett & Marshall ch. I) = integral of the kernel over the arc, here by
-    # scipy.integrate.quad of invert.geometry.disk.poisson_kernel. 1e-6 as required; quad's own error
-    # is below 1e-10 for these smooth integrands (rho <= 0.95).
+    # scipy.integrate.quad of invert.geometry.disk.poisson_kernel. 1e-6 as required; quad's own
+    # error is below 1e-10 for these smooth integrands (rho <= 0.95).
     pb = _gap_problem()
     (a, b), = unsensed_arcs(pb)
     rho = rng.uniform(0, 0.95, 12)

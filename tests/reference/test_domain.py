@@ -146,7 +146,7 @@ def test_gradient_and_conjugate(rng):
     th = np.array([0.3, 2.0])
     rim = d.from_polar(1.0, th)
     dn = (g_rim := d.gradient(c, rim))[:, 0] * np.cos(th) + g_rim[:, 1] * np.sin(th)
-    np.testing.assert_allclose(d.design_normal_derivative(th) @ c, dn, atol=1e-12)
+    np.testing.assert_allclose(d.design_normal_derivative(rim) @ c, dn, atol=1e-12)
 
 
 def test_points_outside_and_snapping():

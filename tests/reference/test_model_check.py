@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 
 from invert import Disk, LinearProblem, Readings
-from invert.errors import ModelCheckWarning
 from invert.diagnostics.diagnose import diagnose, model_check, prior_variances
+from invert.errors import ModelCheckWarning
 from invert.prior import SmoothnessPrior
 from invert.stages import Tikhonov
 

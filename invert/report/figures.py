@@ -1,0 +1,57 @@
+"""Figures per domain: a registry keyed by domain class, looked up along the class's MRO.
+
+Every entry has the signature of :func:`write_figures` and returns ``[(path, caption), ...]``.
+A subclass of a registered domain gets its parent's figures; a new domain registers its own
+writer here (or a test does, with ``monkeypatch.setitem(FIGURES, cls, writer)``). A domain with
+no entry gets no figures (the report still has its tables).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ..geometry.ball import Ball
+from ..geometry.disk import Disk
+from . import ball_figures
+from .disk_figures import write_figures_disk
+
+__all__ = ["FIGURES", "figures_for", "write_figures", "write_figures_ball_report"]
+
+
+def write_figures_ball_report(out_dir, estimate, problem, readings=None, level=0.9, unit="",
+                              **_):
+    """Write the sphere figures and return them with captions.
+
+    Sphere figures (:func:`invert.report.ball_figures.write_figures_ball`) with captions made
+    from the file names; the diagnostics keywords of the disk writer are not used.
+    """
+    out = Path(out_dir)
+    before = set(out.glob("*.png"))
+    made = ball_figures.write_figures_ball(out, estimate, problem, readings, level, unit=unit)
+    paths = [Path(p) for p in made] if made else sorted(set(out.glob("*.png")) - before)
+    return [(p, p.stem.replace("_", " ")) for p in paths]
+
+
+#: Figure writer per domain class.
+FIGURES = {Disk: write_figures_disk, Ball: write_figures_ball_report}
+
+
+def figures_for(domain):
+    """Return the figure writer registered for ``domain``'s class or its nearest base, or None."""
+    for cls in type(domain).__mro__:
+        if cls in FIGURES:
+            return FIGURES[cls]
+    return None
+
+
+def write_figures(out_dir, estimate, problem, readings=None, level=0.9, unit="", *,
+                  length_unit="", diagnostics=None, threshold=None):
+    """Write the figures of a fit into ``out_dir``; return ``[(path, caption), ...]``.
+
+    The writer is chosen by :func:`figures_for` from ``estimate.domain``.
+    """
+    writer = figures_for(estimate.domain)
+    if writer is None:
+        return []
+    return writer(out_dir, estimate, problem, readings, level, unit, length_unit=length_unit,
+                  diagnostics=diagnostics, threshold=threshold)
