@@ -13,10 +13,12 @@ from .geometry.disk import Disk
 from .prior import truncation_degree
 from .problem import LinearProblem
 from .io.readings import Readings, load_readings
+from .stages.registry import STAGES, stage_names
 
-__all__ = ["fit", "make_domain", "as_readings", "run_stage", "METHODS"]
+__all__ = ["fit", "make_domain", "as_readings", "run_stage", "make_stage", "METHODS"]
 
-METHODS = ("tikhonov", "gaussian", "mcmc")
+#: The method names of the stage registry (:data:`invert.stages.registry.STAGES`).
+METHODS = stage_names()
 
 
 def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
@@ -78,7 +80,13 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
         Columns ``x, y, value`` and optional ``sigma, sensor`` (a blank value is a gap).
     radius : float, default=1.0
     center : (float, float), optional
-    method : {"tikhonov"}, default="tikhonov"
+    method : {"tikhonov", "gaussian", "mcmc"}, default="tikhonov"
+        The stage (:data:`invert.stages.registry.STAGES`): ``tikhonov`` (regularised least
+        squares, :class:`~invert.stages.tikhonov.Tikhonov`), ``gaussian`` (closed-form
+        posterior at evidence-optimal hyperparameters,
+        :class:`~invert.stages.gaussian.GaussianPosterior`) or ``mcmc`` (posterior draws with
+        sampled hyperparameters, faulty sensors or angle errors,
+        :class:`~invert.stages.mcmc.sampler.MCMCSampler`).
     rule : str, default="evidence"
         Parameter-choice rule for the Tikhonov stage.
     s : float, default=2.0
@@ -111,21 +119,30 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
     return run_stage(problem, method, s=s, **options)
 
 
+def make_stage(method="tikhonov", *, s=2.0, seed=None, **options):
+    """The stage registered under ``method``, built from the common settings.
+
+    Parameters
+    ----------
+    method : str
+        A name of :data:`invert.stages.registry.STAGES`.
+    s : float, default=2.0
+        Smoothness order (the Tikhonov penalty; for the Gaussian and MCMC stages it only sized
+        the truncation unless ``fix_s=True`` holds it fixed).
+    seed : None, int or numpy.random.Generator
+        For sampling stages.
+    **options
+        Passed to the stage.
+    """
+    if method not in STAGES:
+        raise ValueError(f"The 'method' parameter must be one of {METHODS}. "
+                         f"Got {method!r} instead.")
+    return STAGES[method].from_settings(s=s, seed=seed, **options)
+
+
 def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
     """Run the named stage on a problem and return its Estimate.
 
-    This is the one place that maps method names to stage classes; new stages register here.
+    The stage comes from the registry (:func:`make_stage`).
     """
-    if method == "tikhonov":
-        from .stages import Tikhonov
-
-        return Tikhonov(s=s, **options).fit(problem)
-    if method in ("gaussian", "mcmc"):
-        # s sets the truncation only; these stages estimate s unless fix_s=True holds it at s.
-        from .stages import GaussianPosterior, MCMCSampler
-
-        s_stage = s if options.pop("fix_s", False) else None
-        if method == "gaussian":
-            return GaussianPosterior(s_stage, **options).fit(problem)
-        return MCMCSampler(s=s_stage, rng=seed, **options).fit(problem)
-    raise ValueError(f"The 'method' parameter must be one of {METHODS}. Got {method!r} instead.")
+    return make_stage(method, s=s, seed=seed, **options).fit(problem)

@@ -194,6 +194,23 @@ class GaussianPosterior:
         self.s_bounds = s_bounds
         self.n_grid = n_grid
 
+    @classmethod
+    def from_settings(cls, *, s=2.0, seed=None, fix_s=False, **options):
+        """The stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+
+        ``s`` is held fixed only with ``fix_s=True`` (otherwise it only sized the truncation
+        and the stage estimates it within ``s_bounds``); ``seed`` is unused.
+        """
+        return cls(s if fix_s else None, **options)
+
+    def lowest_s(self):
+        """The roughest smoothness order tried: ``s`` when fixed, else the lower end of
+        ``s_bounds`` (the assembly layer sizes the truncation for it)."""
+        if self.s is None:
+            return _check_bounds(self.s_bounds, "GaussianPosterior")[0]
+        SmoothnessPrior(s=float(self.s))  # validates s
+        return float(self.s)
+
     def _mode(self, problem):
         where = "GaussianPosterior"
         tau = _check_positive(self.tau, "tau", where)

@@ -148,6 +148,18 @@ class Tikhonov:
         self.min_residual_dof = min_residual_dof
         self.safety = safety
 
+    @classmethod
+    def from_settings(cls, *, s=2.0, seed=None, **options):
+        """The stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+
+        ``s`` is the penalty order; ``seed`` is unused (nothing here is random).
+        """
+        return cls(s=s, **options)
+
+    def lowest_s(self):
+        """None: the penalty order is fixed and the stage uses the truncation it is given."""
+        return None
+
     def _check(self, problem):
         if self.rule not in RULES:
             raise ValueError(f"The 'rule' parameter of Tikhonov must be one of {RULES}. "

@@ -372,6 +372,26 @@ class MCMCSampler:
         self.rng = rng
         self.progress = progress
 
+    @classmethod
+    def from_settings(cls, *, s=2.0, seed=None, fix_s=False, **options):
+        """The stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+
+        ``s`` is held fixed only with ``fix_s=True`` (otherwise it only sized the truncation
+        and is sampled within ``s_bounds``); ``seed`` seeds all randomness.
+        """
+        return cls(s=s if fix_s else None, rng=seed, **options)
+
+    def lowest_s(self):
+        """The roughest smoothness order tried: ``s`` when fixed, else the lower end of
+        ``s_bounds`` (the assembly layer sizes the truncation for it)."""
+        lo, _ = _check_bounds(self.s_bounds, "MCMCSampler")
+        if self.s is None:
+            return lo
+        from ...prior import SmoothnessPrior
+
+        SmoothnessPrior(s=float(self.s))  # validates s
+        return float(self.s)
+
     # --- checks and set-up ---------------------------------------------------------------
     def _check(self, problem):
         where = "MCMCSampler"
