@@ -18,8 +18,10 @@ import numpy as np
 from scipy import linalg, stats
 
 from ._validation import check_level
+from .prior import truncation_degree
 
-__all__ = ["LinearProblem", "Estimate", "PointSummary", "PriorSummary", "interval_z"]
+__all__ = ["LinearProblem", "Estimate", "PointSummary", "PriorSummary", "interval_z",
+           "truncation_rule"]
 
 
 @dataclass(frozen=True)
@@ -46,9 +48,14 @@ class LinearProblem:
     gap_sensor, gap_points : ndarray
         Sensors that gave no reading, kept on record for diagnostics.
     notes : tuple of str
-        Facts about how the problem was built (e.g. points snapped onto the rim).
+        Facts about how the problem was built (e.g. points snapped onto the rim); stages
+        pass them on as warnings.
     n_snapped : int
         Readings moved onto the rim from just outside it (reported in the summary).
+    assembly_notes : tuple of str
+        Choices the assembly layer made for the stage (e.g. the truncation degree raised for
+        the roughest smoothness the stage tries, :func:`invert.workflow.problem_for_stage`);
+        stages record them in ``Estimate.info["notes"]``, not as warnings.
     """
 
     G: np.ndarray
@@ -63,6 +70,7 @@ class LinearProblem:
     gap_points: np.ndarray = None
     notes: tuple = ()
     n_snapped: int = 0
+    assembly_notes: tuple = ()
 
     def __post_init__(self):
         G = np.asarray(self.G, dtype=float)
@@ -93,6 +101,66 @@ class LinearProblem:
     def weights(self) -> np.ndarray:
         """``1/sigma`` per reading (ones when the noise level is unknown)."""
         return np.ones(self.n_readings) if self.sigma is None else 1.0 / self.sigma
+
+    @property
+    def n_modes(self):
+        """Truncation degree of the domain the design was built on (None without a domain)."""
+        return getattr(self.domain, "n_modes", None)
+
+    def truncation_holds(self, s) -> bool:
+        """Whether the truncation keeps the prior with smoothness ``s`` to the domain's
+        tolerance (``domain.truncation_rule()``, :func:`invert.prior.truncation_degree`).
+
+        True when the problem carries no domain with a truncation degree (nothing to check).
+        """
+        dom = self.domain
+        if dom is None or not hasattr(dom, "n_modes"):
+            return True
+        tol = truncation_rule(dom)[0]
+        return truncation_degree(dom, s, tol=tol) <= dom.n_modes
+
+    def truncation_floor(self, s_lo, s_hi) -> float:
+        """Smallest ``s`` in ``[s_lo, s_hi]`` whose prior the truncation holds (see
+        :meth:`truncation_holds`; bisection on the monotone
+        :func:`invert.prior.truncation_degree`, 40 halvings)."""
+        if self.truncation_holds(s_lo):
+            return s_lo
+        lo, hi = s_lo, s_hi
+        for _ in range(40):
+            mid = 0.5 * (lo + hi)
+            if self.truncation_holds(mid):
+                hi = mid
+            else:
+                lo = mid
+        return hi
+
+    def rotated_design(self, angle) -> np.ndarray:
+        """Design rows of the readings with each sensor turned about the centre by ``angle``.
+
+        Parameters
+        ----------
+        angle : ndarray of shape (n_batch, n_readings)
+            Turn of each sensor, radians (counter-clockwise).
+
+        Returns
+        -------
+        ndarray of shape (n_batch, n_readings, n_coef)
+
+        Raises
+        ------
+        ValueError
+            When the problem has no sensor points or its domain cannot turn points
+            (``domain.rotated_design(points, angle)``).
+        """
+        angle = np.atleast_2d(np.asarray(angle, float))
+        if self.points is None or self.domain is None:
+            raise ValueError("Turning sensors needs a problem built from sensor points "
+                             "(LinearProblem.from_readings); this one has none.")
+        turn = getattr(self.domain, "rotated_design", None)
+        if turn is None:
+            turn = _rotated_design_fallback(self.domain)
+        G = turn(self.points, angle)
+        return G.reshape(angle.shape[0], self.n_readings, self.n_coef)
 
     @classmethod
     def from_readings(cls, readings, domain):
@@ -132,7 +200,7 @@ class LinearProblem:
             self.G[keep], self.y[keep], None if self.sigma is None else self.sigma[keep],
             self.degrees, self.eigenvalues, self.domain, self.sensor[keep],
             None if self.points is None else self.points[keep], self.gap_sensor,
-            self.gap_points, self.notes,
+            self.gap_points, self.notes, self.n_snapped, self.assembly_notes,
         )
 
 
@@ -357,3 +425,39 @@ class Estimate:
         """
         pts, cols = self.domain.rim_grid(n)
         return self.at(pts, level).to_frame(**cols)
+
+
+# --- transitional: removed at merge (the domains provide truncation_rule and rotated_design) --
+def truncation_rule(domain):
+    """``(tol, max_degree)`` of a domain's truncation: ``domain.truncation_rule()``.
+
+    Transitional fallback until every domain has the method: the disk keeps under 1e-4 of the
+    prior rim variance (:func:`invert.prior.truncation_degree`) up to degree 128; the ball uses
+    its own, looser rule (``invert.geometry.ball.BALL_TRUNCATION_TOL``, ``BALL_MAX_DEGREE``)
+    because its column count grows as (N+1)^2.
+    """
+    rule = getattr(domain, "truncation_rule", None)
+    if rule is not None:
+        return rule()
+    if getattr(domain, "kind", "disk") == "ball":  # transitional: removed at merge
+        from .geometry.ball import BALL_MAX_DEGREE, BALL_TRUNCATION_TOL
+
+        return BALL_TRUNCATION_TOL, BALL_MAX_DEGREE
+    return 1e-4, 128
+
+
+def _rotated_design_fallback(domain):
+    """``domain.rotated_design`` for a domain with polar coordinates (transitional: the body of
+    ``Disk.rotated_design`` at merge); ValueError for a domain without them."""
+    if not (hasattr(domain, "to_polar") and hasattr(domain, "from_polar")):
+        raise ValueError(f"The domain {type(domain).__name__} cannot turn sensor points about "
+                         f"its centre (no rotated_design method); the angle-error model needs "
+                         f"it.")
+
+    def rotated_design(points, angle):
+        rho, theta = domain.to_polar(points)
+        rho = np.minimum(rho, 1.0)
+        pts = domain.from_polar(np.broadcast_to(rho, angle.shape), theta[None, :] + angle)
+        return domain.design(pts)
+
+    return rotated_design

@@ -7,15 +7,20 @@ prior, the linear problem, and runs the chosen stage.
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
+
+import numpy as np
 
 from .geometry.disk import Disk
 from .prior import truncation_degree
 from .problem import LinearProblem
 from .io.readings import Readings, load_readings
+from .stages._truncation import truncation_for
 from .stages.registry import STAGES, stage_names
 
-__all__ = ["fit", "make_domain", "as_readings", "run_stage", "make_stage", "METHODS"]
+__all__ = ["fit", "make_domain", "as_readings", "run_stage", "make_stage",
+           "problem_for_stage", "fit_stage", "METHODS"]
 
 #: The method names of the stage registry (:data:`invert.stages.registry.STAGES`).
 METHODS = stage_names()
@@ -140,9 +145,46 @@ def make_stage(method="tikhonov", *, s=2.0, seed=None, **options):
     return STAGES[method].from_settings(s=s, seed=seed, **options)
 
 
+def problem_for_stage(problem, stage):
+    """The problem with the truncation degree the stage needs.
+
+    The design is rebuilt from ``problem.points`` on ``problem.domain.with_modes(n)`` so that
+    the roughest smoothness the stage tries (``stage.lowest_s()``) loses less than the
+    domain's tolerance of its prior rim variance (:func:`~invert.stages._truncation.
+    truncation_for`). Nothing changes when the truncation already suffices, when the stage
+    uses the truncation it is given (``lowest_s() is None``), or when the problem cannot be
+    rebuilt: no points or domain, or a rebuilt design that does not reproduce the given ``G``
+    in its first columns (1e-10, algebra), so a hand-made design is never replaced. A raised
+    truncation is recorded in ``assembly_notes``.
+    """
+    s_min = stage.lowest_s()
+    dom = problem.domain
+    if s_min is None or dom is None or problem.points is None or not hasattr(dom, "with_modes"):
+        return problem
+    need = truncation_for(dom, s_min)
+    if need <= getattr(dom, "n_modes", need):
+        return problem
+    new_dom = dom.with_modes(need)
+    G = new_dom.design(problem.points)
+    p = problem.n_coef
+    if p > G.shape[1] or not np.allclose(G[:, :p], problem.G, rtol=1e-10, atol=1e-10):
+        return problem
+    note = (f"harmonics raised from {dom.n_modes} to {need} so that the roughest smoothness "
+            f"considered (s = {s_min:g}) is not truncated")
+    return dataclasses.replace(problem, G=G, degrees=new_dom.degrees,
+                               eigenvalues=new_dom.eigenvalues, domain=new_dom,
+                               assembly_notes=tuple(problem.assembly_notes) + (note,))
+
+
+def fit_stage(stage, problem):
+    """``stage.fit(problem_for_stage(problem, stage))``: the stage on the truncation it needs."""
+    return stage.fit(problem_for_stage(problem, stage))
+
+
 def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
     """Run the named stage on a problem and return its Estimate.
 
-    The stage comes from the registry (:func:`make_stage`).
+    The stage comes from the registry (:func:`make_stage`) and sees the problem with the
+    truncation it needs (:func:`problem_for_stage`).
     """
-    return make_stage(method, s=s, seed=seed, **options).fit(problem)
+    return fit_stage(make_stage(method, s=s, seed=seed, **options), problem)

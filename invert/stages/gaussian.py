@@ -46,7 +46,7 @@ from scipy import optimize
 
 from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
-from ._truncation import extend_modes, single_thread, truncation_floor
+from ._truncation import single_thread
 from ._search import grid_then_refine
 from ._spectrum import Spectrum
 from ..errors import FitWarning
@@ -61,6 +61,13 @@ _LOG2PI = float(np.log(2 * np.pi))
 #: (invert.prior.truncation_degree), and above 5 it is as smooth as the 13-40 readings usual
 #: here can tell apart.
 DEFAULT_S_BOUNDS = (1.5, 5.0)
+
+
+def truncation_warning(problem, s):
+    """The warning of a stage held at a smoothness ``s`` its problem's truncation cannot keep."""
+    return (f"the truncation degree ({problem.n_modes} harmonics) leaves more than the "
+            f"domain's tolerance of the prior rim variance out at s = {s:g}. Use more "
+            f"harmonics")
 
 
 def _check_bounds(s_bounds, where):
@@ -146,9 +153,9 @@ class GaussianPosterior:
     fit_noise_scale : bool, default=False
         With given sigmas, also estimate a common factor :math:`\nu` multiplying them.
     s_bounds : (float, float), default=DEFAULT_S_BOUNDS
-        Search range of ``s``. The truncation degree is raised (the problem is rebuilt from
-        its points) so that the lower end is not truncated; when that is impossible, the lower
-        end is raised instead, with a warning.
+        Search range of ``s``. The assembly layer (:func:`invert.workflow.problem_for_stage`)
+        sizes the truncation for its lower end (:meth:`lowest_s`); given fewer harmonics, the
+        stage raises the lower end instead, with a warning.
     n_grid : int, default=120
         Size of the ``log alpha`` grid scanned before refinement.
 
@@ -160,7 +167,7 @@ class GaussianPosterior:
     log_evidence_ : float
         Log marginal likelihood at the optimum.
     problem_ : LinearProblem
-        The problem actually solved (possibly with more harmonics).
+        The problem solved.
 
     Notes
     -----
@@ -180,7 +187,8 @@ class GaussianPosterior:
     >>> y = 20 + np.cos(th) + 0.01 * np.sin(3 * th)
     >>> prob = LinearProblem(d.design(pts), y, np.full(24, 0.01), d.degrees, d.eigenvalues,
     ...                      d, points=pts)
-    >>> est = GaussianPosterior(s=2.0).fit(prob)
+    >>> from invert.workflow import fit_stage  # sizes the truncation for s = 2
+    >>> est = fit_stage(GaussianPosterior(s=2.0), prob)
     >>> round(float(est.at([[0.0, 0.0]]).mean[0]), 2)
     20.0
     """
@@ -254,14 +262,10 @@ class GaussianPosterior:
             raise ValueError(f"At least 2 readings are needed; got {problem.n_readings}.")
         mode, tau, noise = self._mode(problem)
         notes = []
+        notes_info = list(problem.assembly_notes)
         if self.s is None:
             lo, hi = _check_bounds(self.s_bounds, where)
-            problem, note = extend_modes(problem, lo)
-            if note:
-                notes_info = [note]
-            else:
-                notes_info = []
-            floor = truncation_floor(problem, lo, hi)
+            floor = problem.truncation_floor(lo, hi)
             if floor > lo:
                 notes.append(f"the truncation degree supports s >= {floor:.3g} only; the "
                              f"search range of s was raised from {lo:g}. Use more harmonics")
@@ -281,8 +285,8 @@ class GaussianPosterior:
         else:
             s_hat = float(self.s)
             SmoothnessPrior(s=s_hat)  # validates s
-            problem, note = extend_modes(problem, s_hat)
-            notes_info = [note] if note else []
+            if not problem.truncation_holds(s_hat):
+                notes.append(truncation_warning(problem, s_hat))
             cache = {s_hat: self._best_at(problem, s_hat, mode, tau, noise)}
         alpha, log_ev, edge, spec, ev = cache[s_hat]
         if edge:
@@ -330,7 +334,7 @@ class GaussianPosterior:
             "log_evidence": log_ev,
             "n_readings": m,
             "n_coefficients": problem.n_coef,
-            "n_modes": getattr(problem.domain, "n_modes", None),
+            "n_modes": problem.n_modes,
             "effective_dof": dof,
             "residual_dof": m - dof,
             "chi2": rss / nu_hat**2,

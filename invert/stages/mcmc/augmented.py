@@ -63,16 +63,7 @@ def run_augmented(sampler, problem, hyper, cm, x_map, cov_map, rng, notes):
     rate = float(sampler.fault_rate)
     a_eps, b_eps = 20 * rate, 20 * (1 - rate)
 
-    if ang_sd:
-        dom = problem.domain
-        rho0, th0 = dom.to_polar(problem.points)
-        rho0 = np.minimum(rho0, 1.0)
-
-        def design(delta):
-            pts = dom.from_polar(np.broadcast_to(rho0, delta.shape), th0[None, :] + delta)
-            return dom.design(pts).reshape(delta.shape[0], m, p)
-    else:
-        design = None
+    design = problem.rotated_design if ang_sd else None
 
     def noise_rows(nu, z):
         nv = np.broadcast_to((nu**2)[:, None], (nu.size, m))

@@ -51,9 +51,10 @@ from scipy import optimize
 
 from ...problem import Estimate, PriorSummary
 from . import diagnostics as diag
-from .._truncation import extend_modes, single_thread, truncation_floor
+from .._truncation import single_thread
 from .collapsed import CollapsedModel
-from ..gaussian import DEFAULT_S_BOUNDS, GaussianPosterior, _check_bounds, _check_positive
+from ..gaussian import (DEFAULT_S_BOUNDS, GaussianPosterior, _check_bounds, _check_positive,
+                        truncation_warning)
 from ...errors import FitWarning
 from ...errors import MCMCWarning
 
@@ -416,10 +417,10 @@ class MCMCSampler:
         if not self.collapsed and (self.faulty or self.angle_sd_deg):
             raise ValueError("collapsed=False is the all-coefficient baseline of the default "
                              "model; it cannot be combined with faulty or angle_sd_deg.")
-        if self.angle_sd_deg and (problem.points is None or problem.domain is None
-                                  or getattr(problem.domain, "kind", None) != "disk"):
-            raise ValueError("angle_sd_deg needs a problem built from sensor points on a disk "
-                             "(LinearProblem.from_readings).")
+        if self.angle_sd_deg:
+            # The angle-error model turns sensors about the centre (LinearProblem.
+            # rotated_design); a problem or domain that cannot do so fails here, clearly.
+            problem.rotated_design(np.zeros((1, problem.n_readings)))
         if self.s is not None:
             from ...prior import SmoothnessPrior
 
@@ -430,19 +431,17 @@ class MCMCSampler:
 
     def _setup(self, problem, notes):
         lo, hi = _check_bounds(self.s_bounds, "MCMCSampler")
-        info_notes = []
-        problem, note = extend_modes(problem, lo if self.s is None else float(self.s))
-        if note:
-            info_notes.append(note)
         if self.s is None:
-            floor = truncation_floor(problem, lo, hi)
+            floor = problem.truncation_floor(lo, hi)
             if floor > lo:
                 notes.append(f"the truncation degree supports s >= {floor:.3g} only; the prior "
                              f"range of s was raised from {lo:g}. Use more harmonics")
                 lo = floor
+        elif not problem.truncation_holds(float(self.s)):
+            notes.append(truncation_warning(problem, float(self.s)))
         hyper = _Hyper(problem, (lo, hi), tau=self.tau, s=self.s, noise_sd=self.noise_sd,
                        fit_noise_scale=self.fit_noise_scale)
-        return problem, hyper, info_notes
+        return hyper, list(problem.assembly_notes)
 
     def _start(self, problem, hyper, cm):
         """Posterior mode of the collapsed model and the Laplace covariance there."""
@@ -503,7 +502,7 @@ class MCMCSampler:
         rng = np.random.default_rng(self.rng)
         notes = []
         clock = [time.perf_counter()]
-        problem, hyper, info_notes = self._setup(problem, notes)
+        hyper, info_notes = self._setup(problem, notes)
         cm = CollapsedModel(problem)
         x_map, cov_map = self._start(problem, hyper, cm)
         clock.append(time.perf_counter())
@@ -655,7 +654,7 @@ class MCMCSampler:
             "sampled": list(hyper.names) + res["extra"].get("sampled", []),
             "n_readings": problem.n_readings,
             "n_coefficients": problem.n_coef,
-            "n_modes": getattr(problem.domain, "n_modes", None),
+            "n_modes": problem.n_modes,
             "n_draws": int(C * D),
             "sampling": {k: v for k, v in res["run"].items()},
             "convergence": conv,
