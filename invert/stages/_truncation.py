@@ -1,4 +1,4 @@
-"""Truncation rule of a domain, and a one-thread BLAS context for the small stage matrices.
+"""Truncation degree a domain needs for a given smoothness, by its truncation rule.
 
 The stages never change the truncation: the assembly layer (:func:`invert.workflow.
 problem_for_stage`) sizes it for the roughest smoothness a stage tries, with
@@ -11,19 +11,7 @@ from __future__ import annotations
 from ..prior import truncation_degree
 from ..problem import truncation_rule
 
-__all__ = ["single_thread", "truncation_for", "truncation_rule"]
-
-
-def single_thread():
-    """Context limiting BLAS to one thread: the matrices here are tiny (tens of rows), and on
-    a shared machine multi-threaded BLAS made them 50-80x slower in our measurements."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
-        from contextlib import nullcontext
-
-        return nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
+__all__ = ["truncation_for", "truncation_rule"]
 
 
 def truncation_for(domain, s_min):

@@ -46,7 +46,8 @@ from scipy import optimize
 
 from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
-from ._truncation import single_thread
+from ._blas import single_thread
+from ._checks import check_positive, check_s_bounds
 from ._search import grid_then_refine
 from ._spectrum import Spectrum
 from ..errors import FitWarning
@@ -68,32 +69,6 @@ def truncation_warning(problem, s):
     return (f"the truncation degree ({problem.n_modes} harmonics) leaves more than the "
             f"domain's tolerance of the prior rim variance out at s = {s:g}. Use more "
             f"harmonics")
-
-
-def _check_bounds(s_bounds, where):
-    try:
-        lo, hi = (float(v) for v in s_bounds)
-        ok = np.isfinite(lo) and np.isfinite(hi) and 0.5 < lo < hi
-    except (TypeError, ValueError):
-        ok = False
-    if not ok:
-        raise ValueError(f"The 's_bounds' parameter of {where} must be a pair (lo, hi) with "
-                         f"0.5 < lo < hi. Got {s_bounds!r} instead.")
-    return lo, hi
-
-
-def _check_positive(value, name, where):
-    if value is None:
-        return None
-    try:
-        v = float(value)
-        ok = np.isfinite(v) and v > 0
-    except (TypeError, ValueError):
-        ok = False
-    if not ok:
-        raise ValueError(f"The '{name}' parameter of {where} must be a float > 0 or None. "
-                         f"Got {value!r} instead.")
-    return v
 
 
 class _Evidence:
@@ -215,14 +190,14 @@ class GaussianPosterior:
         """The roughest smoothness order tried: ``s`` when fixed, else the lower end of
         ``s_bounds`` (the assembly layer sizes the truncation for it)."""
         if self.s is None:
-            return _check_bounds(self.s_bounds, "GaussianPosterior")[0]
+            return check_s_bounds(self.s_bounds, "GaussianPosterior")[0]
         SmoothnessPrior(s=float(self.s))  # validates s
         return float(self.s)
 
     def _mode(self, problem):
         where = "GaussianPosterior"
-        tau = _check_positive(self.tau, "tau", where)
-        noise = _check_positive(self.noise_sd, "noise_sd", where)
+        tau = check_positive(self.tau, "tau", where)
+        noise = check_positive(self.noise_sd, "noise_sd", where)
         if problem.sigma is not None:
             if noise is not None:
                 raise ValueError("The 'noise_sd' parameter of GaussianPosterior applies to "
@@ -264,7 +239,7 @@ class GaussianPosterior:
         notes = []
         notes_info = list(problem.assembly_notes)
         if self.s is None:
-            lo, hi = _check_bounds(self.s_bounds, where)
+            lo, hi = check_s_bounds(self.s_bounds, where)
             floor = problem.truncation_floor(lo, hi)
             if floor > lo:
                 notes.append(f"the truncation degree supports s >= {floor:.3g} only; the "

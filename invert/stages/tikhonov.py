@@ -94,7 +94,7 @@ def lcurve_curvature(spec: Spectrum, alpha):
     """
     alpha = np.atleast_1d(np.asarray(alpha, dtype=float))
     lam = np.sqrt(alpha)
-    f = spec._f(alpha)
+    f = spec.filter_factors(alpha)
     b2s2 = (spec.beta**2 / spec.s**2)[:, None]
     eta = np.sum(f**2 * b2s2, axis=0)
     rho = spec.residual2(alpha)

@@ -34,7 +34,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
-from .sampler import _autocorr_max, _progress
+from .chains import autocorr_max, progress_bar
 
 _LOG2PI = float(np.log(2 * np.pi))
 #: Chains per superchain: enough walkers-like chains for stable within-superchain variance.
@@ -152,7 +152,7 @@ def run_augmented(sampler, problem, hyper, cm, x_map, cov_map, rng, notes):
     max_sweeps, min_sweeps = int(sampler.max_steps), int(sampler.min_steps)
     n, tau_int, converged = 0, np.inf, False
     warm = []
-    with _progress(WARMUP + max_sweeps, sampler.progress, "mcmc (Gibbs)") as bar:
+    with progress_bar(WARMUP + max_sweeps, sampler.progress, "mcmc (Gibbs)") as bar:
         for i in range(WARMUP):
             sweep(tune=True)
             if dh and i >= WARMUP // 3:
@@ -182,10 +182,10 @@ def run_augmented(sampler, problem, hyper, cm, x_map, cov_map, rng, notes):
                 cols = [tr[..., j] for j in range(dh)] + ([tr[..., dh]] if faulty else [])
                 if ang_sd:
                     dl = np.array(rec["delta"])
-                    tau_d = RECORD_EVERY * _autocorr_max(dl) if len(dl) >= 20 else np.inf
+                    tau_d = RECORD_EVERY * autocorr_max(dl) if len(dl) >= 20 else np.inf
                 else:
                     tau_d = 0.0
-                tau_int = max(_autocorr_max(np.stack(cols, axis=-1)) if cols else 0.0, tau_d)
+                tau_int = max(autocorr_max(np.stack(cols, axis=-1)) if cols else 0.0, tau_d)
                 if n >= 50 * tau_int:
                     converged = True
                     break

@@ -50,7 +50,6 @@ from __future__ import annotations
 import numpy as np
 
 from ...prior import MEAN_SCALE
-from .._truncation import single_thread
 
 _LOG2PI = float(np.log(2 * np.pi))
 

@@ -42,7 +42,6 @@ References
 
 from __future__ import annotations
 
-import sys
 import time
 import warnings
 
@@ -51,10 +50,11 @@ from scipy import optimize
 
 from ...problem import Estimate, PriorSummary
 from . import diagnostics as diag
-from .._truncation import single_thread
+from .chains import autocorr_max, progress_bar
+from .._blas import single_thread
 from .collapsed import CollapsedModel
-from ..gaussian import (DEFAULT_S_BOUNDS, GaussianPosterior, _check_bounds, _check_positive,
-                        truncation_warning)
+from .._checks import check_positive, check_s_bounds
+from ..gaussian import DEFAULT_S_BOUNDS, GaussianPosterior, truncation_warning
 from ...errors import FitWarning
 from ...errors import MCMCWarning
 
@@ -187,22 +187,6 @@ def _laplace(logp, x0, bounds):
     return x, cov
 
 
-def _autocorr_max(chain):
-    """Largest integrated autocorrelation time over parameters (Sokal window c=5); ``inf``
-    when it cannot be estimated yet."""
-    if chain.shape[0] < 10:
-        return np.inf
-    tau = diag.integrated_time(chain, c=5)
-    return float(np.max(tau)) if np.all(np.isfinite(tau)) else np.inf
-
-
-def _progress(total, progress, desc):
-    from tqdm.auto import tqdm
-
-    show = bool(progress) and sys.stderr.isatty()
-    return tqdm(total=total, disable=not show, desc=desc, leave=False)
-
-
 def _moves(d):
     """emcee moves for a ``d``-dimensional posterior, and their description.
 
@@ -250,7 +234,7 @@ def _run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, chec
         samplers.append(sampler)
     n, tau, converged = 0, np.inf, False
     next_check = max(min_steps, check_every)
-    with _progress(max_steps, progress, desc) as bar:
+    with progress_bar(max_steps, progress, desc) as bar:
         while n < max_steps:
             step = int(min(check_every, max_steps - n))
             for k in range(K):
@@ -261,7 +245,7 @@ def _run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, chec
                 # Checks at a geometric schedule (every 25 % growth): the autocorrelation
                 # estimate costs one FFT per walker and parameter.
                 next_check = max(n + check_every, int(1.25 * n))
-                tau = max(_autocorr_max(s.get_chain()[n // 4:]) for s in samplers)
+                tau = max(autocorr_max(s.get_chain()[n // 4:]) for s in samplers)
                 if n - n // 4 >= 50 * tau:
                     converged = True
                     break
@@ -385,7 +369,7 @@ class MCMCSampler:
     def lowest_s(self):
         """The roughest smoothness order tried: ``s`` when fixed, else the lower end of
         ``s_bounds`` (the assembly layer sizes the truncation for it)."""
-        lo, _ = _check_bounds(self.s_bounds, "MCMCSampler")
+        lo, _ = check_s_bounds(self.s_bounds, "MCMCSampler")
         if self.s is None:
             return lo
         from ...prior import SmoothnessPrior
@@ -407,10 +391,10 @@ class MCMCSampler:
             raise ValueError(f"The 'n_ensembles' parameter of {where} must be an int >= 4 "
                              f"(convergence is judged across ensembles). Got "
                              f"{self.n_ensembles!r} instead.")
-        _check_positive(self.tau, "tau", where)
-        _check_positive(self.noise_sd, "noise_sd", where)
-        _check_positive(self.angle_sd_deg, "angle_sd_deg", where)
-        _check_positive(self.sigma_bad, "sigma_bad", where)
+        check_positive(self.tau, "tau", where)
+        check_positive(self.noise_sd, "noise_sd", where)
+        check_positive(self.angle_sd_deg, "angle_sd_deg", where)
+        check_positive(self.sigma_bad, "sigma_bad", where)
         if not (0 < float(self.fault_rate) < 1):
             raise ValueError(f"The 'fault_rate' parameter of {where} must be a float in the "
                              f"range (0, 1). Got {self.fault_rate!r} instead.")
@@ -430,7 +414,7 @@ class MCMCSampler:
                              "without sigma (or with fit_noise_scale=True).")
 
     def _setup(self, problem, notes):
-        lo, hi = _check_bounds(self.s_bounds, "MCMCSampler")
+        lo, hi = check_s_bounds(self.s_bounds, "MCMCSampler")
         if self.s is None:
             floor = problem.truncation_floor(lo, hi)
             if floor > lo:
