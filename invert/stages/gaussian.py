@@ -42,7 +42,6 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-from scipy import optimize
 
 from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
@@ -98,19 +97,17 @@ class _Evidence:
 
 
 def _maximise_log(fun, grid):
-    """Maximise ``fun`` over a positive scalar: log grid, then bounded Brent. Returns
-    ``(x, value, at_edge)``."""
+    """Maximise ``fun`` over a positive scalar: log grid, then bounded Brent in ``log x``
+    (:func:`~invert.stages._search.grid_then_refine`, no refinement at the grid's ends).
+    Returns ``(x, value, at_edge)``."""
     vals = fun(grid)
     vals = np.where(np.isfinite(vals), vals, -np.inf)
-    i = int(np.argmax(vals))
-    if i in (0, len(grid) - 1):
-        return float(grid[i]), float(vals[i]), True
-    res = optimize.minimize_scalar(lambda la: -float(fun(np.exp(la))[0]),
-                                   bounds=(np.log(grid[i - 1]), np.log(grid[i + 1])),
-                                   method="bounded", options={"xatol": 1e-7})
-    if -res.fun >= vals[i]:
-        return float(np.exp(res.x)), float(-res.fun), False
-    return float(grid[i]), float(vals[i]), False
+    x, fx, i, refined = grid_then_refine(lambda la: -float(fun(np.exp(la))[0]), np.log(grid),
+                                         xatol=1e-7, values=-vals, refine_at_edge=False,
+                                         full_output=True)
+    if refined:
+        return float(np.exp(x)), -fx, False
+    return float(grid[i]), float(vals[i]), i in (0, len(grid) - 1)
 
 
 class GaussianPosterior:

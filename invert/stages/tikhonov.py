@@ -40,6 +40,7 @@ from scipy import optimize, stats
 
 from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
+from ._search import grid_then_refine
 from ._spectrum import Spectrum
 from ..errors import FitWarning
 
@@ -295,8 +296,6 @@ class Tikhonov:
             notes.append(f"the '{rule}' rule chose the end of the search range (lam = "
                          f"{grid[i]:.3g}); the data may hold too little information for it")
             return float(grid[i]), scores, guard
-        lo = np.log(grid[max(i - 1, 0)])
-        hi = np.log(grid[min(i + 1, len(grid) - 1)])
 
         def f(la):
             a = np.exp(la)
@@ -304,9 +303,10 @@ class Tikhonov:
                 return np.inf
             return float(sign * score_fn(spec, a)[0])
 
-        res = optimize.minimize_scalar(f, bounds=(lo, hi), method="bounded",
-                                       options={"xatol": 1e-6})
-        alpha = float(np.exp(res.x)) if res.fun <= obj[i] else float(grid[i])
+        # Refine in log(lam) between the neighbours of the best grid point.
+        x, _, j, refined = grid_then_refine(f, np.log(grid), xatol=1e-6, values=obj,
+                                            full_output=True)
+        alpha = float(np.exp(x)) if refined else float(grid[j])
         return alpha, scores, guard
 
     def _discrepancy(self, spec, grid, ok, notes):

@@ -194,6 +194,63 @@ class FilterSegment:
     n_used: np.ndarray = None     # (L,)
 
 
+@dataclass(frozen=True)
+class MeasurementUpdate:
+    """Result of :func:`measurement_update` (``m`` and ``v`` are None without readings)."""
+
+    m: np.ndarray | None
+    P: np.ndarray
+    K: np.ndarray
+    S: np.ndarray
+    Sinv: np.ndarray
+    IKH: np.ndarray
+    v: np.ndarray | None
+
+
+def measurement_update(P, H, r, *, m=None, y=None, joseph=True):
+    r"""The Kalman measurement update of a Gaussian state by readings :math:`y = Hx + e`.
+
+    Parameters
+    ----------
+    P : ndarray of shape (p, p)
+        Prior (predicted) covariance.
+    H : ndarray of shape (k, p)
+        Design rows of the readings.
+    r : ndarray of shape (k,)
+        Noise variances of the readings.
+    m : ndarray of shape (p,), optional
+        Prior mean; with ``y``, the mean is updated too.
+    y : ndarray of shape (k,), optional
+        The readings.
+    joseph : bool, default=True
+        Posterior covariance in Joseph form, :math:`(I-KH)P(I-KH)^	op + KRK^	op` (stays
+        positive semi-definite under rounding); else :math:`(I-KH)P`.
+
+    Returns
+    -------
+    MeasurementUpdate
+
+    Notes
+    -----
+    :math:`S = HPH^	op + R`, :math:`K = PH^	op S^{-1}`, :math:`v = y - Hm`,
+    :math:`m^+ = m + Kv` (Särkkä 2013, Thm 4.2; Joseph form: Bucy & Joseph 1968). ``S^{-1}``
+    and the covariance are symmetrised, :math:`	frac12(X + X^	op)`.
+    """
+    PHt = P @ H.T
+    S = H @ PHt + np.diag(r)
+    Sinv = np.linalg.inv(S)
+    Sinv = 0.5 * (Sinv + Sinv.T)
+    K = PHt @ Sinv
+    IKH = np.eye(P.shape[0]) - K @ H
+    Pn = IKH @ P @ IKH.T + (K * r) @ K.T if joseph else IKH @ P
+    Pn = 0.5 * (Pn + Pn.T)
+    v = mn = None
+    if m is not None:
+        v = y - H @ m
+        mn = m + K @ v
+    return MeasurementUpdate(mn, Pn, K, S, Sinv, IKH, v)
+
+
 def _linear_recursion(Phi, U, x0, *, reverse=False, B=None):
     r"""Evaluate :math:`x_k = \Phi x_{k-1} + u_k` for all rows of ``U`` starting from ``x0``.
 
@@ -258,10 +315,7 @@ def _riccati_fixed_point(f, Ho, q, ro, max_iter=100):
         if done:
             break
     for _ in range(2):
-        S = Ho @ X @ Ho.T + np.diag(ro)
-        K = X @ Ho.T @ np.linalg.inv(S)
-        IKH = Ieye - K @ Ho
-        Pf = IKH @ X @ IKH.T + (K * ro) @ K.T
+        Pf = measurement_update(X, Ho, ro).P
         X = f[:, None] * Pf * f[None, :] + np.diag(q)
         X = 0.5 * (X + X.T)
     return X
@@ -274,20 +328,13 @@ def _fixed_state(fixed, key, f, qd, Ho, ro, idx, next_id, seg):
             fixed.pop(next(iter(fixed)))
         fixed[key] = _riccati_fixed_point(f, Ho, qd, ro)
     Pp = fixed[key]
-    p = len(f)
-    S = Ho @ Pp @ Ho.T + np.diag(ro)
-    Sinv = np.linalg.inv(S)
-    Sinv = 0.5 * (Sinv + Sinv.T)
-    K = Pp @ Ho.T @ Sinv
-    IKH = np.eye(p) - K @ Ho
-    P = IKH @ Pp @ IKH.T + (K * ro) @ K.T
-    P = 0.5 * (P + P.T)
+    u = measurement_update(Pp, Ho, ro)
     fid, pid = next_id, next_id + 1
-    seg.P_table[fid] = P
+    seg.P_table[fid] = u.P
     seg.pred_table[pid] = (f, Pp)
-    return {"key": key, "f": f, "Pp": Pp, "P": P, "idx": idx, "fid": fid, "pid": pid,
-            "K": K, "Phi": IKH * f[None, :], "HF": Ho * f[None, :], "Sinv": Sinv,
-            "logdet": float(np.linalg.slogdet(S)[1])}
+    return {"key": key, "f": f, "Pp": Pp, "P": u.P, "idx": idx, "fid": fid, "pid": pid,
+            "K": u.K, "Phi": u.IKH * f[None, :], "HF": Ho * f[None, :], "Sinv": u.Sinv,
+            "logdet": float(np.linalg.slogdet(u.S)[1])}
 
 
 def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
@@ -346,7 +393,6 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
     frozen = dict(state.frozen) if state.frozen is not None else None
     prev, last_key = state.prev, state.key
     fixed = dict(state.fixed)
-    I = np.eye(p)
     k = 0
     while k < L:
         same = same_next[k] if k > 0 else (last_key is not None and key_of(0) == last_key)
@@ -389,20 +435,11 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
         if idx.size:
             Ho = model.H[idx]
             ro = model.noise_var[idx]
-            PHt = Pp @ Ho.T
-            S = Ho @ PHt + np.diag(ro)
+            u = measurement_update(Pp, Ho, ro, m=mp, y=Y[k, idx])
+            m, P, K, Sinv = u.m, u.P, u.K, u.Sinv
             # numpy's LAPACK calls: scipy's triangular solves were far slower at this size
-            Lc = np.linalg.cholesky(S)
-            Sinv = np.linalg.inv(S)
-            Sinv = 0.5 * (Sinv + Sinv.T)
-            K = PHt @ Sinv
-            v = Y[k, idx] - Ho @ mp
-            m = mp + K @ v
-            IKH = I - K @ Ho
-            P = IKH @ Pp @ IKH.T + (K * ro) @ K.T
-            P = 0.5 * (P + P.T)
-            logdet = 2.0 * np.sum(np.log(np.diag(Lc)))
-            q = float(v @ Sinv @ v)
+            logdet = 2.0 * np.sum(np.log(np.diag(np.linalg.cholesky(u.S))))
+            q = float(u.v @ Sinv @ u.v)
             nis[k] = q
             ll[k] = -0.5 * (q + logdet + idx.size * _LOG2PI)
         else:
@@ -419,7 +456,7 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
             fz = {"key": key, "f": f, "Pp": Pp, "P": P, "idx": idx,
                   "fid": fid[k], "pid": pid[k]}
             if idx.size:
-                fz.update(K=K, Phi=(I - K @ Ho) * f[None, :], HF=Ho * f[None, :], Sinv=Sinv,
+                fz.update(K=K, Phi=u.IKH * f[None, :], HF=Ho * f[None, :], Sinv=Sinv,
                           logdet=logdet)
             frozen = fz
         run = prev["run"] + 1 if prev is not None and prev["key"] == key else 1
@@ -754,7 +791,6 @@ def filter_summary(model, t, Y, *, t_prev=np.nan, first=False):
     t = np.asarray(t, float)
     Y = np.asarray(Y, float)
     p = model.n_coef
-    I = np.eye(p)
     acc = None
     prev_t = t_prev
     for k in range(len(t)):
@@ -762,25 +798,18 @@ def filter_summary(model, t, Y, *, t_prev=np.nan, first=False):
         if first and k == 0:
             m, P = np.zeros(p), np.diag(model.prior_var)
             if idx.size:
-                Ho, ro = model.H[idx], model.noise_var[idx]
-                S = Ho @ P @ Ho.T + np.diag(ro)
-                K = P @ Ho.T @ np.linalg.inv(S)
-                m = m + K @ (Y[k, idx] - Ho @ m)
-                IKH = I - K @ Ho
-                P = IKH @ P @ IKH.T + (K * ro) @ K.T
+                u = measurement_update(P, model.H[idx], model.noise_var[idx], m=m, y=Y[k, idx])
+                m, P = u.m, u.P
             e = (np.zeros((p, p)), m, P, np.zeros(p), np.zeros((p, p)))
         else:
             f, q = model.transition(t[k] - prev_t)
             F, Q = np.diag(f), np.diag(q)
             if idx.size:
-                Ho, ro = model.H[idx], model.noise_var[idx]
-                S = Ho @ Q @ Ho.T + np.diag(ro)
-                Si = np.linalg.inv(S)
-                K = Q @ Ho.T @ Si
-                IKH = I - K @ Ho
+                Ho = model.H[idx]
+                u = measurement_update(Q, Ho, model.noise_var[idx], joseph=False)
                 HF = Ho * f[None, :]
-                e = (IKH * f[None, :], K @ Y[k, idx], IKH @ Q, HF.T @ Si @ Y[k, idx],
-                     HF.T @ Si @ HF)
+                e = (u.IKH * f[None, :], u.K @ Y[k, idx], u.P, HF.T @ u.Sinv @ Y[k, idx],
+                     HF.T @ u.Sinv @ HF)
             else:
                 e = (F, np.zeros(p), Q, np.zeros(p), np.zeros((p, p)))
         acc = e if acc is None else _combine_filter(acc, e)

@@ -25,7 +25,8 @@ so that only the well-conditioned :math:`B` is factorised (Cholesky, batched ove
 :math:`V_0 = \tau^2\kappa^2`. The log density of the readings in their own units adds
 :math:`\sum_i \log w_i`. Given the hyperparameters the coefficients are Gaussian (Bishop 2006,
 eqs. 3.53–3.54); exact draws come from the SVD of the fully whitened standard-form matrix
-:math:`A = N^{-1}\tilde G D`, :math:`D = \operatorname{diag}(\sqrt{\text{prior var}})`:
+(:func:`~invert.stages._spectrum.standard_form`) :math:`A = N^{-1}\tilde G D`,
+:math:`D = \operatorname{diag}(\sqrt{\text{prior var}})`:
 :math:`x \mid y \sim N(V S(S^2+I)^{-1}U^\top \tilde y,\ I - V S^2(S^2+I)^{-1}V^\top)`,
 :math:`c = D x`.
 
@@ -50,6 +51,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...prior import MEAN_SCALE
+from .._spectrum import standard_form
 
 _LOG2PI = float(np.log(2 * np.pi))
 
@@ -125,7 +127,12 @@ class CollapsedModel:
         hit = self._spectra.get(key)
         if hit is None:
             d = np.sqrt(self.prior_var(np.ones(1), s[:1])[0])  # includes the broad mean level
-            U, S, Vt = np.linalg.svd(self.Gw * d[None, :], full_matrices=False)
+            U, S, Vt = np.linalg.svd(standard_form(self.problem.G, self.w, d),
+                                     full_matrices=False)
+            # All min(m, p) singular values are kept, with no rank cut-off (rank_mask): the
+            # broad mean level (sd 1e4 tau) lifts the largest far above the rest, so the
+            # cut-off would drop small directions and change the results at 1e-8 on the demo
+            # data. None is needed: every component enters as tau^2 S^2 + nu^2 > 0.
             beta = U.T @ self.yw
             full = U.shape[1] == self.m  # U square: no residual outside its span
             perp = 0.0 if full else float(np.sum((self.yw - U @ beta) ** 2))
@@ -324,7 +331,7 @@ class CollapsedModel:
             d = np.sqrt(self.prior_var(tau[sl], s[sl]))  # (b, p)
             r = 1.0 / np.sqrt(noise_var[sl])  # (b, m)
             G = self.Gw[None] if design is None else self.w[None, :, None] * design[sl]
-            A = (r[:, :, None] * G) * d[:, None, :]
+            A = standard_form(G, r, d[:, None, :])
             yt = r * self.yw[None, :]
             U, sv, Vt = np.linalg.svd(A, full_matrices=False)
             beta = np.einsum("bmk,bm->bk", U, yt)

@@ -55,7 +55,6 @@ from .._blas import single_thread
 from .collapsed import CollapsedModel
 from .._checks import check_positive, check_s_bounds
 from ..gaussian import DEFAULT_S_BOUNDS, GaussianPosterior, truncation_warning
-from ...errors import FitWarning
 from ...errors import MCMCWarning
 
 __all__ = ["MCMCSampler", "mcmc"]
