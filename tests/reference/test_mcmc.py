@@ -230,9 +230,9 @@ def test_collapsed_sampler_matches_quadrature(rng):
                          prob.domain)
     est = fit_stage(MCMCSampler(s=2.5, rng=3, progress=False, n_draws=8000), prob)
     assert est.info["sampling"]["converged"]
-    from invert.stages.mcmc.sampler import _Hyper
+    from invert.stages.mcmc.hyper import Hyper
 
-    hyper = _Hyper(prob, (1.0, 5.0), s=2.5)
+    hyper = Hyper(prob, (1.0, 5.0), s=2.5)
     cm = CollapsedModel(prob, spectral=False)
     grid = np.linspace(-8, 8, 8001)
     lp = MCMCSampler._logp_collapsed(grid[:, None], hyper, cm)
