@@ -108,7 +108,9 @@ class LinearProblem:
         return getattr(self.domain, "n_modes", None)
 
     def truncation_holds(self, s) -> bool:
-        """Whether the truncation keeps the prior with smoothness ``s`` to the domain's
+        """Check the truncation against the prior with smoothness ``s``.
+
+        Whether the truncation keeps the prior with smoothness ``s`` to the domain's
         tolerance (``domain.truncation_rule()``, :func:`invert.prior.truncation_degree`).
 
         True when the problem carries no domain with a truncation degree (nothing to check).
@@ -120,9 +122,12 @@ class LinearProblem:
         return truncation_degree(dom, s, tol=tol) <= dom.n_modes
 
     def truncation_floor(self, s_lo, s_hi) -> float:
-        """Smallest ``s`` in ``[s_lo, s_hi]`` whose prior the truncation holds (see
+        """Find the smallest ``s`` in ``[s_lo, s_hi]`` the truncation supports.
+
+        Smallest ``s`` in ``[s_lo, s_hi]`` whose prior the truncation holds (see
         :meth:`truncation_holds`; bisection on the monotone
-        :func:`invert.prior.truncation_degree`, 40 halvings)."""
+        :func:`invert.prior.truncation_degree`, 40 halvings).
+        """
         if self.truncation_holds(s_lo):
             return s_lo
         lo, hi = s_lo, s_hi
@@ -194,7 +199,7 @@ class LinearProblem:
         )
 
     def subset(self, keep):
-        """The same problem restricted to the readings in ``keep`` (mask or indices)."""
+        """Return the same problem restricted to the readings in ``keep`` (mask or indices)."""
         keep = np.asarray(keep)
         return LinearProblem(
             self.G[keep], self.y[keep], None if self.sigma is None else self.sigma[keep],
@@ -236,7 +241,7 @@ class PointSummary:
     level: float
 
     def to_frame(self, **columns):
-        """A pandas DataFrame with the given leading columns then mean, sd, lower, upper."""
+        """Return a pandas DataFrame: the given leading columns, then mean, sd, lower, upper."""
         import pandas as pd
 
         data = dict(columns)
@@ -246,7 +251,9 @@ class PointSummary:
 
 @dataclass(frozen=True, eq=False)
 class PriorSummary:
-    r"""The smoothness prior a stage ended with: :math:`\operatorname{Var} c_n = \tau^2
+    r"""The smoothness prior a stage ended with.
+
+    The smoothness prior a stage ended with: :math:`\operatorname{Var} c_n = \tau^2
     (1+\lambda_n)^{-s}` (mean level broad).
 
     Parameters
@@ -307,8 +314,8 @@ class Estimate:
     For a Gaussian result the field at points with design :math:`H` has mean :math:`H\bar c`
     and covariance :math:`H \Sigma H^\top`; the central interval at level :math:`\ell` is
     :math:`\bar u \pm z_{(1+\ell)/2}\,\mathrm{sd}`; with ``df`` set, the scale is
-    :math:`\sqrt{h^\top\Sigma h}` and :math:`z` is the Student-t quantile. For draws, the interval is the pair of
-    empirical quantiles :math:`(1\mp\ell)/2`.
+    :math:`\sqrt{h^\top\Sigma h}` and :math:`z` is the Student-t quantile. For draws, the
+    interval is the pair of empirical quantiles :math:`(1\mp\ell)/2`.
     """
 
     mean: np.ndarray
@@ -447,8 +454,11 @@ def truncation_rule(domain):
 
 
 def _rotated_design_fallback(domain):
-    """``domain.rotated_design`` for a domain with polar coordinates (transitional: the body of
-    ``Disk.rotated_design`` at merge); ValueError for a domain without them."""
+    """Turn sensor points with polar coordinates (transitional).
+
+    ``domain.rotated_design`` for a domain with polar coordinates (transitional: the body of
+    ``Disk.rotated_design`` at merge); ValueError for a domain without them.
+    """
     if not (hasattr(domain, "to_polar") and hasattr(domain, "from_polar")):
         raise ValueError(f"The domain {type(domain).__name__} cannot turn sensor points about "
                          f"its centre (no rotated_design method); the angle-error model needs "

@@ -13,9 +13,9 @@ from pathlib import Path
 import numpy as np
 
 from .geometry.disk import Disk
+from .io.readings import Readings, load_readings
 from .prior import truncation_degree
 from .problem import LinearProblem
-from .io.readings import Readings, load_readings
 from .stages._truncation import truncation_for
 from .stages.registry import STAGES, stage_names
 
@@ -67,7 +67,7 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
 
 
 def as_readings(data, *, dim=2) -> Readings:
-    """Readings from a DataFrame, a CSV path, or a Readings object."""
+    """Return Readings from a DataFrame, a CSV path, or a Readings object."""
     if isinstance(data, Readings):
         return data
     if isinstance(data, (str, Path)):
@@ -125,7 +125,7 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
 
 
 def make_stage(method="tikhonov", *, s=2.0, seed=None, **options):
-    """The stage registered under ``method``, built from the common settings.
+    """Build the stage registered under ``method`` from the common settings.
 
     Parameters
     ----------
@@ -146,7 +146,7 @@ def make_stage(method="tikhonov", *, s=2.0, seed=None, **options):
 
 
 def problem_for_stage(problem, stage):
-    """The problem with the truncation degree the stage needs.
+    """Return the problem with the truncation degree the stage needs.
 
     The design is rebuilt from ``problem.points`` on ``problem.domain.with_modes(n)`` so that
     the roughest smoothness the stage tries (``stage.lowest_s()``) loses less than the

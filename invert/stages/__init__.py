@@ -1,9 +1,17 @@
-"""Inference stages. Each takes a :class:`~invert.problem.LinearProblem` and returns an
-:class:`~invert.problem.Estimate`; none knows the shape of the region."""
+"""Inference stages of ``invert``.
+
+Inference stages. Each takes a :class:`~invert.problem.LinearProblem` and returns an
+:class:`~invert.problem.Estimate`; none knows the shape of the region.
+"""
 
 from ..errors import FitWarning, MCMCWarning
-from .assimilate import (CoefficientDynamics, KalmanSmoother, SmoothedSeries, fit_time_scale,
-                         run_smoother)
+from .assimilate import (
+                         CoefficientDynamics,
+                         KalmanSmoother,
+                         SmoothedSeries,
+                         fit_time_scale,
+                         run_smoother,
+)
 from .gaussian import GaussianPosterior, gaussian_posterior
 from .mcmc import MCMCSampler, mcmc
 from .tikhonov import RULES, Tikhonov, tikhonov

@@ -1,5 +1,8 @@
-"""Checks of stage settings shared by the Gaussian and MCMC stages (scikit-learn's message
-shape: the parameter, what is allowed, what was got)."""
+"""Checks of stage settings shared by the Gaussian and MCMC stages.
+
+Checks of stage settings shared by the Gaussian and MCMC stages (scikit-learn's message
+shape: the parameter, what is allowed, what was got).
+"""
 
 from __future__ import annotations
 
@@ -9,8 +12,11 @@ __all__ = ["check_s_bounds", "check_positive"]
 
 
 def check_s_bounds(s_bounds, where):
-    """``(lo, hi)`` as floats with ``0.5 < lo < hi`` (a proper smoothness prior), else
-    ValueError naming the stage ``where``."""
+    """Check a smoothness range ``s_bounds``.
+
+    ``(lo, hi)`` as floats with ``0.5 < lo < hi`` (a proper smoothness prior), else
+    ValueError naming the stage ``where``.
+    """
     try:
         lo, hi = (float(v) for v in s_bounds)
         ok = np.isfinite(lo) and np.isfinite(hi) and 0.5 < lo < hi

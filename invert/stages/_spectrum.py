@@ -37,7 +37,7 @@ RANK_RTOL = 1e-13
 
 
 def standard_form(G, weights, prior_sd):
-    r"""The standard-form matrix :math:`\tilde A = W G D` (stacks of designs broadcast).
+    r"""Build the standard-form matrix :math:`\tilde A = W G D` (stacks broadcast).
 
     Parameters
     ----------
@@ -93,8 +93,11 @@ class Spectrum:
         self.problem = problem
 
     def filter_factors(self, alpha):
-        r"""Filter factors :math:`f_i = s_i^2/(s_i^2+\alpha)`, shape (k, n_alpha) (alpha as
-        the last axis)."""
+        r"""Compute the filter factors for each alpha.
+
+        Filter factors :math:`f_i = s_i^2/(s_i^2+\alpha)`, shape (k, n_alpha) (alpha as
+        the last axis).
+        """
         alpha = np.atleast_1d(np.asarray(alpha, dtype=float))
         s2 = self.s[:, None] ** 2
         return s2 / (s2 + alpha[None, :])
@@ -128,8 +131,11 @@ class Spectrum:
         return self.d * (self.Vt.T @ (f * self.beta / self.s))
 
     def cov(self, alpha, noise_var=1.0):
-        """Posterior covariance of ``c`` for one alpha, in units where the given sigmas (or
-        the common noise level) are scaled by ``noise_var``."""
+        """Compute the posterior covariance of ``c`` for one alpha.
+
+        Posterior covariance of ``c`` for one alpha, in units where the given sigmas (or
+        the common noise level) are scaled by ``noise_var``.
+        """
         B, h = self.cov_factor(alpha)
         return noise_var * ((B * h) @ B.T)
 

@@ -15,7 +15,7 @@ __all__ = ["truncation_for", "truncation_rule"]
 
 
 def truncation_for(domain, s_min):
-    """Truncation degree that keeps a prior with ``s = s_min`` to the domain's rule.
+    """Return the truncation degree keeping a prior with ``s = s_min`` to the rule.
 
     The omitted share of prior rim variance stays under the rule's tolerance, up to its
     largest degree (``domain.truncation_rule()``; :func:`invert.prior.truncation_degree`).

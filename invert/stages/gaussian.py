@@ -1,4 +1,6 @@
-r"""Gaussian stage: the closed-form posterior of the coefficients at evidence-optimal
+r"""Gaussian stage: the closed-form posterior of the coefficients.
+
+Gaussian stage: the closed-form posterior of the coefficients at evidence-optimal
 hyperparameters.
 
 Notes
@@ -43,13 +45,13 @@ import warnings
 
 import numpy as np
 
+from ..errors import FitWarning
 from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
 from ._blas import single_thread
 from ._checks import check_positive, check_s_bounds
 from ._search import grid_then_refine
 from ._spectrum import Spectrum
-from ..errors import FitWarning
 
 __all__ = ["GaussianPosterior", "gaussian_posterior", "DEFAULT_S_BOUNDS"]
 
@@ -64,7 +66,7 @@ DEFAULT_S_BOUNDS = (1.5, 5.0)
 
 
 def truncation_warning(problem, s):
-    """The warning of a stage held at a smoothness ``s`` its problem's truncation cannot keep."""
+    """Return the warning of a stage held at an ``s`` its problem's truncation cannot keep."""
     return (f"the truncation degree ({problem.n_modes} harmonics) leaves more than the "
             f"domain's tolerance of the prior rim variance out at s = {s:g}. Use more "
             f"harmonics")
@@ -97,9 +99,12 @@ class _Evidence:
 
 
 def _maximise_log(fun, grid):
-    """Maximise ``fun`` over a positive scalar: log grid, then bounded Brent in ``log x``
+    """Maximise ``fun`` over a positive scalar.
+
+    Maximise ``fun`` over a positive scalar: log grid, then bounded Brent in ``log x``
     (:func:`~invert.stages._search.grid_then_refine`, no refinement at the grid's ends).
-    Returns ``(x, value, at_edge)``."""
+    Returns ``(x, value, at_edge)``.
+    """
     vals = fun(grid)
     vals = np.where(np.isfinite(vals), vals, -np.inf)
     x, fx, i, refined = grid_then_refine(lambda la: -float(fun(np.exp(la))[0]), np.log(grid),
@@ -176,7 +181,7 @@ class GaussianPosterior:
 
     @classmethod
     def from_settings(cls, *, s=2.0, seed=None, fix_s=False, **options):
-        """The stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+        """Build the stage from the assembly layer's settings (:mod:`invert.stages.registry`).
 
         ``s`` is held fixed only with ``fix_s=True`` (otherwise it only sized the truncation
         and the stage estimates it within ``s_bounds``); ``seed`` is unused.
@@ -184,8 +189,11 @@ class GaussianPosterior:
         return cls(s if fix_s else None, **options)
 
     def lowest_s(self):
-        """The roughest smoothness order tried: ``s`` when fixed, else the lower end of
-        ``s_bounds`` (the assembly layer sizes the truncation for it)."""
+        """Return the roughest smoothness order the stage tries.
+
+        The roughest smoothness order tried: ``s`` when fixed, else the lower end of
+        ``s_bounds`` (the assembly layer sizes the truncation for it).
+        """
         if self.s is None:
             return check_s_bounds(self.s_bounds, "GaussianPosterior")[0]
         SmoothnessPrior(s=float(self.s))  # validates s

@@ -34,5 +34,5 @@ STAGES = MappingProxyType({
 
 
 def stage_names() -> tuple:
-    """The registered method names, in registry order."""
+    """Return the registered method names, in registry order."""
     return tuple(STAGES)

@@ -10,7 +10,8 @@ chosen by one of the rules below from a single SVD (:class:`~invert.stages._spec
 ``loo``          minimise the leave-one-out mean square :math:`\frac1m\sum (r_i/(1-A_{ii}))^2`
 ``lcurve``       maximise the curvature of :math:`(\log\|r\|, \log\|x\|)` [2]_
 ``discrepancy``  largest :math:`\alpha` with :math:`\|r\|^2 \le \tau_d^2 m` [3]_ (known sigma)
-``upre``         minimise :math:`\|r\|^2 + 2\operatorname{tr}A - m` (Mallows' :math:`C_p`; known sigma)
+``upre``         minimise :math:`\|r\|^2 + 2\operatorname{tr}A - m` (Mallows' :math:`C_p`;
+                 known sigma)
 ``evidence``     maximise the marginal likelihood (type-II ML) [4]_
 
 Every rule (except the evidence with given sigma, a proper likelihood) is restricted to
@@ -38,11 +39,11 @@ import warnings
 import numpy as np
 from scipy import optimize, stats
 
+from ..errors import FitWarning
 from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
 from ._search import grid_then_refine
 from ._spectrum import Spectrum
-from ..errors import FitWarning
 
 __all__ = [
     "Tikhonov",
@@ -61,13 +62,13 @@ _NEEDS_SIGMA = ("discrepancy", "upre")
 
 
 def gcv_score(spec: Spectrum, alpha):
-    """GCV function :math:`m\\|r\\|^2/(m-\\operatorname{tr}A)^2` (Golub, Heath & Wahba 1979)."""
+    r"""GCV function :math:`m\|r\|^2/(m-\operatorname{tr}A)^2` (Golub, Heath & Wahba 1979)."""
     m = spec.m
     return m * spec.residual2(alpha) / (m - spec.dof(alpha)) ** 2
 
 
 def loo_score(spec: Spectrum, alpha):
-    """Mean squared leave-one-out residual :math:`\\frac1m\\sum_i (r_i/(1-A_{ii}))^2`."""
+    r"""Mean squared leave-one-out residual :math:`\frac1m\sum_i (r_i/(1-A_{ii}))^2`."""
     r = spec.residuals(alpha)
     h = spec.hat_diag(alpha)
     return np.mean((r / (1 - h)) ** 2, axis=0)
@@ -79,7 +80,9 @@ def upre_score(spec: Spectrum, alpha):
 
 
 def lcurve_curvature(spec: Spectrum, alpha):
-    r"""Curvature of the L-curve :math:`(\log\sqrt\rho, \log\sqrt\eta)` at :math:`\lambda =
+    r"""Compute the curvature of the L-curve.
+
+    Curvature of the L-curve :math:`(\log\sqrt\rho, \log\sqrt\eta)` at :math:`\lambda =
     \sqrt\alpha`.
 
     Notes
@@ -105,7 +108,7 @@ def lcurve_curvature(spec: Spectrum, alpha):
 
 
 class Tikhonov:
-    """Regularised least squares with the smoothness penalty and a parameter-choice rule.
+    r"""Regularised least squares with the smoothness penalty and a parameter-choice rule.
 
     Parameters
     ----------
@@ -127,7 +130,7 @@ class Tikhonov:
         given sigma; otherwise ``max(1, 0.1 * m)`` with given sigma and ``max(3, 0.1 * m)`` when
         the noise level is estimated.
     safety : float, default=1.05
-        Safety factor :math:`\\tau_d` of the discrepancy principle.
+        Safety factor :math:`\tau_d` of the discrepancy principle.
 
     Attributes
     ----------
@@ -151,7 +154,7 @@ class Tikhonov:
 
     @classmethod
     def from_settings(cls, *, s=2.0, seed=None, **options):
-        """The stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+        """Build the stage from the assembly layer's settings (:mod:`invert.stages.registry`).
 
         ``s`` is the penalty order; ``seed`` is unused (nothing here is random).
         """
@@ -250,7 +253,8 @@ class Tikhonov:
             warnings.warn(n, FitWarning, stacklevel=2)
         return Estimate(
             mean=coef, cov=cov, domain=problem.domain, method="tikhonov",
-            noise_sd=self.noise_sd_, df=t_df, info=info, warnings=tuple(problem.notes) + tuple(notes),
+            noise_sd=self.noise_sd_, df=t_df, info=info,
+            warnings=tuple(problem.notes) + tuple(notes),
             prior=PriorSummary(s=info["s"], tau=info["tau"]),
         )
 

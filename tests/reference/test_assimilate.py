@@ -11,9 +11,16 @@ from scipy import stats
 
 from invert.geometry.disk import Disk
 from invert.prior import SmoothnessPrior
-from invert.stages.assimilate import (CoefficientDynamics, FilterState, KalmanSmoother,
-                                      filter_segment, fit_time_scale, linear_recursion,
-                                      log_likelihood, run_smoother)
+from invert.stages.assimilate import (
+    CoefficientDynamics,
+    FilterState,
+    KalmanSmoother,
+    filter_segment,
+    fit_time_scale,
+    linear_recursion,
+    log_likelihood,
+    run_smoother,
+)
 
 
 def _small_model(time_scale=3.0, n_modes=2, n_sensors=6):
@@ -215,8 +222,14 @@ def test_chunk_elements_combine_to_the_sequential_smoother(problem):
     # in order (a scan over chunk summaries), give the filtered state entering each chunk and
     # the smoothed state leaving it; running each chunk from those states reproduces the
     # sequential smoother. Tolerance: algebra (1e-9, prior scale 100 on the mean level).
-    from invert.stages.assimilate import (SmootherState, combine_filter, combine_smoother,
-                                          filter_summary, smooth_segment, smoother_summary)
+    from invert.stages.assimilate import (
+        SmootherState,
+        combine_filter,
+        combine_smoother,
+        filter_summary,
+        smooth_segment,
+        smoother_summary,
+    )
 
     model, t, Y = problem
     ref = run_smoother(model, t, Y, steady_tol=0)

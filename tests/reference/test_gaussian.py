@@ -14,8 +14,8 @@ from scipy import stats
 from sklearn.linear_model import BayesianRidge
 
 from invert import Disk, GaussianPosterior, LinearProblem, SmoothnessPrior
-from invert.workflow import fit_stage
 from invert.stages.mcmc.collapsed import CollapsedModel
+from invert.workflow import fit_stage
 
 
 def _scenario(rng, *, n_modes=22, n_rim=24, n_probe=3, sigma=0.05, known=True, gap=0.2,

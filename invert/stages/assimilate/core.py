@@ -7,8 +7,15 @@ Import from :mod:`invert.stages.assimilate` instead. Old name -> new name: ``_co
 """
 
 from .dynamics import CoefficientDynamics
-from .filter import (FilterSegment, FilterState, MeasurementUpdate, filter_segment,
-                     fit_time_scale, log_likelihood, measurement_update)
+from .filter import (
+                     FilterSegment,
+                     FilterState,
+                     MeasurementUpdate,
+                     filter_segment,
+                     fit_time_scale,
+                     log_likelihood,
+                     measurement_update,
+)
 from .parallel import combine_filter, combine_smoother, filter_summary, smoother_summary
 from .recursion import close_relative, linear_recursion
 from .smoother import KalmanSmoother, SmoothedSeries, SmootherState, run_smoother, smooth_segment

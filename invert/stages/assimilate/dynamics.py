@@ -70,7 +70,7 @@ class CoefficientDynamics:
 
     @classmethod
     def from_prior(cls, H, noise_var, shape, degrees, *, tau2, time_scale, mean_var=None):
-        """Dynamics whose stationary law is the smoothness prior ``tau2 * shape``.
+        r"""Dynamics whose stationary law is the smoothness prior ``tau2 * shape``.
 
         Parameters
         ----------
@@ -79,7 +79,7 @@ class CoefficientDynamics:
             Prior variance pattern with ``tau = 1`` (:meth:`SmoothnessPrior.shape`).
         degrees : ndarray of int, shape (n_coef,)
         tau2 : float
-            Prior scale :math:`\\tau^2`.
+            Prior scale :math:`\tau^2`.
         time_scale : float
         mean_var : float, optional
             Initial variance of the mean level; default ``tau2 * shape`` at degree 0.
@@ -111,5 +111,5 @@ class CoefficientDynamics:
         return f, q
 
     def with_time_scale(self, time_scale):
-        """The same model with another time scale."""
+        """Return the same model with another time scale."""
         return replace(self, time_scale=float(time_scale))

@@ -62,7 +62,7 @@ class FilterState:
 
     @classmethod
     def initial(cls, model):
-        """The prior at the first frame: mean zero, covariance ``diag(prior_var)``."""
+        """Return the prior at the first frame: mean zero, covariance ``diag(prior_var)``."""
         return cls(np.zeros(model.n_coef), np.diag(model.prior_var))
 
 
@@ -95,7 +95,7 @@ class MeasurementUpdate:
 
 
 def measurement_update(P, H, r, *, m=None, y=None, joseph=True):
-    r"""The Kalman measurement update of a Gaussian state by readings :math:`y = Hx + e`.
+    r"""Update a Gaussian state by readings :math:`y = Hx + e` (Kalman).
 
     Parameters
     ----------
@@ -165,7 +165,7 @@ def _riccati_fixed_point(f, Ho, q, ro, max_iter=100):
 
 
 def _fixed_state(fixed, key, f, qd, Ho, ro, idx, next_id, seg):
-    """The frozen record of a key's steady state (fixed point cached per key)."""
+    """Return the frozen record of a key's steady state (fixed point cached per key)."""
     if key not in fixed:
         if len(fixed) > 256:
             fixed.pop(next(iter(fixed)))

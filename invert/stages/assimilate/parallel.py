@@ -24,13 +24,13 @@ def combine_filter(ei, ej):
     Ai, bi, Ci, etai, Ji = ei
     Aj, bj, Cj, etaj, Jj = ej
     p = len(bi)
-    I = np.eye(p)
-    M = np.linalg.inv(I + Ci @ Jj)
+    eye = np.eye(p)
+    M = np.linalg.inv(eye + Ci @ Jj)
     AjM = Aj @ M
     A = AjM @ Ai
     b = AjM @ (bi + Ci @ etaj) + bj
     C = AjM @ Ci @ Aj.T + Cj
-    N = np.linalg.inv(I + Jj @ Ci)
+    N = np.linalg.inv(eye + Jj @ Ci)
     AiN = Ai.T @ N
     eta = AiN @ (etaj - Jj @ bi) + etai
     J = AiN @ Jj @ Ai + Ji
@@ -38,7 +38,7 @@ def combine_filter(ei, ej):
 
 
 def filter_summary(model, t, Y, *, t_prev=np.nan, first=False):
-    r"""The filtering element of a run of frames: the whole run as one associative element.
+    r"""Summarise a run of frames as one associative filtering element.
 
     Parameters
     ----------
@@ -102,7 +102,7 @@ def combine_smoother(ei, ej):
 
 
 def smoother_summary(seg, next_pred=None):
-    r"""The smoothing element of a filtered run: :math:`x_{\rm first} \mid x_{\rm next}`.
+    r"""Summarise a filtered run as one smoothing element, :math:`x_{\rm first} \mid x_{\rm next}`.
 
     ``next_pred`` is ``(f, P^-)`` of the frame after the run (None at the end of the log).
     Per frame (Särkkä & García-Fernández 2021, Lemma 10): :math:`E = P_kF^\top

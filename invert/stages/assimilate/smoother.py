@@ -44,7 +44,7 @@ class SmootherState:
 
 
 def smooth_segment(seg, state, *, steady_tol=1e-10, max_transient=None):
-    """Run the RTS smoother backwards over one filtered segment.
+    r"""Run the RTS smoother backwards over one filtered segment.
 
     Parameters
     ----------
@@ -86,7 +86,7 @@ def smooth_segment(seg, state, *, steady_tol=1e-10, max_transient=None):
     if L > 1:
         same[1:] = (seg.fid[1:] == seg.fid[:-1]) & (nxt[1:] == nxt[:-1])
     run_start = np.maximum.accumulate(np.where(same, 0, np.arange(L))) if L else same
-    I = np.eye(p)
+    eye = np.eye(p)
     k = L - 1
     while k >= 0:
         if k == L - 1 and pred_in is None:  # last frame of the log: filter = smoother
@@ -124,12 +124,12 @@ def smooth_segment(seg, state, *, steady_tol=1e-10, max_transient=None):
         new_frozen = None
         run = run + 1 if last == key else 1
         if steady_tol > 0 and last == key and close_relative(Ps, Ps_next, steady_tol):
-            new_frozen = {"key": key, "G": G, "IGF": I - G * f[None, :], "Ps": Ps, "sid": None}
+            new_frozen = {"key": key, "G": G, "IGF": eye - G * f[None, :], "Ps": Ps, "sid": None}
         elif steady_tol > 0 and max_transient and run >= max_transient:
             from scipy.linalg import solve_discrete_lyapunov
 
             X = solve_discrete_lyapunov(G, P - G @ Pp @ G.T)
-            new_frozen = {"key": key, "G": G, "IGF": I - G * f[None, :], "Ps": 0.5 * (X + X.T),
+            new_frozen = {"key": key, "G": G, "IGF": eye - G * f[None, :], "Ps": 0.5 * (X + X.T),
                           "sid": None}
         Ps_table.append(Ps)
         sid[k] = len(Ps_table) - 1
@@ -178,7 +178,7 @@ class SmoothedSeries:
         return self.mean @ H.T, np.sqrt(np.clip(var[self.cov_index], 0, None))
 
     def estimate(self, k, domain=None, *, noise_sd=None):
-        """The :class:`~invert.problem.Estimate` of frame ``k``."""
+        """Return the :class:`~invert.problem.Estimate` of frame ``k``."""
         from ...problem import Estimate
 
         return Estimate(mean=self.mean[k], cov=self.cov(k), domain=domain,

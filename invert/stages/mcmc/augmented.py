@@ -211,7 +211,7 @@ class GibbsSampler:
         return max(autocorr_max(np.stack(cols, axis=-1)) if cols else 0.0, tau_d)
 
     def _sample(self, bar):
-        """Recorded sweeps until 50 autocorrelation times or ``max_steps``."""
+        """Record sweeps until 50 autocorrelation times or ``max_steps``."""
         nc, m = self.nc, self.m
         rec_theta, rec = [], {"coef": [], "coef_mean": [], "mu": [], "pf": [], "eps": [],
                               "delta": [], "z": []}
@@ -261,8 +261,11 @@ class GibbsSampler:
 
     # --- results -----------------------------------------------------------------------------
     def _loo_loglik(self, draws):
-        """Integrated pointwise ``log p(y_i | y_-i, theta, latent_-i)`` for PSIS-LOO, and the
-        row noise variances, per kept draw."""
+        """Compute the pointwise leave-one-out log-likelihood.
+
+        Integrated pointwise ``log p(y_i | y_-i, theta, latent_-i)`` for PSIS-LOO, and the
+        row noise variances, per kept draw.
+        """
         cm, m, nc, D_ = self.cm, self.m, self.nc, draws.n
         tau, s, nu = self.hyper.unpack(draws.theta.reshape(nc * D_, self.dh))
         zf = draws.pick("z").reshape(nc * D_, m)
@@ -337,7 +340,7 @@ class _Thinned:
         self.theta = np.moveaxis(rt[..., :dh], 0, 1)
 
     def pick(self, key):
-        """Recorded ``key`` at the kept sweeps, shape (nc, D, ...)."""
+        """Return the recorded ``key`` at the kept sweeps, shape (nc, D, ...)."""
         a = np.array(self.rec[key])[self.sel]  # (D, nc, ...)
         return np.moveaxis(a, 0, 1)
 

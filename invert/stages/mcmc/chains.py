@@ -12,8 +12,11 @@ __all__ = ["autocorr_max", "progress_bar"]
 
 
 def autocorr_max(chain):
-    """Largest integrated autocorrelation time over parameters (Sokal window c=5); ``inf``
-    when it cannot be estimated yet (fewer than 10 steps, or a non-finite estimate)."""
+    """Return the largest integrated autocorrelation time.
+
+    Largest integrated autocorrelation time over parameters (Sokal window c=5); ``inf``
+    when it cannot be estimated yet (fewer than 10 steps, or a non-finite estimate).
+    """
     if chain.shape[0] < 10:
         return np.inf
     tau = diag.integrated_time(chain, c=5)
@@ -21,7 +24,7 @@ def autocorr_max(chain):
 
 
 def progress_bar(total, progress, desc):
-    """A tqdm bar over ``total`` steps, shown only when ``progress`` and stderr is a terminal."""
+    """Return a tqdm bar over ``total`` steps, shown only with ``progress`` on a terminal."""
     from tqdm.auto import tqdm
 
     show = bool(progress) and sys.stderr.isatty()

@@ -117,8 +117,11 @@ class CollapsedModel:
         return tau, s, nb, noise_var
 
     def _spectrum(self, s, noise_var, design):
-        """The cached one-SVD decomposition for this batch, or None when the batch does not
-        share one ``s`` and one common noise level (or has its own designs)."""
+        """Return the cached one-SVD decomposition for a batch.
+
+        The cached one-SVD decomposition for this batch, or None when the batch does not
+        share one ``s`` and one common noise level (or has its own designs).
+        """
         if not self.spectral or design is not None or s.size == 0:
             return None
         if not (np.all(s == s[0]) and np.all(noise_var == noise_var[:, :1])):
@@ -148,9 +151,12 @@ class CollapsedModel:
         return (tau**2)[:, None] * sp["S2"][None, :] + nv[:, None]
 
     def _blocks(self, tau, s, noise_var, design, chunk):
-        r"""Yield ``(slice, prior_var, G_r, g_0, B)`` per chunk of hyperparameter rows, with
+        r"""Yield the data-space blocks per chunk of hyperparameter rows.
+
+        Yield ``(slice, prior_var, G_r, g_0, B)`` per chunk of hyperparameter rows, with
         :math:`B = G_r P_r G_r^\top + \operatorname{diag}(noise)` (whitened rows; ``G_r`` the
-        columns with a proper prior, ``g_0`` the broad mean level)."""
+        columns with a proper prior, ``g_0`` the broad mean level).
+        """
         br = self.broad
         idx = np.arange(self.m)
         for a0 in range(0, tau.size, chunk):
@@ -207,7 +213,9 @@ class CollapsedModel:
         return gaussian_terms(B, self.yw, G0, V0) + self.log_w
 
     def loo_moments(self, tau, s, noise_var, design=None, chunk=512):
-        r"""Leave-one-out predictive mean and variance of each whitened reading given the
+        r"""Compute leave-one-out predictive moments of the readings.
+
+        Leave-one-out predictive mean and variance of each whitened reading given the
         hyperparameters, coefficients integrated out; shapes (n_batch, m).
 
         Notes
@@ -319,8 +327,11 @@ class CollapsedModel:
         return mean, draw
 
     def conditional_svd(self, tau, s, noise_var, rng=None, design=None, chunk=256):
-        """Same as :meth:`conditional` through the SVD of the whitened standard form (slower,
-        kept as an independent check)."""
+        """Draw as :meth:`conditional`, through the SVD (an independent check).
+
+        Same as :meth:`conditional` through the SVD of the whitened standard form (slower,
+        kept as an independent check).
+        """
         rng = np.random.default_rng(rng)
         tau, s, nb, noise_var = self._batch(tau, s, noise_var)
         z = rng.standard_normal((nb, self.p))

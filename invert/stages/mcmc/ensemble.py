@@ -1,4 +1,6 @@
-"""emcee ensembles of the MCMC stage: the moves, lockstep runs to a length set by the
+"""The emcee ensembles of the MCMC stage.
+
+emcee ensembles of the MCMC stage: the moves, lockstep runs to a length set by the
 autocorrelation time, and burn-in and thinning.
 
 References
@@ -19,7 +21,7 @@ __all__ = ["moves_for", "run_emcee", "thin_chains"]
 
 
 def moves_for(d):
-    """emcee moves for a ``d``-dimensional posterior, and their description.
+    """Emcee moves for a ``d``-dimensional posterior, and their description.
 
     Differential evolution (ter Braak 2006) everywhere: on these posteriors its
     autocorrelation time was about 4x shorter than the stretch move's in our runs. Up to 3
@@ -43,8 +45,11 @@ def moves_for(d):
 
 def run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, check_every,
                progress, desc):
-    """Run one emcee ensemble per row of ``centres`` in lockstep until each chain is at least
-    50 autocorrelation times long (after dropping the first quarter) or ``max_steps``."""
+    """Run emcee ensembles in lockstep until the chains are long enough.
+
+    Run one emcee ensemble per row of ``centres`` in lockstep until each chain is at least
+    50 autocorrelation times long (after dropping the first quarter) or ``max_steps``.
+    """
     import emcee
 
     K, d = centres.shape
@@ -86,7 +91,9 @@ def run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, check
 
 
 def thin_chains(chains, n_draws, min_per_chain=20):
-    """Drop the first quarter (>= 12 autocorrelation times once converged) and thin each walker
+    """Drop the burn-in and thin the chains to about ``n_draws`` draws.
+
+    Drop the first quarter (>= 12 autocorrelation times once converged) and thin each walker
     to equal length so that all walkers together keep about ``n_draws`` draws.
 
     Returns an array (K * nwalkers, n_keep, d), superchain ids, burn and thin.

@@ -81,7 +81,7 @@ class Hyper:
         return tau, s, nu
 
     def pack(self, tau, s, nu):
-        """The sampled vector of one ``(tau, s, nu)``."""
+        """Pack one ``(tau, s, nu)`` into the sampled vector."""
         vals = {"log_tau": np.log(tau), "s": s, "log_noise": np.log(nu)}
         return np.array([vals[n] for n in self.names], dtype=float)
 
@@ -102,7 +102,7 @@ class Hyper:
         return lp
 
     def describe(self):
-        """The priors in words, for ``info["priors"]``."""
+        """Describe the priors in words, for ``info["priors"]``."""
         out = {}
         if "log_tau" in self.names:
             out["tau"] = (f"log tau ~ Normal({self.tau_prior[0]:.4g}, {self.tau_prior[1]}^2) "

@@ -47,15 +47,15 @@ import warnings
 
 import numpy as np
 
+from ...errors import MCMCWarning
 from ...problem import Estimate, PriorSummary
-from . import diagnostics as diag
-from .ensemble import moves_for, run_emcee, thin_chains
-from .hyper import Hyper, laplace
 from .._blas import single_thread
-from .collapsed import CollapsedModel
 from .._checks import check_positive, check_s_bounds
 from ..gaussian import DEFAULT_S_BOUNDS, GaussianPosterior, truncation_warning
-from ...errors import MCMCWarning
+from . import diagnostics as diag
+from .collapsed import CollapsedModel
+from .ensemble import moves_for, run_emcee, thin_chains
+from .hyper import Hyper, laplace
 
 __all__ = ["MCMCSampler", "mcmc"]
 
@@ -152,7 +152,7 @@ class MCMCSampler:
 
     @classmethod
     def from_settings(cls, *, s=2.0, seed=None, fix_s=False, **options):
-        """The stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+        """Build the stage from the assembly layer's settings (:mod:`invert.stages.registry`).
 
         ``s`` is held fixed only with ``fix_s=True`` (otherwise it only sized the truncation
         and is sampled within ``s_bounds``); ``seed`` seeds all randomness.
@@ -160,8 +160,11 @@ class MCMCSampler:
         return cls(s=s if fix_s else None, rng=seed, **options)
 
     def lowest_s(self):
-        """The roughest smoothness order tried: ``s`` when fixed, else the lower end of
-        ``s_bounds`` (the assembly layer sizes the truncation for it)."""
+        """Return the roughest smoothness order the stage tries.
+
+        The roughest smoothness order tried: ``s`` when fixed, else the lower end of
+        ``s_bounds`` (the assembly layer sizes the truncation for it).
+        """
         lo, _ = check_s_bounds(self.s_bounds, "MCMCSampler")
         if self.s is None:
             return lo
