@@ -180,6 +180,62 @@ def _fixed_state(fixed, key, f, qd, Ho, ro, idx, next_id, seg):
             "logdet": float(np.linalg.slogdet(u.S)[1])}
 
 
+def _frozen_run(fz, Y, k, e, m, seg):
+    """Filter frames ``k:e`` in the frozen steady state ``fz`` at once; returns ``(m, P)``.
+
+    Writes the means, covariance keys, NIS and log-likelihood of those frames into ``seg``.
+    """
+    seg.P_table[fz["fid"]] = fz["P"]
+    seg.pred_table[fz["pid"]] = (fz["f"], fz["Pp"])
+    idx = fz["idx"]
+    Yo = Y[k:e][:, idx]
+    if idx.size:
+        Mr = linear_recursion(fz["Phi"], Yo, m, B=fz["K"])
+        Mprev = np.vstack([m[None, :], Mr[:-1]])
+        V = Yo - Mprev @ fz["HF"].T
+        q = np.einsum("ij,ij->i", V @ fz["Sinv"], V)
+        seg.nis[k:e] = q
+        seg.loglik[k:e] = -0.5 * (q + fz["logdet"] + idx.size * _LOG2PI)
+    else:
+        f = fz["f"]
+        Mr = m[None, :] * np.cumprod(np.tile(f, (e - k, 1)), axis=0)
+    seg.m[k:e] = Mr
+    seg.fid[k:e], seg.pid[k:e] = fz["fid"], fz["pid"]
+    return Mr[-1].copy(), fz["P"]
+
+
+def _exact_step(model, seg, k, dt, m, P, y, obs, next_id):
+    """One exact prediction and measurement update of frame ``k``; returns ``(m, P, step)``.
+
+    The predicted and filtered covariances are stored in ``seg`` under the keys ``next_id``
+    and ``next_id + 1``; ``step`` holds what the steady-state detection needs.
+    """
+    f, qd = model.transition(dt)
+    mp = f * m
+    Pp = f[:, None] * P * f[None, :] + np.diag(qd)
+    idx = np.flatnonzero(obs)
+    seg.pred_table[next_id] = (f, Pp)
+    seg.pid[k] = next_id
+    step = {"f": f, "qd": qd, "Pp": Pp, "idx": idx, "K": None}
+    if idx.size:
+        Ho = model.H[idx]
+        ro = model.noise_var[idx]
+        u = measurement_update(Pp, Ho, ro, m=mp, y=y[idx])
+        m, P = u.m, u.P
+        # numpy's LAPACK calls: scipy's triangular solves were far slower at this size
+        logdet = 2.0 * np.sum(np.log(np.diag(np.linalg.cholesky(u.S))))
+        q = float(u.v @ u.Sinv @ u.v)
+        seg.nis[k] = q
+        seg.loglik[k] = -0.5 * (q + logdet + idx.size * _LOG2PI)
+        step.update(K=u.K, IKH=u.IKH, Sinv=u.Sinv, logdet=logdet, Ho=Ho, ro=ro)
+    else:
+        m, P = mp, Pp
+    seg.m[k] = m
+    seg.P_table[next_id + 1] = P
+    seg.fid[k] = next_id + 1
+    return m, P, step
+
+
 def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
     r"""Run the Kalman filter over one segment of frames.
 
@@ -244,53 +300,14 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
             e = k + 1
             while e < L and same_next[e]:
                 e += 1
-            fz = frozen
-            seg.P_table[fz["fid"]] = fz["P"]
-            seg.pred_table[fz["pid"]] = (fz["f"], fz["Pp"])
-            idx = fz["idx"]
-            Yo = Y[k:e][:, idx]
-            if idx.size:
-                Mr = linear_recursion(fz["Phi"], Yo, m, B=fz["K"])
-                Mprev = np.vstack([m[None, :], Mr[:-1]])
-                V = Yo - Mprev @ fz["HF"].T
-                q = np.einsum("ij,ij->i", V @ fz["Sinv"], V)
-                nis[k:e] = q
-                ll[k:e] = -0.5 * (q + fz["logdet"] + idx.size * _LOG2PI)
-            else:
-                f = fz["f"]
-                Mr = m[None, :] * np.cumprod(np.tile(f, (e - k, 1)), axis=0)
-            M[k:e] = Mr
-            m = Mr[-1].copy()
-            P = fz["P"]
-            fid[k:e], pid[k:e] = fz["fid"], fz["pid"]
+            m, P = _frozen_run(frozen, Y, k, e, m, seg)
             k = e
             continue
         # full step
         key = key_of(k)
-        f, qd = model.transition(dts[k])
-        mp = f * m
-        Pp = f[:, None] * P * f[None, :] + np.diag(qd)
-        idx = np.flatnonzero(obs[k])
-        seg.pred_table[next_id] = (f, Pp)
-        pid[k] = next_id
-        next_id += 1
-        K = None
-        if idx.size:
-            Ho = model.H[idx]
-            ro = model.noise_var[idx]
-            u = measurement_update(Pp, Ho, ro, m=mp, y=Y[k, idx])
-            m, P, K, Sinv = u.m, u.P, u.K, u.Sinv
-            # numpy's LAPACK calls: scipy's triangular solves were far slower at this size
-            logdet = 2.0 * np.sum(np.log(np.diag(np.linalg.cholesky(u.S))))
-            q = float(u.v @ Sinv @ u.v)
-            nis[k] = q
-            ll[k] = -0.5 * (q + logdet + idx.size * _LOG2PI)
-        else:
-            m, P = mp, Pp
-        M[k] = m
-        seg.P_table[next_id] = P
-        fid[k] = next_id
-        next_id += 1
+        m, P, st = _exact_step(model, seg, k, dts[k], m, P, Y[k], obs[k], next_id)
+        next_id += 2
+        f, Pp, idx, K = st["f"], st["Pp"], st["idx"], st["K"]
         # steady-state detection: same key as the previous frame and nothing moved
         frozen = None
         if (steady_tol > 0 and prev is not None and prev["key"] == key
@@ -299,13 +316,14 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
             fz = {"key": key, "f": f, "Pp": Pp, "P": P, "idx": idx,
                   "fid": fid[k], "pid": pid[k]}
             if idx.size:
-                fz.update(K=K, Phi=u.IKH * f[None, :], HF=Ho * f[None, :], Sinv=Sinv,
-                          logdet=logdet)
+                fz.update(K=K, Phi=st["IKH"] * f[None, :], HF=st["Ho"] * f[None, :],
+                          Sinv=st["Sinv"], logdet=st["logdet"])
             frozen = fz
         run = prev["run"] + 1 if prev is not None and prev["key"] == key else 1
         if (frozen is None and steady_tol > 0 and max_transient and run >= max_transient
                 and idx.size):
-            frozen = _fixed_state(fixed, key, f, qd, Ho, ro, idx, next_id, seg)
+            frozen = _fixed_state(fixed, key, f, st["qd"], st["Ho"], st["ro"], idx, next_id,
+                                  seg)
             next_id += 2
         prev = {"key": key, "P": P, "K": K, "run": run}
         last_key = key
