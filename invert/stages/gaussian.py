@@ -236,39 +236,46 @@ class GaussianPosterior:
         with single_thread():
             return self._fit(problem)
 
+    def _choose_s(self, problem, mode, tau, noise, notes):
+        """Choose the smoothness order; return ``(s, best)``.
+
+        ``s`` is the fixed order, or the one of maximum evidence within ``s_bounds`` (grid,
+        then bounded Brent), and ``best`` is :meth:`_best_at` there.
+        """
+        if self.s is not None:
+            s_hat = float(self.s)
+            SmoothnessPrior(s=s_hat)  # validates s
+            if not problem.truncation_holds(s_hat):
+                notes.append(truncation_warning(problem, s_hat))
+            return s_hat, self._best_at(problem, s_hat, mode, tau, noise)
+        lo, hi = check_s_bounds(self.s_bounds, "GaussianPosterior")
+        floor = problem.truncation_floor(lo, hi)
+        if floor > lo:
+            notes.append(f"the truncation degree supports s >= {floor:.3g} only; the "
+                         f"search range of s was raised from {lo:g}. Use more harmonics")
+            lo = floor
+        cache = {}
+
+        def neg(s):
+            if s not in cache:
+                cache[s] = self._best_at(problem, s, mode, tau, noise)
+            return -cache[s][1]
+
+        s_hat, _ = grid_then_refine(neg, np.linspace(lo, hi, 9), xatol=1e-4)
+        neg(s_hat)
+        if s_hat - lo < 1e-3 * (hi - lo) or hi - s_hat < 1e-3 * (hi - lo):
+            notes.append(f"the evidence is largest at the end of the smoothness range "
+                         f"(s = {s_hat:.3g} in [{lo:g}, {hi:g}])")
+        return s_hat, cache[s_hat]
+
     def _fit(self, problem):
-        where = "GaussianPosterior"
         if problem.n_readings < 2:
             raise ValueError(f"At least 2 readings are needed; got {problem.n_readings}.")
         mode, tau, noise = self._mode(problem)
         notes = []
         notes_info = list(problem.assembly_notes)
-        if self.s is None:
-            lo, hi = check_s_bounds(self.s_bounds, where)
-            floor = problem.truncation_floor(lo, hi)
-            if floor > lo:
-                notes.append(f"the truncation degree supports s >= {floor:.3g} only; the "
-                             f"search range of s was raised from {lo:g}. Use more harmonics")
-                lo = floor
-            cache = {}
-
-            def neg(s):
-                if s not in cache:
-                    cache[s] = self._best_at(problem, s, mode, tau, noise)
-                return -cache[s][1]
-
-            s_hat, _ = grid_then_refine(neg, np.linspace(lo, hi, 9), xatol=1e-4)
-            neg(s_hat)
-            if s_hat - lo < 1e-3 * (hi - lo) or hi - s_hat < 1e-3 * (hi - lo):
-                notes.append(f"the evidence is largest at the end of the smoothness range "
-                             f"(s = {s_hat:.3g} in [{lo:g}, {hi:g}])")
-        else:
-            s_hat = float(self.s)
-            SmoothnessPrior(s=s_hat)  # validates s
-            if not problem.truncation_holds(s_hat):
-                notes.append(truncation_warning(problem, s_hat))
-            cache = {s_hat: self._best_at(problem, s_hat, mode, tau, noise)}
-        alpha, log_ev, edge, spec, ev = cache[s_hat]
+        s_hat, best = self._choose_s(problem, mode, tau, noise, notes)
+        alpha, log_ev, edge, spec, ev = best
         if edge:
             notes.append(f"the evidence is largest at the end of the search range of the "
                          f"prior-to-noise ratio (lam = {alpha:.3g}); the data may hold too "

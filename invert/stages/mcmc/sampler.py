@@ -371,14 +371,18 @@ class MCMCSampler:
         return dict(theta=theta, ids=ids, coef=coef, coef_mean=coef_mean, noise_rows=None,
                     run=run, extra=extra, chains=chains)
 
-    def _finish(self, problem, hyper, cm, res, rng, notes, info_notes):
-        theta, coef, ids = res["theta"], res["coef"], res["ids"]
+    def _posterior_tree(self, problem, hyper, cm, res, rng):
+        """Build the arviz tree of the kept draws.
+
+        Returns ``(tree, (tau, s, nu), residuals, sampled variable names)``; the pointwise
+        log-likelihood and predictive draws of each reading are in the readings' own units.
+        """
+        theta, coef = res["theta"], res["coef"]
         C, D = coef.shape[:2]
         tau, s, nu = hyper.unpack(theta.reshape(C * D, -1))
         tau, s, nu = (v.reshape(C, D) for v in (tau, s, nu))
         post = {"tau": tau, "s": s, hyper.noise_name: nu, "coef": coef}
         post.update(res["extra"].get("posterior", {}))
-        # Pointwise log-likelihood and predictive draws of each reading (own units).
         sd_rows = (1.0 / cm.w)[None, None, :] * nu[:, :, None]
         mu = res["extra"].get("mu")
         if mu is None:
@@ -398,6 +402,12 @@ class MCMCSampler:
         dt = diag.build_tree(problem, post, ll, y_rep,
                              sensor_vars=res["extra"].get("sensor_vars", ()),
                              attrs={"model": self._model_name(), "inference": "invert.mcmc"})
+        return dt, (tau, s, nu), r, sampled
+
+    def _finish(self, problem, hyper, cm, res, rng, notes, info_notes):
+        coef, ids = res["coef"], res["ids"]
+        C, D = coef.shape[:2]
+        dt, (tau, s, nu), r, sampled = self._posterior_tree(problem, hyper, cm, res, rng)
         self.posterior_ = dt
         conv = diag.convergence(dt, ids, sampled) if res["run"]["n_steps"] else \
             diag.convergence(dt, ids, [])
