@@ -6,8 +6,13 @@ Each takes a :class:`~invert.problem.LinearProblem` and returns an
 """
 
 from ..errors import FitWarning, MCMCWarning
-from .assimilate import (CoefficientDynamics, KalmanSmoother, SmoothedSeries, fit_time_scale,
-                         run_smoother)
+from .assimilate import (
+                         CoefficientDynamics,
+                         KalmanSmoother,
+                         SmoothedSeries,
+                         fit_time_scale,
+                         run_smoother,
+)
 from .gaussian import GaussianPosterior, gaussian_posterior
 from .mcmc import MCMCSampler, mcmc
 from .registry import STAGES, stage_names
