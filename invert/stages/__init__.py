@@ -7,11 +7,11 @@ Each takes a :class:`~invert.problem.LinearProblem` and returns an
 
 from ..errors import FitWarning, MCMCWarning
 from .assimilate import (
-                         CoefficientDynamics,
-                         KalmanSmoother,
-                         SmoothedSeries,
-                         fit_time_scale,
-                         run_smoother,
+    CoefficientDynamics,
+    KalmanSmoother,
+    SmoothedSeries,
+    fit_time_scale,
+    run_smoother,
 )
 from .gaussian import GaussianPosterior, gaussian_posterior
 from .mcmc import MCMCSampler, mcmc
