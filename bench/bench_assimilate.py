@@ -27,7 +27,7 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from invert.prior import SmoothnessPrior
-from invert.stages.assimilate.core import CoefficientDynamics, run_smoother
+from invert.stages.assimilate import CoefficientDynamics, run_smoother
 from invert.workflow import make_domain
 
 

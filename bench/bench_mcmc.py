@@ -81,7 +81,7 @@ def _quadrature(problem, pts, s):
     over a fine grid of log tau of the Gaussian conditional moments (Bishop 2006, eqs.
     3.53-3.54; law of total variance). None when more than tau is sampled."""
     from invert.stages.mcmc.collapsed import CollapsedModel
-    from invert.stages.mcmc.sampler import _Hyper
+    from invert.stages.mcmc.hyper import Hyper as _Hyper
 
     smp = MCMCSampler(s=s, progress=False)
     prob, hyper, _ = smp._setup(problem, [])

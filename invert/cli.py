@@ -80,9 +80,9 @@ def _add_report_options(p, threshold=None, unit="", length_unit=""):
 
 
 def _methods():
-    from .workflow import METHODS
+    from .stages.registry import stage_names
 
-    return list(METHODS)
+    return list(stage_names())
 
 
 def _domains():

@@ -18,6 +18,7 @@ import numpy as np
 from scipy import linalg, stats
 
 from ._validation import check_level
+from .prior import truncation_degree
 
 __all__ = ["LinearProblem", "Estimate", "PointSummary", "PriorSummary", "interval_z"]
 
@@ -46,9 +47,14 @@ class LinearProblem:
     gap_sensor, gap_points : ndarray
         Sensors that gave no reading, kept on record for diagnostics.
     notes : tuple of str
-        Facts about how the problem was built (e.g. points snapped onto the rim).
+        Facts about how the problem was built (e.g. points snapped onto the rim); stages
+        pass them on as warnings.
     n_snapped : int
         Readings moved onto the rim from just outside it (reported in the summary).
+    assembly_notes : tuple of str
+        Choices the assembly layer made for the stage (e.g. the truncation degree raised for
+        the roughest smoothness the stage tries, :func:`invert.workflow.problem_for_stage`);
+        stages record them in ``Estimate.info["notes"]``, not as warnings.
     """
 
     G: np.ndarray
@@ -63,6 +69,7 @@ class LinearProblem:
     gap_points: np.ndarray = None
     notes: tuple = ()
     n_snapped: int = 0
+    assembly_notes: tuple = ()
 
     def __post_init__(self):
         G = np.asarray(self.G, dtype=float)
@@ -93,6 +100,73 @@ class LinearProblem:
     def weights(self) -> np.ndarray:
         """``1/sigma`` per reading (ones when the noise level is unknown)."""
         return np.ones(self.n_readings) if self.sigma is None else 1.0 / self.sigma
+
+    @property
+    def n_modes(self):
+        """Truncation degree of the domain the design was built on (None without a domain)."""
+        return getattr(self.domain, "n_modes", None)
+
+    def truncation_holds(self, s) -> bool:
+        """Check the truncation against the prior with smoothness ``s``.
+
+        Whether the truncation keeps the prior with smoothness ``s`` to the domain's
+        tolerance (``domain.truncation_rule()``, :func:`invert.prior.truncation_degree`).
+
+        True when the problem carries no domain with a truncation degree (nothing to check).
+        """
+        dom = self.domain
+        if dom is None or not hasattr(dom, "n_modes"):
+            return True
+        tol = dom.truncation_rule()[0]
+        return truncation_degree(dom, s, tol=tol) <= dom.n_modes
+
+    def truncation_floor(self, s_lo, s_hi) -> float:
+        """Find the smallest ``s`` in ``[s_lo, s_hi]`` the truncation supports.
+
+        Smallest ``s`` in ``[s_lo, s_hi]`` whose prior the truncation holds (see
+        :meth:`truncation_holds`; bisection on the monotone
+        :func:`invert.prior.truncation_degree`, 40 halvings).
+        """
+        if self.truncation_holds(s_lo):
+            return s_lo
+        lo, hi = s_lo, s_hi
+        for _ in range(40):
+            mid = 0.5 * (lo + hi)
+            if self.truncation_holds(mid):
+                hi = mid
+            else:
+                lo = mid
+        return hi
+
+    def rotated_design(self, angle) -> np.ndarray:
+        """Design rows of the readings with each sensor turned about the centre by ``angle``.
+
+        Parameters
+        ----------
+        angle : ndarray of shape (n_batch, n_readings)
+            Turn of each sensor, radians (counter-clockwise).
+
+        Returns
+        -------
+        ndarray of shape (n_batch, n_readings, n_coef)
+
+        Raises
+        ------
+        ValueError
+            When the problem has no sensor points or its domain cannot turn points
+            (``domain.rotated_design(points, angle)``).
+        """
+        angle = np.atleast_2d(np.asarray(angle, float))
+        if self.points is None or self.domain is None:
+            raise ValueError("Turning sensors needs a problem built from sensor points "
+                             "(LinearProblem.from_readings); this one has none.")
+        turn = getattr(self.domain, "rotated_design", None)
+        if turn is None:
+            raise ValueError(f"The domain {type(self.domain).__name__} cannot turn sensor points "
+                             f"about its centre (no rotated_design method); the angle-error "
+                             f"model needs it.")
+        G = turn(self.points, angle)
+        return G.reshape(angle.shape[0], self.n_readings, self.n_coef)
 
     @classmethod
     def from_readings(cls, readings, domain):
@@ -126,13 +200,13 @@ class LinearProblem:
         )
 
     def subset(self, keep):
-        """The same problem restricted to the readings in ``keep`` (mask or indices)."""
+        """Return the same problem restricted to the readings in ``keep`` (mask or indices)."""
         keep = np.asarray(keep)
         return LinearProblem(
             self.G[keep], self.y[keep], None if self.sigma is None else self.sigma[keep],
             self.degrees, self.eigenvalues, self.domain, self.sensor[keep],
             None if self.points is None else self.points[keep], self.gap_sensor,
-            self.gap_points, self.notes,
+            self.gap_points, self.notes, self.n_snapped, self.assembly_notes,
         )
 
 
@@ -168,7 +242,7 @@ class PointSummary:
     level: float
 
     def to_frame(self, **columns):
-        """A pandas DataFrame with the given leading columns then mean, sd, lower, upper."""
+        """Return a pandas DataFrame: the given leading columns, then mean, sd, lower, upper."""
         import pandas as pd
 
         data = dict(columns)
@@ -178,7 +252,9 @@ class PointSummary:
 
 @dataclass(frozen=True, eq=False)
 class PriorSummary:
-    r"""The smoothness prior a stage ended with: :math:`\operatorname{Var} c_n = \tau^2
+    r"""The smoothness prior a stage ended with.
+
+    The smoothness prior a stage ended with: :math:`\operatorname{Var} c_n = \tau^2
     (1+\lambda_n)^{-s}` (mean level broad).
 
     Parameters
@@ -239,8 +315,8 @@ class Estimate:
     For a Gaussian result the field at points with design :math:`H` has mean :math:`H\bar c`
     and covariance :math:`H \Sigma H^\top`; the central interval at level :math:`\ell` is
     :math:`\bar u \pm z_{(1+\ell)/2}\,\mathrm{sd}`; with ``df`` set, the scale is
-    :math:`\sqrt{h^\top\Sigma h}` and :math:`z` is the Student-t quantile. For draws, the interval is the pair of
-    empirical quantiles :math:`(1\mp\ell)/2`.
+    :math:`\sqrt{h^\top\Sigma h}` and :math:`z` is the Student-t quantile. For draws, the
+    interval is the pair of empirical quantiles :math:`(1\mp\ell)/2`.
     """
 
     mean: np.ndarray

@@ -7,15 +7,22 @@ prior, the linear problem, and runs the chosen stage.
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 
+import numpy as np
+
 from .geometry import domain_class
-from .problem import LinearProblem
 from .io.readings import Readings, load_readings
+from .problem import LinearProblem
+from .stages._truncation import truncation_for
+from .stages.registry import STAGES, stage_names
 
-__all__ = ["fit", "make_domain", "as_readings", "run_stage", "METHODS"]
+__all__ = ["fit", "make_domain", "as_readings", "run_stage", "make_stage",
+           "problem_for_stage", "fit_stage", "METHODS"]
 
-METHODS = ("tikhonov", "gaussian", "mcmc")
+#: The method names of the stage registry (:data:`invert.stages.registry.STAGES`).
+METHODS = stage_names()
 
 
 def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
@@ -62,7 +69,13 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
         Columns ``x, y, value`` and optional ``sigma, sensor`` (a blank value is a gap).
     radius : float, default=1.0
     center : (float, float), optional
-    method : {"tikhonov"}, default="tikhonov"
+    method : {"tikhonov", "gaussian", "mcmc"}, default="tikhonov"
+        The stage (:data:`invert.stages.registry.STAGES`): ``tikhonov`` (regularised least
+        squares, :class:`~invert.stages.tikhonov.Tikhonov`), ``gaussian`` (closed-form
+        posterior at evidence-optimal hyperparameters,
+        :class:`~invert.stages.gaussian.GaussianPosterior`) or ``mcmc`` (posterior draws with
+        sampled hyperparameters, faulty sensors or angle errors,
+        :class:`~invert.stages.mcmc.sampler.MCMCSampler`).
     rule : str, default="evidence"
         Parameter-choice rule for the Tikhonov stage.
     s : float, default=2.0
@@ -96,21 +109,67 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
     return run_stage(problem, method, s=s, **options)
 
 
+def make_stage(method="tikhonov", *, s=2.0, seed=None, **options):
+    """Build the stage registered under ``method`` from the common settings.
+
+    Parameters
+    ----------
+    method : str
+        A name of :data:`invert.stages.registry.STAGES`.
+    s : float, default=2.0
+        Smoothness order (the Tikhonov penalty; for the Gaussian and MCMC stages it only sized
+        the truncation unless ``fix_s=True`` holds it fixed).
+    seed : None, int or numpy.random.Generator
+        For sampling stages.
+    **options
+        Passed to the stage.
+    """
+    if method not in STAGES:
+        raise ValueError(f"The 'method' parameter must be one of {METHODS}. "
+                         f"Got {method!r} instead.")
+    return STAGES[method].from_settings(s=s, seed=seed, **options)
+
+
+def problem_for_stage(problem, stage):
+    """Return the problem with the truncation degree the stage needs.
+
+    The design is rebuilt from ``problem.points`` on ``problem.domain.with_modes(n)`` so that
+    the roughest smoothness the stage tries (``stage.lowest_s()``) loses less than the
+    domain's tolerance of its prior rim variance (:func:`~invert.stages._truncation.
+    truncation_for`). Nothing changes when the truncation already suffices, when the stage
+    uses the truncation it is given (``lowest_s() is None``), or when the problem cannot be
+    rebuilt: no points or domain, or a rebuilt design that does not reproduce the given ``G``
+    in its first columns (1e-10, algebra), so a hand-made design is never replaced. A raised
+    truncation is recorded in ``assembly_notes``.
+    """
+    s_min = stage.lowest_s()
+    dom = problem.domain
+    if s_min is None or dom is None or problem.points is None or not hasattr(dom, "with_modes"):
+        return problem
+    need = truncation_for(dom, s_min)
+    if need <= getattr(dom, "n_modes", need):
+        return problem
+    new_dom = dom.with_modes(need)
+    G = new_dom.design(problem.points)
+    p = problem.n_coef
+    if p > G.shape[1] or not np.allclose(G[:, :p], problem.G, rtol=1e-10, atol=1e-10):
+        return problem
+    note = (f"harmonics raised from {dom.n_modes} to {need} so that the roughest smoothness "
+            f"considered (s = {s_min:g}) is not truncated")
+    return dataclasses.replace(problem, G=G, degrees=new_dom.degrees,
+                               eigenvalues=new_dom.eigenvalues, domain=new_dom,
+                               assembly_notes=tuple(problem.assembly_notes) + (note,))
+
+
+def fit_stage(stage, problem):
+    """``stage.fit(problem_for_stage(problem, stage))``: the stage on the truncation it needs."""
+    return stage.fit(problem_for_stage(problem, stage))
+
+
 def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
     """Run the named stage on a problem and return its Estimate.
 
-    This is the one place that maps method names to stage classes; new stages register here.
+    The stage comes from the registry (:func:`make_stage`) and sees the problem with the
+    truncation it needs (:func:`problem_for_stage`).
     """
-    if method == "tikhonov":
-        from .stages import Tikhonov
-
-        return Tikhonov(s=s, **options).fit(problem)
-    if method in ("gaussian", "mcmc"):
-        # s sets the truncation only; these stages estimate s unless fix_s=True holds it at s.
-        from .stages import GaussianPosterior, MCMCSampler
-
-        s_stage = s if options.pop("fix_s", False) else None
-        if method == "gaussian":
-            return GaussianPosterior(s_stage, **options).fit(problem)
-        return MCMCSampler(s=s_stage, rng=seed, **options).fit(problem)
-    raise ValueError(f"The 'method' parameter must be one of {METHODS}. Got {method!r} instead.")
+    return fit_stage(make_stage(method, s=s, seed=seed, **options), problem)

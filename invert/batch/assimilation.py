@@ -24,12 +24,12 @@ import numpy as np
 
 from ..prior import SmoothnessPrior
 from ..problem import interval_z
-from ..stages.assimilate.core import (
+from ..stages.assimilate import (
     CoefficientDynamics,
     FilterState,
     SmootherState,
-    _combine_filter,
-    _combine_smoother,
+    combine_filter,
+    combine_smoother,
     filter_segment,
     filter_summary,
     fit_time_scale,
@@ -251,7 +251,7 @@ def _scan_entering(summaries):
     for el in summaries:
         entering.append(None if acc_el is None else (acc_el[1], acc_el[2]))
         if el is not None:
-            acc_el = el if acc_el is None else _combine_filter(acc_el, el)
+            acc_el = el if acc_el is None else combine_filter(acc_el, el)
     return entering
 
 
@@ -261,7 +261,7 @@ def _scan_leaving(ssum):
     for i in range(len(ssum) - 1, -1, -1):
         leaving[i] = back
         if ssum[i] is not None:
-            back = ssum[i] if back is None else _combine_smoother(ssum[i], back)
+            back = ssum[i] if back is None else combine_smoother(ssum[i], back)
     return leaving
 
 

@@ -127,7 +127,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         Frames per chunk.
     steady_tol, max_transient :
         Steady-state shortcut of the smoother
-        (:func:`~invert.stages.assimilate.core.filter_segment`): after ``max_transient`` exact
+        (:func:`~invert.stages.assimilate.filter_segment`): after ``max_transient`` exact
         steps with an unchanged drop-out pattern and time step the gain jumps to its steady
         state; ``max_transient=None`` keeps every step exact to ``steady_tol`` (slower when
         the time scale is long). bench/bench_assimilate.py prints the difference.

@@ -58,6 +58,10 @@ class Domain(Protocol):
     rim_arcs : object or None
         Angle-based rim tools (rim angles of points, harmonic measure of rim arcs, rings at a
         relative radius); ``None`` when the rim is not a circle.
+
+    Optional methods (asked for with ``getattr``): ``rotated_design(points, angle)``, the
+    design rows of sensors turned about the centre (the angle-error model of the MCMC stage
+    needs it; the disk has it, the ball does not).
     """
 
     kind: str

@@ -275,6 +275,26 @@ class Disk(RoundDomain):
         y = self.center[1] + self.radius * rho * np.sin(theta)
         return np.column_stack([x.ravel(), y.ravel()])
 
+    def rotated_design(self, points, angle) -> np.ndarray:
+        """Design rows of ``points`` turned about the centre by ``angle`` (radians, ccw).
+
+        Parameters
+        ----------
+        points : ndarray of shape (m, 2)
+        angle : ndarray of shape (n_batch, m)
+
+        Returns
+        -------
+        ndarray of shape (n_batch * m, n_coef)
+            Rows of turn ``b`` of point ``i`` at ``b * m + i`` (reshape to (n_batch, m, n_coef)).
+            Points snapped onto the rim (``rho`` slightly above 1) stay on it.
+        """
+        rho, theta = self.to_polar(points)
+        rho = np.minimum(rho, 1.0)
+        angle = np.asarray(angle, float)
+        pts = self.from_polar(np.broadcast_to(rho, angle.shape), theta[None, :] + angle)
+        return self.design(pts)
+
     # --- design matrices -------------------------------------------------------------------
     def _design_w(self, w: np.ndarray) -> np.ndarray:
         # Columns Re w^n and Im w^n by cumulative powers (|w| <= 1 keeps this stable).

@@ -37,7 +37,7 @@ RANK_RTOL = 1e-13
 
 
 def standard_form(G, weights, prior_sd):
-    r"""The standard-form matrix :math:`\tilde A = W G D` (stacks of designs broadcast).
+    r"""Build the standard-form matrix :math:`\tilde A = W G D` (stacks broadcast).
 
     Parameters
     ----------
@@ -92,43 +92,50 @@ class Spectrum:
         self.ytilde = yt
         self.problem = problem
 
-    # scalar or vector alpha -> arrays with alpha as the last axis
-    def _f(self, alpha):
+    def filter_factors(self, alpha):
+        r"""Compute the filter factors for each alpha.
+
+        Filter factors :math:`f_i = s_i^2/(s_i^2+\alpha)`, shape (k, n_alpha) (alpha as
+        the last axis).
+        """
         alpha = np.atleast_1d(np.asarray(alpha, dtype=float))
         s2 = self.s[:, None] ** 2
         return s2 / (s2 + alpha[None, :])
 
     def residual2(self, alpha):
         """Squared whitened residual norm at each alpha."""
-        f = self._f(alpha)
+        f = self.filter_factors(alpha)
         return np.sum(((1 - f) * self.beta[:, None]) ** 2, axis=0) + self.r_perp2
 
     def dof(self, alpha):
         """Effective degrees of freedom ``tr A_alpha``."""
-        return np.sum(self._f(alpha), axis=0)
+        return np.sum(self.filter_factors(alpha), axis=0)
 
     def solution_norm2(self, alpha):
         """Squared norm of the standard-form solution."""
-        f = self._f(alpha)
+        f = self.filter_factors(alpha)
         return np.sum((f * self.beta[:, None] / self.s[:, None]) ** 2, axis=0)
 
     def hat_diag(self, alpha):
         """Diagonal of the whitened hat matrix, shape (m, n_alpha), as a row sum."""
-        return (self.U**2) @ self._f(alpha)
+        return (self.U**2) @ self.filter_factors(alpha)
 
     def residuals(self, alpha):
         """Whitened residuals, shape (m, n_alpha)."""
-        f = self._f(alpha)
+        f = self.filter_factors(alpha)
         return self.ytilde[:, None] - self.U @ (f * self.beta[:, None])
 
     def coef(self, alpha):
         """Coefficients ``c = D x_alpha`` for one alpha."""
-        f = self._f(alpha)[:, 0]
+        f = self.filter_factors(alpha)[:, 0]
         return self.d * (self.Vt.T @ (f * self.beta / self.s))
 
     def cov(self, alpha, noise_var=1.0):
-        """Posterior covariance of ``c`` for one alpha, in units where the given sigmas (or
-        the common noise level) are scaled by ``noise_var``."""
+        """Compute the posterior covariance of ``c`` for one alpha.
+
+        Posterior covariance of ``c`` for one alpha, in units where the given sigmas (or
+        the common noise level) are scaled by ``noise_var``.
+        """
         B, h = self.cov_factor(alpha)
         return noise_var * ((B * h) @ B.T)
 

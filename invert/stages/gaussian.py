@@ -1,4 +1,6 @@
-r"""Gaussian stage: the closed-form posterior of the coefficients at evidence-optimal
+r"""Gaussian stage: the closed-form posterior of the coefficients.
+
+Gaussian stage: the closed-form posterior of the coefficients at evidence-optimal
 hyperparameters.
 
 Notes
@@ -42,14 +44,14 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-from scipy import optimize
 
+from ..errors import FitWarning
 from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
-from ._truncation import extend_modes, single_thread, truncation_floor
+from ._blas import single_thread
+from ._checks import check_positive, check_s_bounds
 from ._search import grid_then_refine
 from ._spectrum import Spectrum
-from ..errors import FitWarning
 
 __all__ = ["GaussianPosterior", "gaussian_posterior", "DEFAULT_S_BOUNDS"]
 
@@ -63,30 +65,11 @@ _LOG2PI = float(np.log(2 * np.pi))
 DEFAULT_S_BOUNDS = (1.5, 5.0)
 
 
-def _check_bounds(s_bounds, where):
-    try:
-        lo, hi = (float(v) for v in s_bounds)
-        ok = np.isfinite(lo) and np.isfinite(hi) and 0.5 < lo < hi
-    except (TypeError, ValueError):
-        ok = False
-    if not ok:
-        raise ValueError(f"The 's_bounds' parameter of {where} must be a pair (lo, hi) with "
-                         f"0.5 < lo < hi. Got {s_bounds!r} instead.")
-    return lo, hi
-
-
-def _check_positive(value, name, where):
-    if value is None:
-        return None
-    try:
-        v = float(value)
-        ok = np.isfinite(v) and v > 0
-    except (TypeError, ValueError):
-        ok = False
-    if not ok:
-        raise ValueError(f"The '{name}' parameter of {where} must be a float > 0 or None. "
-                         f"Got {value!r} instead.")
-    return v
+def truncation_warning(problem, s):
+    """Return the warning of a stage held at an ``s`` its problem's truncation cannot keep."""
+    return (f"the truncation degree ({problem.n_modes} harmonics) leaves more than the "
+            f"domain's tolerance of the prior rim variance out at s = {s:g}. Use more "
+            f"harmonics")
 
 
 class _Evidence:
@@ -116,19 +99,20 @@ class _Evidence:
 
 
 def _maximise_log(fun, grid):
-    """Maximise ``fun`` over a positive scalar: log grid, then bounded Brent. Returns
-    ``(x, value, at_edge)``."""
+    """Maximise ``fun`` over a positive scalar.
+
+    Maximise ``fun`` over a positive scalar: log grid, then bounded Brent in ``log x``
+    (:func:`~invert.stages._search.grid_then_refine`, no refinement at the grid's ends).
+    Returns ``(x, value, at_edge)``.
+    """
     vals = fun(grid)
     vals = np.where(np.isfinite(vals), vals, -np.inf)
-    i = int(np.argmax(vals))
-    if i in (0, len(grid) - 1):
-        return float(grid[i]), float(vals[i]), True
-    res = optimize.minimize_scalar(lambda la: -float(fun(np.exp(la))[0]),
-                                   bounds=(np.log(grid[i - 1]), np.log(grid[i + 1])),
-                                   method="bounded", options={"xatol": 1e-7})
-    if -res.fun >= vals[i]:
-        return float(np.exp(res.x)), float(-res.fun), False
-    return float(grid[i]), float(vals[i]), False
+    x, fx, i, refined = grid_then_refine(lambda la: -float(fun(np.exp(la))[0]), np.log(grid),
+                                         xatol=1e-7, values=-vals, refine_at_edge=False,
+                                         full_output=True)
+    if refined:
+        return float(np.exp(x)), -fx, False
+    return float(grid[i]), float(vals[i]), i in (0, len(grid) - 1)
 
 
 class GaussianPosterior:
@@ -146,9 +130,9 @@ class GaussianPosterior:
     fit_noise_scale : bool, default=False
         With given sigmas, also estimate a common factor :math:`\nu` multiplying them.
     s_bounds : (float, float), default=DEFAULT_S_BOUNDS
-        Search range of ``s``. The truncation degree is raised (the problem is rebuilt from
-        its points) so that the lower end is not truncated; when that is impossible, the lower
-        end is raised instead, with a warning.
+        Search range of ``s``. The assembly layer (:func:`invert.workflow.problem_for_stage`)
+        sizes the truncation for its lower end (:meth:`lowest_s`); given fewer harmonics, the
+        stage raises the lower end instead, with a warning.
     n_grid : int, default=120
         Size of the ``log alpha`` grid scanned before refinement.
 
@@ -160,7 +144,7 @@ class GaussianPosterior:
     log_evidence_ : float
         Log marginal likelihood at the optimum.
     problem_ : LinearProblem
-        The problem actually solved (possibly with more harmonics).
+        The problem solved.
 
     Notes
     -----
@@ -180,7 +164,8 @@ class GaussianPosterior:
     >>> y = 20 + np.cos(th) + 0.01 * np.sin(3 * th)
     >>> prob = LinearProblem(d.design(pts), y, np.full(24, 0.01), d.degrees, d.eigenvalues,
     ...                      d, points=pts)
-    >>> est = GaussianPosterior(s=2.0).fit(prob)
+    >>> from invert.workflow import fit_stage  # sizes the truncation for s = 2
+    >>> est = fit_stage(GaussianPosterior(s=2.0), prob)
     >>> round(float(est.at([[0.0, 0.0]]).mean[0]), 2)
     20.0
     """
@@ -194,10 +179,30 @@ class GaussianPosterior:
         self.s_bounds = s_bounds
         self.n_grid = n_grid
 
+    @classmethod
+    def from_settings(cls, *, s=2.0, seed=None, fix_s=False, **options):
+        """Build the stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+
+        ``s`` is held fixed only with ``fix_s=True`` (otherwise it only sized the truncation
+        and the stage estimates it within ``s_bounds``); ``seed`` is unused.
+        """
+        return cls(s if fix_s else None, **options)
+
+    def lowest_s(self):
+        """Return the roughest smoothness order the stage tries.
+
+        The roughest smoothness order tried: ``s`` when fixed, else the lower end of
+        ``s_bounds`` (the assembly layer sizes the truncation for it).
+        """
+        if self.s is None:
+            return check_s_bounds(self.s_bounds, "GaussianPosterior")[0]
+        SmoothnessPrior(s=float(self.s))  # validates s
+        return float(self.s)
+
     def _mode(self, problem):
         where = "GaussianPosterior"
-        tau = _check_positive(self.tau, "tau", where)
-        noise = _check_positive(self.noise_sd, "noise_sd", where)
+        tau = check_positive(self.tau, "tau", where)
+        noise = check_positive(self.noise_sd, "noise_sd", where)
         if problem.sigma is not None:
             if noise is not None:
                 raise ValueError("The 'noise_sd' parameter of GaussianPosterior applies to "
@@ -231,43 +236,46 @@ class GaussianPosterior:
         with single_thread():
             return self._fit(problem)
 
+    def _choose_s(self, problem, mode, tau, noise, notes):
+        """Choose the smoothness order; return ``(s, best)``.
+
+        ``s`` is the fixed order, or the one of maximum evidence within ``s_bounds`` (grid,
+        then bounded Brent), and ``best`` is :meth:`_best_at` there.
+        """
+        if self.s is not None:
+            s_hat = float(self.s)
+            SmoothnessPrior(s=s_hat)  # validates s
+            if not problem.truncation_holds(s_hat):
+                notes.append(truncation_warning(problem, s_hat))
+            return s_hat, self._best_at(problem, s_hat, mode, tau, noise)
+        lo, hi = check_s_bounds(self.s_bounds, "GaussianPosterior")
+        floor = problem.truncation_floor(lo, hi)
+        if floor > lo:
+            notes.append(f"the truncation degree supports s >= {floor:.3g} only; the "
+                         f"search range of s was raised from {lo:g}. Use more harmonics")
+            lo = floor
+        cache = {}
+
+        def neg(s):
+            if s not in cache:
+                cache[s] = self._best_at(problem, s, mode, tau, noise)
+            return -cache[s][1]
+
+        s_hat, _ = grid_then_refine(neg, np.linspace(lo, hi, 9), xatol=1e-4)
+        neg(s_hat)
+        if s_hat - lo < 1e-3 * (hi - lo) or hi - s_hat < 1e-3 * (hi - lo):
+            notes.append(f"the evidence is largest at the end of the smoothness range "
+                         f"(s = {s_hat:.3g} in [{lo:g}, {hi:g}])")
+        return s_hat, cache[s_hat]
+
     def _fit(self, problem):
-        where = "GaussianPosterior"
         if problem.n_readings < 2:
             raise ValueError(f"At least 2 readings are needed; got {problem.n_readings}.")
         mode, tau, noise = self._mode(problem)
         notes = []
-        if self.s is None:
-            lo, hi = _check_bounds(self.s_bounds, where)
-            problem, note = extend_modes(problem, lo)
-            if note:
-                notes_info = [note]
-            else:
-                notes_info = []
-            floor = truncation_floor(problem, lo, hi)
-            if floor > lo:
-                notes.append(f"the truncation degree supports s >= {floor:.3g} only; the "
-                             f"search range of s was raised from {lo:g}. Use more harmonics")
-                lo = floor
-            cache = {}
-
-            def neg(s):
-                if s not in cache:
-                    cache[s] = self._best_at(problem, s, mode, tau, noise)
-                return -cache[s][1]
-
-            s_hat, _ = grid_then_refine(neg, np.linspace(lo, hi, 9), xatol=1e-4)
-            neg(s_hat)
-            if s_hat - lo < 1e-3 * (hi - lo) or hi - s_hat < 1e-3 * (hi - lo):
-                notes.append(f"the evidence is largest at the end of the smoothness range "
-                             f"(s = {s_hat:.3g} in [{lo:g}, {hi:g}])")
-        else:
-            s_hat = float(self.s)
-            SmoothnessPrior(s=s_hat)  # validates s
-            problem, note = extend_modes(problem, s_hat)
-            notes_info = [note] if note else []
-            cache = {s_hat: self._best_at(problem, s_hat, mode, tau, noise)}
-        alpha, log_ev, edge, spec, ev = cache[s_hat]
+        notes_info = list(problem.assembly_notes)
+        s_hat, best = self._choose_s(problem, mode, tau, noise, notes)
+        alpha, log_ev, edge, spec, ev = best
         if edge:
             notes.append(f"the evidence is largest at the end of the search range of the "
                          f"prior-to-noise ratio (lam = {alpha:.3g}); the data may hold too "
@@ -313,7 +321,7 @@ class GaussianPosterior:
             "log_evidence": log_ev,
             "n_readings": m,
             "n_coefficients": problem.n_coef,
-            "n_modes": getattr(problem.domain, "n_modes", None),
+            "n_modes": problem.n_modes,
             "effective_dof": dof,
             "residual_dof": m - dof,
             "chi2": rss / nu_hat**2,

@@ -10,7 +10,8 @@ chosen by one of the rules below from a single SVD (:class:`~invert.stages._spec
 ``loo``          minimise the leave-one-out mean square :math:`\frac1m\sum (r_i/(1-A_{ii}))^2`
 ``lcurve``       maximise the curvature of :math:`(\log\|r\|, \log\|x\|)` [2]_
 ``discrepancy``  largest :math:`\alpha` with :math:`\|r\|^2 \le \tau_d^2 m` [3]_ (known sigma)
-``upre``         minimise :math:`\|r\|^2 + 2\operatorname{tr}A - m` (Mallows' :math:`C_p`; known sigma)
+``upre``         minimise :math:`\|r\|^2 + 2\operatorname{tr}A - m` (Mallows' :math:`C_p`;
+                 known sigma)
 ``evidence``     maximise the marginal likelihood (type-II ML) [4]_
 
 Every rule (except the evidence with given sigma, a proper likelihood) is restricted to
@@ -38,10 +39,11 @@ import warnings
 import numpy as np
 from scipy import optimize, stats
 
+from ..errors import FitWarning
 from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
+from ._search import grid_then_refine
 from ._spectrum import Spectrum
-from ..errors import FitWarning
 
 __all__ = [
     "Tikhonov",
@@ -60,13 +62,13 @@ _NEEDS_SIGMA = ("discrepancy", "upre")
 
 
 def gcv_score(spec: Spectrum, alpha):
-    """GCV function :math:`m\\|r\\|^2/(m-\\operatorname{tr}A)^2` (Golub, Heath & Wahba 1979)."""
+    r"""GCV function :math:`m\|r\|^2/(m-\operatorname{tr}A)^2` (Golub, Heath & Wahba 1979)."""
     m = spec.m
     return m * spec.residual2(alpha) / (m - spec.dof(alpha)) ** 2
 
 
 def loo_score(spec: Spectrum, alpha):
-    """Mean squared leave-one-out residual :math:`\\frac1m\\sum_i (r_i/(1-A_{ii}))^2`."""
+    r"""Mean squared leave-one-out residual :math:`\frac1m\sum_i (r_i/(1-A_{ii}))^2`."""
     r = spec.residuals(alpha)
     h = spec.hat_diag(alpha)
     return np.mean((r / (1 - h)) ** 2, axis=0)
@@ -78,7 +80,9 @@ def upre_score(spec: Spectrum, alpha):
 
 
 def lcurve_curvature(spec: Spectrum, alpha):
-    r"""Curvature of the L-curve :math:`(\log\sqrt\rho, \log\sqrt\eta)` at :math:`\lambda =
+    r"""Compute the curvature of the L-curve.
+
+    Curvature of the L-curve :math:`(\log\sqrt\rho, \log\sqrt\eta)` at :math:`\lambda =
     \sqrt\alpha`.
 
     Notes
@@ -94,7 +98,7 @@ def lcurve_curvature(spec: Spectrum, alpha):
     """
     alpha = np.atleast_1d(np.asarray(alpha, dtype=float))
     lam = np.sqrt(alpha)
-    f = spec._f(alpha)
+    f = spec.filter_factors(alpha)
     b2s2 = (spec.beta**2 / spec.s**2)[:, None]
     eta = np.sum(f**2 * b2s2, axis=0)
     rho = spec.residual2(alpha)
@@ -104,7 +108,7 @@ def lcurve_curvature(spec: Spectrum, alpha):
 
 
 class Tikhonov:
-    """Regularised least squares with the smoothness penalty and a parameter-choice rule.
+    r"""Regularised least squares with the smoothness penalty and a parameter-choice rule.
 
     Parameters
     ----------
@@ -126,7 +130,7 @@ class Tikhonov:
         given sigma; otherwise ``max(1, 0.1 * m)`` with given sigma and ``max(3, 0.1 * m)`` when
         the noise level is estimated.
     safety : float, default=1.05
-        Safety factor :math:`\\tau_d` of the discrepancy principle.
+        Safety factor :math:`\tau_d` of the discrepancy principle.
 
     Attributes
     ----------
@@ -147,6 +151,18 @@ class Tikhonov:
         self.n_grid = n_grid
         self.min_residual_dof = min_residual_dof
         self.safety = safety
+
+    @classmethod
+    def from_settings(cls, *, s=2.0, seed=None, **options):
+        """Build the stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+
+        ``s`` is the penalty order; ``seed`` is unused (nothing here is random).
+        """
+        return cls(s=s, **options)
+
+    def lowest_s(self):
+        """None: the penalty order is fixed and the stage uses the truncation it is given."""
+        return None
 
     def _check(self, problem):
         if self.rule not in RULES:
@@ -237,7 +253,8 @@ class Tikhonov:
             warnings.warn(n, FitWarning, stacklevel=2)
         return Estimate(
             mean=coef, cov=cov, domain=problem.domain, method="tikhonov",
-            noise_sd=self.noise_sd_, df=t_df, info=info, warnings=tuple(problem.notes) + tuple(notes),
+            noise_sd=self.noise_sd_, df=t_df, info=info,
+            warnings=tuple(problem.notes) + tuple(notes),
             prior=PriorSummary(s=info["s"], tau=info["tau"]),
         )
 
@@ -283,8 +300,6 @@ class Tikhonov:
             notes.append(f"the '{rule}' rule chose the end of the search range (lam = "
                          f"{grid[i]:.3g}); the data may hold too little information for it")
             return float(grid[i]), scores, guard
-        lo = np.log(grid[max(i - 1, 0)])
-        hi = np.log(grid[min(i + 1, len(grid) - 1)])
 
         def f(la):
             a = np.exp(la)
@@ -292,9 +307,10 @@ class Tikhonov:
                 return np.inf
             return float(sign * score_fn(spec, a)[0])
 
-        res = optimize.minimize_scalar(f, bounds=(lo, hi), method="bounded",
-                                       options={"xatol": 1e-6})
-        alpha = float(np.exp(res.x)) if res.fun <= obj[i] else float(grid[i])
+        # Refine in log(lam) between the neighbours of the best grid point.
+        x, _, j, refined = grid_then_refine(f, np.log(grid), xatol=1e-6, values=obj,
+                                            full_output=True)
+        alpha = float(np.exp(x)) if refined else float(grid[j])
         return alpha, scores, guard
 
     def _discrepancy(self, spec, grid, ok, notes):

@@ -1,4 +1,4 @@
-"""Kalman filter / RTS smoother of the coefficients (invert.stages.assimilate.core).
+"""Kalman filter / RTS smoother of the coefficients (invert.stages.assimilate).
 
 Oracles: the dense joint Gaussian posterior of the stacked linear model (Rauch, Tung & Striebel
 1965: the RTS smoother is exact for linear Gaussian models; REFERENCES.md §3) and
@@ -11,9 +11,16 @@ from scipy import stats
 
 from invert.geometry.disk import Disk
 from invert.prior import SmoothnessPrior
-from invert.stages.assimilate.core import (CoefficientDynamics, FilterState, KalmanSmoother,
-                                      _linear_recursion, filter_segment, fit_time_scale,
-                                      log_likelihood, run_smoother)
+from invert.stages.assimilate import (
+    CoefficientDynamics,
+    FilterState,
+    KalmanSmoother,
+    filter_segment,
+    fit_time_scale,
+    linear_recursion,
+    log_likelihood,
+    run_smoother,
+)
 
 
 def _small_model(time_scale=3.0, n_modes=2, n_sensors=6):
@@ -122,7 +129,7 @@ def test_linear_recursion_eigen_path_matches_loop(reverse):
     Phi = np.linalg.solve(S + np.eye(6), S)  # real spectrum in (0, 1)
     U = rng.standard_normal((500, 6))
     x0 = rng.standard_normal(6)
-    got = _linear_recursion(Phi, U, x0, reverse=reverse)
+    got = linear_recursion(Phi, U, x0, reverse=reverse)
     X, x = np.empty_like(U), x0
     for k in (range(499, -1, -1) if reverse else range(500)):
         x = Phi @ x + U[k]
@@ -215,8 +222,14 @@ def test_chunk_elements_combine_to_the_sequential_smoother(problem):
     # in order (a scan over chunk summaries), give the filtered state entering each chunk and
     # the smoothed state leaving it; running each chunk from those states reproduces the
     # sequential smoother. Tolerance: algebra (1e-9, prior scale 100 on the mean level).
-    from invert.stages.assimilate.core import (SmootherState, _combine_filter, _combine_smoother,
-                                          filter_summary, smooth_segment, smoother_summary)
+    from invert.stages.assimilate import (
+        SmootherState,
+        combine_filter,
+        combine_smoother,
+        filter_summary,
+        smooth_segment,
+        smoother_summary,
+    )
 
     model, t, Y = problem
     ref = run_smoother(model, t, Y, steady_tol=0)
@@ -233,7 +246,7 @@ def test_chunk_elements_combine_to_the_sequential_smoother(problem):
         st, seg = filter_segment(model, st, t[a:b], Y[a:b], steady_tol=0)
         np.testing.assert_allclose(seg.m, filt.m[a:b], rtol=0, atol=1e-9)
         segs.append(seg)
-        acc = sums[i] if acc is None else _combine_filter(acc, sums[i])
+        acc = sums[i] if acc is None else combine_filter(acc, sums[i])
         np.testing.assert_allclose(acc[1], st.m, rtol=0, atol=1e-9)  # filtered mean at end
         np.testing.assert_allclose(acc[2], st.P, rtol=0, atol=1e-8)
     # backward: summaries of later chunks give the smoothed state at each chunk's end
@@ -249,6 +262,6 @@ def test_chunk_elements_combine_to_the_sequential_smoother(problem):
         _, ms, _, _ = smooth_segment(segs[i], state, steady_tol=0)
         a, b = cuts[i], cuts[i + 1]
         np.testing.assert_allclose(ms, ref.mean[a:b], rtol=0, atol=1e-9)
-        back = ssum[i] if back is None else _combine_smoother(ssum[i], back)
+        back = ssum[i] if back is None else combine_smoother(ssum[i], back)
         np.testing.assert_allclose(back[1], ref.mean[a], rtol=0, atol=1e-9)
         np.testing.assert_allclose(back[2], ref.cov(a), rtol=0, atol=1e-8)

@@ -13,8 +13,9 @@ import pytest
 from scipy import stats
 from sklearn.linear_model import BayesianRidge
 
-from invert import Disk, GaussianPosterior, LinearProblem, SmoothnessPrior, gaussian_posterior
+from invert import Disk, GaussianPosterior, LinearProblem, SmoothnessPrior
 from invert.stages.mcmc.collapsed import CollapsedModel
+from invert.workflow import fit_stage
 
 
 def _scenario(rng, *, n_modes=22, n_rim=24, n_probe=3, sigma=0.05, known=True, gap=0.2,
@@ -53,7 +54,7 @@ def test_hyperparameters_match_sklearn_bayesian_ridge(rng):
     # fixed-point stopping rule (tol=1e-10 on the coefficients).
     prob, _, _ = _scenario(rng, known=False, n_modes=22)
     g = GaussianPosterior(s=2.0)
-    est = g.fit(prob)
+    est = fit_stage(g, prob)
     D = np.sqrt(SmoothnessPrior(s=2.0).shape(g.problem_.eigenvalues, g.problem_.degrees))
     br = BayesianRidge(fit_intercept=False, tol=1e-10, max_iter=5000, alpha_1=0, alpha_2=0,
                        lambda_1=0, lambda_2=0, compute_score=True).fit(g.problem_.G * D, prob.y)
@@ -74,7 +75,7 @@ def test_posterior_equals_gain_form_and_evidence_equals_scipy(rng):
     # Tolerances: algebra, 1e-8.
     prob, _, _ = _scenario(rng, n_modes=8, known=True)
     g = GaussianPosterior(s=3.0, tau=0.8)
-    est = g.fit(prob)
+    est = fit_stage(g, prob)
     P = np.diag(SmoothnessPrior(s=3.0, tau=0.8).variances(prob.eigenvalues, prob.degrees))
     S = np.diag(prob.sigma**2)
     Sig = np.linalg.inv(np.linalg.inv(P) + prob.G.T @ np.linalg.inv(S) @ prob.G)
@@ -98,7 +99,7 @@ def test_evidence_is_maximal_at_the_chosen_hyperparameters(rng):
     # independently by CollapsedModel's Cholesky path).
     prob, _, _ = _scenario(rng, known=False, n_modes=22)
     g = GaussianPosterior(s_bounds=(1.8, 5.0))
-    g.fit(prob)
+    fit_stage(g, prob)
     cm = CollapsedModel(g.problem_)
     best = cm.loglik([g.tau_], [g.s_], [[g.noise_sd_**2]])[0]
     assert best == pytest.approx(g.log_evidence_, abs=1e-6)
@@ -117,14 +118,14 @@ def test_known_sigma_with_noise_scale(rng):
     prob = LinearProblem(prob.G, prob.y, prob.sigma / 3, prob.degrees, prob.eigenvalues,
                          prob.domain, points=prob.points)
     g = GaussianPosterior(s=2.0, fit_noise_scale=True)
-    est = g.fit(prob)
+    est = fit_stage(g, prob)
     assert 2.0 < g.noise_sd_ < 4.0
     assert est.info["noise_scale"] == g.noise_sd_ and est.df is not None
 
 
 def test_truncation_is_raised_for_the_roughest_smoothness(rng):
     prob, _, _ = _scenario(rng, n_modes=10)
-    est = GaussianPosterior().fit(prob)
+    est = fit_stage(GaussianPosterior(), prob)
     # invert.prior.truncation_degree(disk, 1.5) = 99 harmonics.
     assert est.domain.n_modes == 99 and est.info["notes"]
     # A hand-made design cannot be rebuilt: the lower end of s is raised instead, with a warning.
@@ -159,7 +160,7 @@ def test_calibration_truth_from_prior(known):
                                       sigma=float(rng.choice([0.02, 0.05, 0.1])))
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            est = gaussian_posterior(prob, s_bounds=(1.5, 4.0))
+            est = fit_stage(GaussianPosterior(s_bounds=(1.5, 4.0)), prob)
         s = est.at(test, 0.9)
         hits.append((s.lower <= truth) & (truth <= s.upper))
     cover = np.mean(hits)

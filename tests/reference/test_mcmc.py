@@ -23,9 +23,9 @@ from invert import (
     MCMCSampler,
     MCMCWarning,
     SmoothnessPrior,
-    mcmc,
 )
 from invert.stages.mcmc.collapsed import CollapsedModel
+from invert.workflow import fit_stage
 
 
 def _scenario(rng, *, n_modes=8, n_rim=16, n_probe=2, sigma=0.1, known=True, s_true=2.0,
@@ -211,9 +211,9 @@ def test_fixed_hyperparameters_reproduce_closed_form(rng):
     prob, test, _ = _scenario(rng, n_modes=4)
     prob = LinearProblem(prob.G, prob.y, prob.sigma, prob.degrees, prob.eigenvalues,
                          prob.domain)
-    exact = GaussianPosterior(s=4.0, tau=1.0).fit(prob).at(test)
-    est = MCMCSampler(collapsed=False, s=4.0, tau=1.0, rng=1, progress=False,
-                      n_draws=4000).fit(prob)
+    exact = fit_stage(GaussianPosterior(s=4.0, tau=1.0), prob).at(test)
+    est = fit_stage(MCMCSampler(collapsed=False, s=4.0, tau=1.0, rng=1, progress=False,
+                      n_draws=4000), prob)
     assert est.info["sampling"]["converged"]
     _assert_matches_gaussian(_query_draws(est, test), exact.mean, exact.sd)
 
@@ -228,11 +228,11 @@ def test_collapsed_sampler_matches_quadrature(rng):
     # No points on the problem: its 6 harmonics are kept, so both sides use the same design.
     prob = LinearProblem(prob.G, prob.y, prob.sigma, prob.degrees, prob.eigenvalues,
                          prob.domain)
-    est = MCMCSampler(s=2.5, rng=3, progress=False, n_draws=8000).fit(prob)
+    est = fit_stage(MCMCSampler(s=2.5, rng=3, progress=False, n_draws=8000), prob)
     assert est.info["sampling"]["converged"]
-    from invert.stages.mcmc.sampler import _Hyper
+    from invert.stages.mcmc.hyper import Hyper
 
-    hyper = _Hyper(prob, (1.0, 5.0), s=2.5)
+    hyper = Hyper(prob, (1.0, 5.0), s=2.5)
     cm = CollapsedModel(prob, spectral=False)
     grid = np.linspace(-8, 8, 8001)
     lp = MCMCSampler._logp_collapsed(grid[:, None], hyper, cm)
@@ -261,8 +261,8 @@ def test_collapsed_and_full_samplers_agree(rng):
     # agree within 4 combined Monte Carlo standard errors.
     prob, test, _ = _scenario(rng, n_modes=4, known=False, n_rim=14)
     prob = LinearProblem(prob.G, prob.y, None, prob.degrees, prob.eigenvalues, prob.domain)
-    a = MCMCSampler(s=4.0, rng=3, progress=False, n_draws=4000).fit(prob)
-    b = MCMCSampler(s=4.0, rng=4, progress=False, collapsed=False, n_draws=4000).fit(prob)
+    a = fit_stage(MCMCSampler(s=4.0, rng=3, progress=False, n_draws=4000), prob)
+    b = fit_stage(MCMCSampler(s=4.0, rng=4, progress=False, collapsed=False, n_draws=4000), prob)
     assert a.info["sampling"]["converged"] and b.info["sampling"]["converged"]
     qa, qb = _query_draws(a, test), _query_draws(b, test)
     se_m = np.hypot(az.mcse(qa, method="mean", chain_axis=0, draw_axis=1),
@@ -279,9 +279,9 @@ def test_collapsed_and_full_samplers_agree(rng):
 def test_same_seed_same_numbers_and_diagnostics_match_arviz(rng):
     prob, _, _ = _scenario(rng, known=False)
     kw = dict(s=3.0, progress=False, n_draws=1000)
-    e1 = mcmc(prob, rng=7, **kw)
-    e2 = mcmc(prob, rng=7, **kw)
-    e3 = mcmc(prob, rng=8, **kw)
+    e1 = fit_stage(MCMCSampler(rng=7, **kw), prob)
+    e2 = fit_stage(MCMCSampler(rng=7, **kw), prob)
+    e3 = fit_stage(MCMCSampler(rng=8, **kw), prob)
     np.testing.assert_array_equal(e1.draws, e2.draws)
     assert e1.info["convergence"] == e2.info["convergence"]
     assert not np.array_equal(e1.draws, e3.draws)
@@ -307,7 +307,7 @@ def test_same_seed_same_numbers_and_diagnostics_match_arviz(rng):
 
 def test_datatree_groups_loo_and_sensor_table(rng):
     prob, _, _ = _scenario(rng, known=True)
-    est = MCMCSampler(s=3.0, rng=2, progress=False, n_draws=1000).fit(prob)
+    est = fit_stage(MCMCSampler(s=3.0, rng=2, progress=False, n_draws=1000), prob)
     dt = est.extras["posterior"]
     for g in ("posterior", "log_likelihood", "posterior_predictive", "observed_data"):
         assert g in dt.children
@@ -329,8 +329,8 @@ def test_datatree_groups_loo_and_sensor_table(rng):
 def test_step_cap_and_bad_settings_warn_or_raise(rng):
     prob, _, _ = _scenario(rng)
     with pytest.warns(MCMCWarning, match="step cap"):
-        est = MCMCSampler(s=3.0, rng=0, progress=False, max_steps=20, min_steps=20,
-                          n_draws=200).fit(prob)
+        est = fit_stage(MCMCSampler(s=3.0, rng=0, progress=False, max_steps=20, min_steps=20,
+                          n_draws=200), prob)
     assert any("step cap" in w for w in est.warnings)
     with pytest.raises(ValueError, match="'n_ensembles' parameter of MCMCSampler"):
         MCMCSampler(n_ensembles=2).fit(prob)
@@ -358,9 +358,10 @@ def test_faulty_sensor_is_found_and_ignored():
                               prob.domain, prob.sensor, prob.points)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            est = MCMCSampler(faulty=True, s=2.0, rng=int(rng.integers(1 << 30)),
-                              progress=False, n_draws=1000, min_steps=300).fit(dirty)
-            ref = GaussianPosterior(s=2.0).fit(dirty.subset(np.arange(prob.n_readings) != bad))
+            est = fit_stage(MCMCSampler(faulty=True, s=2.0, rng=int(rng.integers(1 << 30)),
+                              progress=False, n_draws=1000, min_steps=300), dirty)
+            ref = fit_stage(GaussianPosterior(s=2.0),
+                            dirty.subset(np.arange(prob.n_readings) != bad))
         pf = est.extras["sensor_table"]["fault_probability"].to_numpy()
         others = np.delete(pf, bad)
         ok.append(pf[bad] > 0.9 and others.max() < 0.2)
@@ -390,9 +391,9 @@ def test_angle_model_recovers_offsets():
                          points=pts_nom)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        est = MCMCSampler(angle_sd_deg=3.0, s=4.0, rng=5, progress=False, n_draws=600,
-                          min_steps=250, max_steps=1500).fit(prob)
-        plain = MCMCSampler(s=4.0, rng=5, progress=False, n_draws=600).fit(prob)
+        est = fit_stage(MCMCSampler(angle_sd_deg=3.0, s=4.0, rng=5, progress=False, n_draws=600,
+                          min_steps=250, max_steps=1500), prob)
+        plain = fit_stage(MCMCSampler(s=4.0, rng=5, progress=False, n_draws=600), prob)
     got = est.extras["sensor_table"]["angle_offset_deg_mean"].to_numpy()
     assert np.corrcoef(got, np.rad2deg(off))[0, 1] > 0.6
     test = d.from_polar(rng.uniform(0.3, 1.0, 40), rng.uniform(0, 2 * np.pi, 40))
@@ -420,8 +421,8 @@ def test_mcmc_calibration_truth_from_prior():
                                       n_test=10, s_true=2.5)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            est = MCMCSampler(s_bounds=(2.0, 4.0), rng=int(rng.integers(1 << 30)),
-                              progress=False, n_draws=1000).fit(prob)
+            est = fit_stage(MCMCSampler(s_bounds=(2.0, 4.0), rng=int(rng.integers(1 << 30)),
+                              progress=False, n_draws=1000), prob)
         s = est.at(test, 0.9)
         hits.append((s.lower <= truth) & (truth <= s.upper))
     cover = np.mean(hits)

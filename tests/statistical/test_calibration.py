@@ -4,7 +4,6 @@ import warnings
 
 import numpy as np
 import pytest
-
 from scenarios import noisy_problem, outside_gap, prior_coefficients, ring_angles
 
 from invert import Disk, LinearProblem, Tikhonov, make_domain

@@ -25,7 +25,8 @@ so that only the well-conditioned :math:`B` is factorised (Cholesky, batched ove
 :math:`V_0 = \tau^2\kappa^2`. The log density of the readings in their own units adds
 :math:`\sum_i \log w_i`. Given the hyperparameters the coefficients are Gaussian (Bishop 2006,
 eqs. 3.53–3.54); exact draws come from the SVD of the fully whitened standard-form matrix
-:math:`A = N^{-1}\tilde G D`, :math:`D = \operatorname{diag}(\sqrt{\text{prior var}})`:
+(:func:`~invert.stages._spectrum.standard_form`) :math:`A = N^{-1}\tilde G D`,
+:math:`D = \operatorname{diag}(\sqrt{\text{prior var}})`:
 :math:`x \mid y \sim N(V S(S^2+I)^{-1}U^\top \tilde y,\ I - V S^2(S^2+I)^{-1}V^\top)`,
 :math:`c = D x`.
 
@@ -50,7 +51,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...prior import MEAN_SCALE
-from .._truncation import single_thread
+from .._spectrum import standard_form
 
 _LOG2PI = float(np.log(2 * np.pi))
 
@@ -116,8 +117,11 @@ class CollapsedModel:
         return tau, s, nb, noise_var
 
     def _spectrum(self, s, noise_var, design):
-        """The cached one-SVD decomposition for this batch, or None when the batch does not
-        share one ``s`` and one common noise level (or has its own designs)."""
+        """Return the cached one-SVD decomposition for a batch.
+
+        The cached one-SVD decomposition for this batch, or None when the batch does not
+        share one ``s`` and one common noise level (or has its own designs).
+        """
         if not self.spectral or design is not None or s.size == 0:
             return None
         if not (np.all(s == s[0]) and np.all(noise_var == noise_var[:, :1])):
@@ -126,7 +130,12 @@ class CollapsedModel:
         hit = self._spectra.get(key)
         if hit is None:
             d = np.sqrt(self.prior_var(np.ones(1), s[:1])[0])  # includes the broad mean level
-            U, S, Vt = np.linalg.svd(self.Gw * d[None, :], full_matrices=False)
+            U, S, Vt = np.linalg.svd(standard_form(self.problem.G, self.w, d),
+                                     full_matrices=False)
+            # All min(m, p) singular values are kept, with no rank cut-off (rank_mask): the
+            # broad mean level (sd 1e4 tau) lifts the largest far above the rest, so the
+            # cut-off would drop small directions and change the results at 1e-8 on the demo
+            # data. None is needed: every component enters as tau^2 S^2 + nu^2 > 0.
             beta = U.T @ self.yw
             full = U.shape[1] == self.m  # U square: no residual outside its span
             perp = 0.0 if full else float(np.sum((self.yw - U @ beta) ** 2))
@@ -142,9 +151,12 @@ class CollapsedModel:
         return (tau**2)[:, None] * sp["S2"][None, :] + nv[:, None]
 
     def _blocks(self, tau, s, noise_var, design, chunk):
-        r"""Yield ``(slice, prior_var, G_r, g_0, B)`` per chunk of hyperparameter rows, with
+        r"""Yield the data-space blocks per chunk of hyperparameter rows.
+
+        Yield ``(slice, prior_var, G_r, g_0, B)`` per chunk of hyperparameter rows, with
         :math:`B = G_r P_r G_r^\top + \operatorname{diag}(noise)` (whitened rows; ``G_r`` the
-        columns with a proper prior, ``g_0`` the broad mean level)."""
+        columns with a proper prior, ``g_0`` the broad mean level).
+        """
         br = self.broad
         idx = np.arange(self.m)
         for a0 in range(0, tau.size, chunk):
@@ -201,7 +213,9 @@ class CollapsedModel:
         return gaussian_terms(B, self.yw, G0, V0) + self.log_w
 
     def loo_moments(self, tau, s, noise_var, design=None, chunk=512):
-        r"""Leave-one-out predictive mean and variance of each whitened reading given the
+        r"""Compute leave-one-out predictive moments of the readings.
+
+        Leave-one-out predictive mean and variance of each whitened reading given the
         hyperparameters, coefficients integrated out; shapes (n_batch, m).
 
         Notes
@@ -313,8 +327,11 @@ class CollapsedModel:
         return mean, draw
 
     def conditional_svd(self, tau, s, noise_var, rng=None, design=None, chunk=256):
-        """Same as :meth:`conditional` through the SVD of the whitened standard form (slower,
-        kept as an independent check)."""
+        """Draw as :meth:`conditional`, through the SVD (an independent check).
+
+        Same as :meth:`conditional` through the SVD of the whitened standard form (slower,
+        kept as an independent check).
+        """
         rng = np.random.default_rng(rng)
         tau, s, nb, noise_var = self._batch(tau, s, noise_var)
         z = rng.standard_normal((nb, self.p))
@@ -325,7 +342,7 @@ class CollapsedModel:
             d = np.sqrt(self.prior_var(tau[sl], s[sl]))  # (b, p)
             r = 1.0 / np.sqrt(noise_var[sl])  # (b, m)
             G = self.Gw[None] if design is None else self.w[None, :, None] * design[sl]
-            A = (r[:, :, None] * G) * d[:, None, :]
+            A = standard_form(G, r, d[:, None, :])
             yt = r * self.yw[None, :]
             U, sv, Vt = np.linalg.svd(A, full_matrices=False)
             beta = np.einsum("bmk,bm->bk", U, yt)

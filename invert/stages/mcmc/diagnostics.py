@@ -137,8 +137,11 @@ def build_tree(problem, posterior, log_lik, y_rep, *, sensor_vars=(), attrs=None
 
 
 def convergence(dt, superchain_ids, var_names):
-    """Nested R-hat, bulk/tail ESS and MCSE of the mean for ``var_names`` (scalars), plus the
-    worst value over the coefficients. Returns a dict for ``Estimate.info``."""
+    """Summarise convergence: nested R-hat, ESS and MCSE.
+
+    Nested R-hat, bulk/tail ESS and MCSE of the mean for ``var_names`` (scalars), plus the
+    worst value over the coefficients. Returns a dict for ``Estimate.info``.
+    """
     import arviz as az
 
     ids = [int(v) for v in superchain_ids]
@@ -165,16 +168,15 @@ def convergence_warnings(diag):
     notes = []
     bad_r = {k: v for k, v in diag["rhat"].items() if not (v <= RHAT_MAX)}
     if bad_r:
-        notes.append("nested R-hat above %.2f for %s; the ensembles disagree, so the posterior "
-                     "is not yet explored. Try a larger max_steps (--max-steps)."
-                     % (RHAT_MAX, ", ".join(f"{k} ({v:.3g})" for k, v in bad_r.items())))
+        names = ", ".join(f"{k} ({v:.3g})" for k, v in bad_r.items())
+        notes.append(f"nested R-hat above {RHAT_MAX:.2f} for {names}; the ensembles disagree, so "
+                     f"the posterior is not yet explored. Try a larger max_steps (--max-steps).")
     for kind in ("ess_bulk", "ess_tail"):
         bad = {k: v for k, v in diag[kind].items() if not (v >= ESS_MIN)}
         if bad:
-            notes.append("%s ESS below %d for %s; Monte Carlo error is large. Try a larger "
-                         "max_steps or n_draws." % (kind.split("_")[1], ESS_MIN,
-                                                    ", ".join(f"{k} ({v:.0f})"
-                                                              for k, v in bad.items())))
+            names = ", ".join(f"{k} ({v:.0f})" for k, v in bad.items())
+            notes.append(f"{kind.split('_')[1]} ESS below {int(ESS_MIN):d} for {names}; Monte "
+                         f"Carlo error is large. Try a larger max_steps or n_draws.")
     return notes
 
 

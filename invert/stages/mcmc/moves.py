@@ -55,6 +55,7 @@ class FittedStudentMove(RedBlueMove):
         super().__init__(**kwargs)
 
     def get_proposal(self, s, c, random):
+        """Independence proposals for the walkers ``s`` from the Student-t fitted to ``c``."""
         comp = c[0] if len(c) == 1 else np.concatenate(c, axis=0)
         n, d = s.shape
         mu = comp.mean(axis=0)

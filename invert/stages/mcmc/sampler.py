@@ -42,248 +42,26 @@ References
 
 from __future__ import annotations
 
-import sys
 import time
 import warnings
 
 import numpy as np
-from scipy import optimize
 
-from ...problem import Estimate, PriorSummary
-from . import diagnostics as diag
-from .._truncation import extend_modes, single_thread, truncation_floor
-from .collapsed import CollapsedModel
-from ..gaussian import DEFAULT_S_BOUNDS, GaussianPosterior, _check_bounds, _check_positive
-from ...errors import FitWarning
 from ...errors import MCMCWarning
+from ...problem import Estimate, PriorSummary
+from .._blas import single_thread
+from .._checks import check_positive, check_s_bounds
+from ..gaussian import DEFAULT_S_BOUNDS, GaussianPosterior, truncation_warning
+from . import diagnostics as diag
+from .collapsed import CollapsedModel
+from .ensemble import moves_for, run_emcee, thin_chains
+from .hyper import Hyper, laplace
 
 __all__ = ["MCMCSampler", "mcmc"]
 
 _LOG2PI = float(np.log(2 * np.pi))
 
 
-
-
-class _Hyper:
-    """Sampled hyperparameter vector <-> (tau, s, nu), and its weakly informative prior."""
-
-    def __init__(self, problem, s_bounds, *, tau=None, s=None, noise_sd=None,
-                 fit_noise_scale=False):
-        self.known = problem.sigma is not None
-        y = problem.y
-        self.scale_y = float(np.std(y)) if np.std(y) > 0 else 1.0
-        self.s_bounds = s_bounds
-        self.fixed = {"tau": tau, "s": s}
-        names = []
-        if tau is None:
-            names.append("log_tau")
-        if s is None:
-            names.append("s")
-        if self.known:
-            self.noise_name = "noise_scale"
-            self.fixed["noise"] = None if fit_noise_scale else 1.0
-            self.noise_prior = (0.0, 1.0)
-        else:
-            self.noise_name = "noise_sd"
-            self.fixed["noise"] = noise_sd
-            self.noise_prior = (float(np.log(self.scale_y / 10)), 3.0)
-        if self.fixed["noise"] is None:
-            names.append("log_noise")
-        self.names = names
-        self.tau_prior = (float(np.log(self.scale_y)), 2.5)
-
-    @property
-    def ndim(self):
-        return len(self.names)
-
-    def unpack(self, theta):
-        theta = np.atleast_2d(theta)
-        nb = theta.shape[0]
-        col = {n: theta[:, i] for i, n in enumerate(self.names)}
-        with np.errstate(over="ignore"):
-            tau = np.exp(col["log_tau"]) if "log_tau" in col else np.full(nb, self.fixed["tau"])
-            s = col["s"] if "s" in col else np.full(nb, self.fixed["s"])
-            nu = np.exp(col["log_noise"]) if "log_noise" in col else \
-                np.full(nb, self.fixed["noise"])
-        return tau, s, nu
-
-    def pack(self, tau, s, nu):
-        vals = {"log_tau": np.log(tau), "s": s, "log_noise": np.log(nu)}
-        return np.array([vals[n] for n in self.names], dtype=float)
-
-    def log_prior(self, theta):
-        theta = np.atleast_2d(theta)
-        lp = np.zeros(theta.shape[0])
-        for i, n in enumerate(self.names):
-            x = theta[:, i]
-            if n == "s":
-                lo, hi = self.s_bounds
-                lp = np.where((x > lo) & (x < hi), lp - np.log(hi - lo), -np.inf)
-            else:
-                mu, sd = self.tau_prior if n == "log_tau" else self.noise_prior
-                ok = np.abs(x) < 60  # keeps exp() finite; far outside any prior mass
-                lp = np.where(ok, lp - 0.5 * ((x - mu) / sd) ** 2 - np.log(sd) - 0.5 * _LOG2PI,
-                              -np.inf)
-        return lp
-
-    def describe(self):
-        out = {}
-        if "log_tau" in self.names:
-            out["tau"] = (f"log tau ~ Normal({self.tau_prior[0]:.4g}, {self.tau_prior[1]}^2) "
-                          f"(centred on the log sd of the readings)")
-        else:
-            out["tau"] = f"fixed at {self.fixed['tau']}"
-        if "s" in self.names:
-            out["s"] = f"s ~ Uniform({self.s_bounds[0]:.4g}, {self.s_bounds[1]:.4g})"
-        else:
-            out["s"] = f"fixed at {self.fixed['s']}"
-        if "log_noise" in self.names:
-            out[self.noise_name] = (f"log {self.noise_name} ~ Normal({self.noise_prior[0]:.4g},"
-                                    f" {self.noise_prior[1]}^2)")
-        else:
-            out[self.noise_name] = f"fixed at {self.fixed['noise']}"
-        out["mean_level"] = "a0 ~ Normal(0, (1e4 tau)^2) (effectively flat)"
-        return out
-
-
-def _num_hessian(f, x, h=1e-3):
-    """Central-difference Hessian of a batched scalar function ``f`` at ``x``."""
-    d = x.size
-    E = np.eye(d) * h
-    pts = [x]
-    for i in range(d):
-        for j in range(d):
-            pts += [x + E[i] + E[j], x + E[i] - E[j], x - E[i] + E[j], x - E[i] - E[j]]
-    v = f(np.array(pts))
-    if not np.all(np.isfinite(v)):
-        raise np.linalg.LinAlgError("non-finite log density near the mode")
-    H = np.empty((d, d))
-    k = 1
-    for i in range(d):
-        for j in range(d):
-            H[i, j] = (v[k] - v[k + 1] - v[k + 2] + v[k + 3]) / (4 * h * h)
-            k += 4
-    return 0.5 * (H + H.T)
-
-
-def _laplace(logp, x0, bounds):
-    """Mode of ``logp`` from ``x0`` (L-BFGS-B) and the inverse negative Hessian there."""
-    res = optimize.minimize(lambda x: -float(logp(x[None])[0]), x0, method="L-BFGS-B",
-                            bounds=bounds)
-    x = res.x if np.isfinite(res.fun) and res.fun <= -float(logp(x0[None])[0]) else x0
-    # Keep the difference stencil inside the bounds (s may sit at its end).
-    lo = np.array([b[0] for b in bounds]) + 2e-3
-    hi = np.array([b[1] for b in bounds]) - 2e-3
-    x = np.clip(x, lo, hi)
-    try:
-        H = _num_hessian(logp, x)
-        w, V = np.linalg.eigh(-H)
-        if not np.all(np.isfinite(w)) or w.min() <= 0:
-            raise np.linalg.LinAlgError
-        cov = (V / w) @ V.T
-    except np.linalg.LinAlgError:
-        cov = np.eye(x.size) * 0.01
-    return x, cov
-
-
-def _autocorr_max(chain):
-    """Largest integrated autocorrelation time over parameters (Sokal window c=5); ``inf``
-    when it cannot be estimated yet."""
-    if chain.shape[0] < 10:
-        return np.inf
-    tau = diag.integrated_time(chain, c=5)
-    return float(np.max(tau)) if np.all(np.isfinite(tau)) else np.inf
-
-
-def _progress(total, progress, desc):
-    from tqdm.auto import tqdm
-
-    show = bool(progress) and sys.stderr.isatty()
-    return tqdm(total=total, disable=not show, desc=desc, leave=False)
-
-
-def _moves(d):
-    """emcee moves for a ``d``-dimensional posterior, and their description.
-
-    Differential evolution (ter Braak 2006) everywhere: on these posteriors its
-    autocorrelation time was about 4x shorter than the stretch move's in our runs. Up to 3
-    dimensions (the hyperparameters of the collapsed sampler), 80 % of the steps are
-    independence proposals from a Student-t fitted to the complementary half-ensemble
-    (:class:`~invert.stages.mcmc.moves.FittedStudentMove`), which cut the autocorrelation time
-    from about 4.4 to 1.5-2 steps; in 24 dimensions (the all-coefficient baseline) that
-    proposal was accepted 3 % of the time, so it is not used there. emcee's DESnookerMove is
-    not used: mixed in at 20 % it gave posterior sds 7 % too small on a 17-dimensional
-    Gaussian with known answer (emcee 3.1.6).
-    """
-    import emcee
-
-    from .moves import FittedStudentMove
-
-    if d <= 3:
-        return ([(FittedStudentMove(), 0.8), (emcee.moves.DEMove(), 0.2)],
-                "80 % fitted Student-t independence, 20 % differential-evolution moves")
-    return emcee.moves.DEMove(), "differential-evolution moves"
-
-
-def _run_emcee(logp, centres, ball, nwalkers, rng, *, max_steps, min_steps, check_every,
-               progress, desc):
-    """Run one emcee ensemble per row of ``centres`` in lockstep until each chain is at least
-    50 autocorrelation times long (after dropping the first quarter) or ``max_steps``."""
-    import emcee
-
-    K, d = centres.shape
-    samplers, states = [], []
-    for k in range(K):
-        p0 = centres[k] + ball * rng.standard_normal((nwalkers, d))
-        for _ in range(50):
-            bad = ~np.isfinite(logp(p0))
-            if not bad.any():
-                break
-            p0[bad] = centres[k] + 0.1 * ball * rng.standard_normal((int(bad.sum()), d))
-        else:
-            raise RuntimeError("could not place the walkers where the posterior is positive")
-        sampler = emcee.EnsembleSampler(nwalkers, d, logp, vectorize=True,
-                                        moves=_moves(d)[0])
-        seed = int(rng.integers(2**32))
-        states.append(emcee.State(p0, random_state=np.random.RandomState(seed).get_state()))
-        samplers.append(sampler)
-    n, tau, converged = 0, np.inf, False
-    next_check = max(min_steps, check_every)
-    with _progress(max_steps, progress, desc) as bar:
-        while n < max_steps:
-            step = int(min(check_every, max_steps - n))
-            for k in range(K):
-                states[k] = samplers[k].run_mcmc(states[k], step, progress=False)
-            n += step
-            bar.update(step)
-            if n >= next_check or n >= max_steps:
-                # Checks at a geometric schedule (every 25 % growth): the autocorrelation
-                # estimate costs one FFT per walker and parameter.
-                next_check = max(n + check_every, int(1.25 * n))
-                tau = max(_autocorr_max(s.get_chain()[n // 4:]) for s in samplers)
-                if n - n // 4 >= 50 * tau:
-                    converged = True
-                    break
-    chains = np.stack([s.get_chain() for s in samplers])  # (K, n, nwalkers, d)
-    acc = float(np.mean([s.acceptance_fraction.mean() for s in samplers]))
-    return chains, {"n_steps": n, "tau_int": tau, "converged": converged, "acceptance": acc}
-
-
-def _thin(chains, n_draws, min_per_chain=20):
-    """Drop the first quarter (>= 12 autocorrelation times once converged) and thin each walker
-    to equal length so that all walkers together keep about ``n_draws`` draws.
-
-    Returns an array (K * nwalkers, n_keep, d), superchain ids, burn and thin.
-    """
-    K, n, nw, d = chains.shape
-    burn = n // 4
-    kept = chains[:, burn:]
-    per = max(min_per_chain, int(np.ceil(n_draws / (K * nw))))
-    thin = max(1, kept.shape[1] // per)
-    kept = kept[:, ::thin][:, -per:]  # (K, n_keep, nw, d)
-    out = np.moveaxis(kept, 2, 1).reshape(K * nw, kept.shape[1], d)
-    ids = np.repeat(np.arange(K), nw)
-    return out, ids, burn, thin
 
 
 class MCMCSampler:
@@ -372,6 +150,29 @@ class MCMCSampler:
         self.rng = rng
         self.progress = progress
 
+    @classmethod
+    def from_settings(cls, *, s=2.0, seed=None, fix_s=False, **options):
+        """Build the stage from the assembly layer's settings (:mod:`invert.stages.registry`).
+
+        ``s`` is held fixed only with ``fix_s=True`` (otherwise it only sized the truncation
+        and is sampled within ``s_bounds``); ``seed`` seeds all randomness.
+        """
+        return cls(s=s if fix_s else None, rng=seed, **options)
+
+    def lowest_s(self):
+        """Return the roughest smoothness order the stage tries.
+
+        The roughest smoothness order tried: ``s`` when fixed, else the lower end of
+        ``s_bounds`` (the assembly layer sizes the truncation for it).
+        """
+        lo, _ = check_s_bounds(self.s_bounds, "MCMCSampler")
+        if self.s is None:
+            return lo
+        from ...prior import SmoothnessPrior
+
+        SmoothnessPrior(s=float(self.s))  # validates s
+        return float(self.s)
+
     # --- checks and set-up ---------------------------------------------------------------
     def _check(self, problem):
         where = "MCMCSampler"
@@ -386,20 +187,20 @@ class MCMCSampler:
             raise ValueError(f"The 'n_ensembles' parameter of {where} must be an int >= 4 "
                              f"(convergence is judged across ensembles). Got "
                              f"{self.n_ensembles!r} instead.")
-        _check_positive(self.tau, "tau", where)
-        _check_positive(self.noise_sd, "noise_sd", where)
-        _check_positive(self.angle_sd_deg, "angle_sd_deg", where)
-        _check_positive(self.sigma_bad, "sigma_bad", where)
+        check_positive(self.tau, "tau", where)
+        check_positive(self.noise_sd, "noise_sd", where)
+        check_positive(self.angle_sd_deg, "angle_sd_deg", where)
+        check_positive(self.sigma_bad, "sigma_bad", where)
         if not (0 < float(self.fault_rate) < 1):
             raise ValueError(f"The 'fault_rate' parameter of {where} must be a float in the "
                              f"range (0, 1). Got {self.fault_rate!r} instead.")
         if not self.collapsed and (self.faulty or self.angle_sd_deg):
             raise ValueError("collapsed=False is the all-coefficient baseline of the default "
                              "model; it cannot be combined with faulty or angle_sd_deg.")
-        if self.angle_sd_deg and (problem.points is None or problem.domain is None
-                                  or getattr(problem.domain, "kind", None) != "disk"):
-            raise ValueError("angle_sd_deg needs a problem built from sensor points on a disk "
-                             "(LinearProblem.from_readings).")
+        if self.angle_sd_deg:
+            # The angle-error model turns sensors about the centre (LinearProblem.
+            # rotated_design); a problem or domain that cannot do so fails here, clearly.
+            problem.rotated_design(np.zeros((1, problem.n_readings)))
         if self.s is not None:
             from ...prior import SmoothnessPrior
 
@@ -409,20 +210,18 @@ class MCMCSampler:
                              "without sigma (or with fit_noise_scale=True).")
 
     def _setup(self, problem, notes):
-        lo, hi = _check_bounds(self.s_bounds, "MCMCSampler")
-        info_notes = []
-        problem, note = extend_modes(problem, lo if self.s is None else float(self.s))
-        if note:
-            info_notes.append(note)
+        lo, hi = check_s_bounds(self.s_bounds, "MCMCSampler")
         if self.s is None:
-            floor = truncation_floor(problem, lo, hi)
+            floor = problem.truncation_floor(lo, hi)
             if floor > lo:
                 notes.append(f"the truncation degree supports s >= {floor:.3g} only; the prior "
                              f"range of s was raised from {lo:g}. Use more harmonics")
                 lo = floor
-        hyper = _Hyper(problem, (lo, hi), tau=self.tau, s=self.s, noise_sd=self.noise_sd,
+        elif not problem.truncation_holds(float(self.s)):
+            notes.append(truncation_warning(problem, float(self.s)))
+        hyper = Hyper(problem, (lo, hi), tau=self.tau, s=self.s, noise_sd=self.noise_sd,
                        fit_noise_scale=self.fit_noise_scale)
-        return problem, hyper, info_notes
+        return hyper, list(problem.assembly_notes)
 
     def _start(self, problem, hyper, cm):
         """Posterior mode of the collapsed model and the Laplace covariance there."""
@@ -441,7 +240,7 @@ class MCMCSampler:
         if hyper.ndim == 0:
             return x0, np.zeros((0, 0))
         bounds = [(lo + 1e-6, hi - 1e-6) if n == "s" else (-50, 50) for n in hyper.names]
-        return _laplace(lambda th: self._logp_collapsed(th, hyper, cm), x0, bounds)
+        return laplace(lambda th: self._logp_collapsed(th, hyper, cm), x0, bounds)
 
     @staticmethod
     def _logp_collapsed(theta, hyper, cm):
@@ -483,7 +282,7 @@ class MCMCSampler:
         rng = np.random.default_rng(self.rng)
         notes = []
         clock = [time.perf_counter()]
-        problem, hyper, info_notes = self._setup(problem, notes)
+        hyper, info_notes = self._setup(problem, notes)
         cm = CollapsedModel(problem)
         x_map, cov_map = self._start(problem, hyper, cm)
         clock.append(time.perf_counter())
@@ -546,13 +345,13 @@ class MCMCSampler:
             lo, hi = hyper.s_bounds
             centres[:, j] = np.clip(centres[:, j], lo + 0.01 * (hi - lo), hi - 0.01 * (hi - lo))
         ball = 1e-3 * np.sqrt(np.diag(cov))
-        chains, run = _run_emcee(logp, centres, ball, nw, rng, max_steps=int(self.max_steps),
+        chains, run = run_emcee(logp, centres, ball, nw, rng, max_steps=int(self.max_steps),
                                  min_steps=int(self.min_steps), check_every=250,
                                  progress=self.progress, desc="mcmc")
         self.chains_ = chains
-        kept, ids, burn, thin = _thin(chains, int(self.n_draws))
+        kept, ids, burn, thin = thin_chains(chains, int(self.n_draws))
         run.update(burn=burn, thin=thin, nwalkers=nw, n_ensembles=K,
-                   sampler=f"emcee ({_moves(d)[1]}), " +
+                   sampler=f"emcee ({moves_for(d)[1]}), " +
                    ("coefficients integrated out" if self.collapsed else "all coefficients"))
         C, D, _ = kept.shape
         flat = kept.reshape(C * D, d)
@@ -572,14 +371,18 @@ class MCMCSampler:
         return dict(theta=theta, ids=ids, coef=coef, coef_mean=coef_mean, noise_rows=None,
                     run=run, extra=extra, chains=chains)
 
-    def _finish(self, problem, hyper, cm, res, rng, notes, info_notes):
-        theta, coef, ids = res["theta"], res["coef"], res["ids"]
+    def _posterior_tree(self, problem, hyper, cm, res, rng):
+        """Build the arviz tree of the kept draws.
+
+        Returns ``(tree, (tau, s, nu), residuals, sampled variable names)``; the pointwise
+        log-likelihood and predictive draws of each reading are in the readings' own units.
+        """
+        theta, coef = res["theta"], res["coef"]
         C, D = coef.shape[:2]
         tau, s, nu = hyper.unpack(theta.reshape(C * D, -1))
         tau, s, nu = (v.reshape(C, D) for v in (tau, s, nu))
         post = {"tau": tau, "s": s, hyper.noise_name: nu, "coef": coef}
         post.update(res["extra"].get("posterior", {}))
-        # Pointwise log-likelihood and predictive draws of each reading (own units).
         sd_rows = (1.0 / cm.w)[None, None, :] * nu[:, :, None]
         mu = res["extra"].get("mu")
         if mu is None:
@@ -599,6 +402,12 @@ class MCMCSampler:
         dt = diag.build_tree(problem, post, ll, y_rep,
                              sensor_vars=res["extra"].get("sensor_vars", ()),
                              attrs={"model": self._model_name(), "inference": "invert.mcmc"})
+        return dt, (tau, s, nu), r, sampled
+
+    def _finish(self, problem, hyper, cm, res, rng, notes, info_notes):
+        coef, ids = res["coef"], res["ids"]
+        C, D = coef.shape[:2]
+        dt, (tau, s, nu), r, sampled = self._posterior_tree(problem, hyper, cm, res, rng)
         self.posterior_ = dt
         conv = diag.convergence(dt, ids, sampled) if res["run"]["n_steps"] else \
             diag.convergence(dt, ids, [])
@@ -635,7 +444,7 @@ class MCMCSampler:
             "sampled": list(hyper.names) + res["extra"].get("sampled", []),
             "n_readings": problem.n_readings,
             "n_coefficients": problem.n_coef,
-            "n_modes": getattr(problem.domain, "n_modes", None),
+            "n_modes": problem.n_modes,
             "n_draws": int(C * D),
             "sampling": {k: v for k, v in res["run"].items()},
             "convergence": conv,

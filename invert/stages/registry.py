@@ -1,0 +1,38 @@
+"""The registry of inference stages: the one map from method names to stage classes.
+
+The assembly layer (:mod:`invert.workflow`) and the command line's ``--method`` choices read
+it. A stage class registered here provides
+
+``from_settings(*, s, seed, **options)``
+    a classmethod building the stage from the workflow's common settings (the smoothness
+    order ``s`` given on the command line, the random ``seed``) and its own options;
+``lowest_s()``
+    the roughest smoothness order the stage will try, for which the assembly layer sizes the
+    truncation degree (None: the stage works with the truncation it is given);
+``fit(problem)``
+    returning an :class:`~invert.problem.Estimate`.
+
+A new stage is one new module and one entry in :data:`STAGES`.
+"""
+
+from __future__ import annotations
+
+from types import MappingProxyType
+
+from .gaussian import GaussianPosterior
+from .mcmc import MCMCSampler
+from .tikhonov import Tikhonov
+
+__all__ = ["STAGES", "stage_names"]
+
+#: Method name -> stage class, in the order the command line lists them.
+STAGES = MappingProxyType({
+    "tikhonov": Tikhonov,
+    "gaussian": GaussianPosterior,
+    "mcmc": MCMCSampler,
+})
+
+
+def stage_names() -> tuple:
+    """Return the registered method names, in registry order."""
+    return tuple(STAGES)
