@@ -7,21 +7,28 @@ Cite the methods you use (see the ``References`` section of each stage) and this
 from .batch import run_batch
 from .diagnostics import Diagnostics, ModelCheck, SensorAdvice, model_check
 from .errors import DomainError, FitWarning, InputError, MCMCWarning, ModelCheckWarning
-from .geometry import (Ball, Disk, arc_harmonic_measure, ball_poisson_kernel, poisson_kernel,
-                       poisson_kernel_nd, real_sph_harm)
+from .geometry import (
+                       Ball,
+                       Disk,
+                       arc_harmonic_measure,
+                       ball_poisson_kernel,
+                       poisson_kernel,
+                       poisson_kernel_nd,
+                       real_sph_harm,
+)
 from .io import Readings, load_layout, load_points, load_readings
 from .prior import SmoothnessPrior, truncation_degree
 from .problem import Estimate, LinearProblem, PointSummary
 from .stages import (
-    RULES,
-    CoefficientDynamics,
-    GaussianPosterior,
-    KalmanSmoother,
-    MCMCSampler,
-    Tikhonov,
-    gaussian_posterior,
-    mcmc,
-    tikhonov,
+                       RULES,
+                       CoefficientDynamics,
+                       GaussianPosterior,
+                       KalmanSmoother,
+                       MCMCSampler,
+                       Tikhonov,
+                       gaussian_posterior,
+                       mcmc,
+                       tikhonov,
 )
 from .workflow import fit, make_domain
 

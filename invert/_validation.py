@@ -11,6 +11,7 @@ import math
 from pathlib import Path
 
 import numpy as np
+
 from .errors import InputError
 
 __all__ = ["check_level", "read_table", "parse_number"]
@@ -68,7 +69,8 @@ def read_table(path, *, source=None):
         raise InputError(source, "file not found") from None
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError(source, f"cannot be read ({exc.__class__.__name__}: {exc})") from None
-    kept = [(i + 1, ln) for i, ln in enumerate(lines) if ln.strip() and not ln.lstrip().startswith("#")]
+    kept = [(i + 1, ln) for i, ln in enumerate(lines)
+            if ln.strip() and not ln.lstrip().startswith("#")]
     if not kept:
         raise InputError(source, "the file is empty (no header and no rows)")
     parsed = list(csv.reader([ln for _, ln in kept]))

@@ -92,9 +92,9 @@ def _domains():
 
 
 def build_parser():
-    """The argument parser (exposed for documentation and tests)."""
+    """Build the argument parser (exposed for documentation and tests)."""
     parser = _Parser(prog="rim-invert",
-                     description="Estimate a harmonic field in a disk from rim and interior "
+                     description="Estimate a harmonic field in a disk or ball from rim and interior "
                                  "sensor readings, with calibrated uncertainty.")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
