@@ -94,8 +94,8 @@ def _domains():
 def build_parser():
     """Build the argument parser (exposed for documentation and tests)."""
     parser = _Parser(prog="rim-invert",
-                     description="Estimate a harmonic field in a disk or ball from rim and interior "
-                                 "sensor readings, with calibrated uncertainty.")
+                     description="Estimate a harmonic field in a disk or ball from rim and "
+                                 "interior sensor readings, with calibrated uncertainty.")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     p = sub.add_parser("fit", help="fit one snapshot of readings")
