@@ -192,17 +192,104 @@ def _update(H, r, y, m, P, u, gains, svar, innov, sens):
 
 
 @numba.njit(cache=True)
-def _forward(H, r, drift, rw, T, t, Y, m, P, tp, every, cp_m, cp_P, cp_t, chi2, n_used,
-             frame_ll):
+def _info_update(H, r, y, m, P, dprior, mprior):
+    """Block update in information form from a diagonal prior (first frame with readings).
+
+    ``P`` holds the diagonal prior on entry; its diagonal and ``m`` are copied to ``dprior``
+    and ``mprior``. Returns (number used, log-likelihood term, chi-square).
+    """
+    ns, p = H.shape
+    for a in range(p):
+        dprior[a] = P[a, a]
+        mprior[a] = m[a]
+    # J = D^-1 + H_o' R_o^-1 H_o,  b = H_o' R_o^-1 (y_o - H_o m^-)
+    J = np.zeros((p, p))
+    b = np.zeros(p)
+    n = 0
+    logdet = 0.0
+    for i in range(ns):
+        yi = y[i]
+        if yi != yi:
+            continue
+        h = H[i]
+        w = 1.0 / r[i]
+        v = yi
+        for c in range(p):
+            v -= h[c] * m[c]
+        for a in range(p):
+            wha = w * h[a]
+            b[a] += wha * v
+            for c in range(p):
+                J[a, c] += wha * h[c]
+        logdet += math.log(r[i])
+        n += 1
+    if n == 0:
+        return 0, 0.0, 0.0
+    for a in range(p):
+        J[a, a] += 1.0 / dprior[a]
+        logdet += math.log(dprior[a])
+    Lc = np.linalg.cholesky(J)
+    for a in range(p):
+        logdet += 2.0 * math.log(Lc[a, a])
+    Pn = np.linalg.inv(J)
+    _symmetrise(Pn)
+    P[:, :] = Pn
+    for a in range(p):
+        x = 0.0
+        for c in range(p):
+            x += Pn[a, c] * b[c]
+        m[a] = mprior[a] + x
+    # v' S^-1 v = (y - H m)' R^-1 (y - H m) + (m - m^-)' D^-1 (m - m^-), a sum of squares
+    chi2 = 0.0
+    for a in range(p):
+        chi2 += (m[a] - mprior[a]) ** 2 / dprior[a]
+    for i in range(ns):
+        yi = y[i]
+        if yi != yi:
+            continue
+        e = yi
+        for c in range(p):
+            e -= H[i, c] * m[c]
+        chi2 += e * e / r[i]
+    return n, -0.5 * (n * _LOG2PI + logdet + chi2), chi2
+
+
+@numba.njit(cache=True)
+def _step(H, r, drift, rw, T, dt, y, m, P, f, q, u, gains, svar, innov, sens, informed,
+          dprior, mprior):
+    """Predict (if ``dt`` is a number) and update one frame.
+
+    Until the first reading of the log (``informed`` false) the covariance is diagonal and the
+    update is done in information form (:func:`_info_update`), which keeps its accuracy under
+    the broad prior of the mean level. Returns (n_used, loglik, chi2, informed, info_frame).
+    """
+    if dt == dt:
+        _transition(dt, T, rw, drift, f, q)
+        _predict(m, P, f, q)
+    else:
+        for a in range(f.size):
+            f[a] = 1.0
+    if not informed:
+        n, ll, c2 = _info_update(H, r, y, m, P, dprior, mprior)
+        return n, ll, c2, n > 0, n > 0
+    n, ll, c2 = _update(H, r, y, m, P, u, gains, svar, innov, sens)
+    return n, ll, c2, True, False
+
+
+@numba.njit(cache=True)
+def _forward(H, r, drift, rw, T, t, Y, m, P, tp, informed, every, cp_m, cp_P, cp_t, cp_i,
+             chi2, n_used, frame_ll):
     """Filter over all frames in place on (m, P); checkpoints before every ``every``-th frame.
 
-    Returns the summed log-likelihood. ``tp`` is the time of the frame before ``t[0]`` (NaN at
-    the start of the log: the first frame has no dynamics step).
+    Returns (summed log-likelihood, informed). ``tp`` is the time of the frame before ``t[0]``
+    (NaN at the start of the log: the first frame has no dynamics step).
     """
     ns, p = H.shape
     f = np.empty(p)
     q = np.empty(p)
     u = np.empty(p)
+    dprior = np.empty(p)
+    mprior = np.empty(p)
     gains = np.empty((ns, p))
     svar = np.empty(ns)
     innov = np.empty(ns)
@@ -214,17 +301,15 @@ def _forward(H, r, drift, rw, T, t, Y, m, P, tp, every, cp_m, cp_P, cp_t, chi2, 
             cp_m[c] = m
             cp_P[c] = P
             cp_t[c] = tp
-        dt = t[k] - tp
-        if dt == dt:
-            _transition(dt, T, rw, drift, f, q)
-            _predict(m, P, f, q)
-        n, ll, c2 = _update(H, r, Y[k], m, P, u, gains, svar, innov, sens)
+            cp_i[c] = informed
+        n, ll, c2, informed, _ = _step(H, r, drift, rw, T, t[k] - tp, Y[k], m, P, f, q, u,
+                                       gains, svar, innov, sens, informed, dprior, mprior)
         n_used[k] = n
         frame_ll[k] = ll
         chi2[k] = c2
         total += ll
         tp = t[k]
-    return total
+    return total, informed
 
 
 @numba.njit(cache=True)
@@ -281,7 +366,22 @@ def _adjoint_update(H, lam, Lam, k, s, v, i, w):
 
 
 @numba.njit(cache=True)
-def _backward(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, every, lam, Lam, Hq, level,
+def _adjoint_info(m, P, lam, Lam, dprior, mprior):
+    r"""Adjoint through the information-form update: :math:`\hat\lambda = -D^{-1}(m^s -
+    m^-)`, :math:`\hat\Lambda = D^{-1} - D^{-1} P^s D^{-1}`, :math:`P^s = P - P\Lambda P`."""
+    p = m.size
+    PL = np.dot(P, Lam)
+    Ps = P - np.dot(PL, P)
+    ms = m - np.dot(P, lam)
+    for a in range(p):
+        lam[a] = -(ms[a] - mprior[a]) / dprior[a]
+        for c in range(p):
+            Lam[a, c] = -0.5 * (Ps[a, c] + Ps[c, a]) / (dprior[a] * dprior[c])
+        Lam[a, a] += 1.0 / dprior[a]
+
+
+@numba.njit(cache=True)
+def _backward(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, cp_i, every, lam, Lam, Hq, level,
               out_m, out_qm, out_qs, out_lm, out_ls):
     """Backward over all segments (last first), recomputing each one's forward pass.
 
@@ -302,6 +402,8 @@ def _backward(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, every, lam, Lam, Hq, l
     q = np.empty(p)
     u = np.empty(p)
     tmp = np.empty(p)
+    dprior = np.empty(p)
+    mprior = np.empty(p)
     m = np.empty(p)
     P = np.empty((p, p))
     n_seg = (n + every - 1) // every
@@ -311,15 +413,16 @@ def _backward(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, every, lam, Lam, Hq, l
         m[:] = cp_m[c]
         P[:, :] = cp_P[c]
         tp = cp_t[c]
+        informed = cp_i[c]
+        j_info = -1
         for k in range(a, b):
             j = k - a
-            dt = t[k] - tp
-            if dt == dt:
-                _transition(dt, T, rw, drift, Fb[j], q)
-                _predict(m, P, Fb[j], q)
-            else:
-                Fb[j, :] = 1.0
-            Nb[j] = _update(H, r, Y[k], m, P, u, Gb[j], Sb[j], Vb[j], Ib[j])[0]
+            res = _step(H, r, drift, rw, T, t[k] - tp, Y[k], m, P, Fb[j], q, u, Gb[j], Sb[j],
+                        Vb[j], Ib[j], informed, dprior, mprior)
+            Nb[j] = res[0]
+            informed = res[3]
+            if res[4]:
+                j_info = j
             Mb[j] = m
             Pb[j] = P
             tp = t[k]
@@ -327,9 +430,12 @@ def _backward(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, every, lam, Lam, Hq, l
             j = k - a
             _outputs(Mb[j], Pb[j], lam, Lam, Hq, level, u, tmp, out_m[k], out_qm[k],
                      out_qs[k], out_lm[k], out_ls[k])
-            for o in range(Nb[j] - 1, -1, -1):
-                _adjoint_update(H, lam, Lam, Gb[j, o], Sb[j, o], Vb[j, o], Ib[j, o], u)
-            _symmetrise(Lam)
+            if j == j_info:
+                _adjoint_info(Mb[j], Pb[j], lam, Lam, dprior, mprior)
+            else:
+                for o in range(Nb[j] - 1, -1, -1):
+                    _adjoint_update(H, lam, Lam, Gb[j, o], Sb[j, o], Vb[j, o], Ib[j, o], u)
+                _symmetrise(Lam)
             fj = Fb[j]
             for x in range(p):
                 lam[x] *= fj[x]
@@ -427,11 +533,12 @@ class FilterCarry:
     P: np.ndarray
     t: float
     loglik: float = 0.0
+    informed: bool = False
 
     @classmethod
     def initial(cls, model):
         """Before the first frame: mean 0, covariance ``diag(prior_var)``, no time yet."""
-        return cls(np.zeros(model.n_coef), np.diag(model.prior_var), np.nan, 0.0)
+        return cls(np.zeros(model.n_coef), np.diag(model.prior_var), np.nan, 0.0, False)
 
 
 @dataclass(frozen=True)
@@ -444,12 +551,15 @@ class Checkpoints:
     P : ndarray of shape (n_checkpoints, n_coef, n_coef)
     t : ndarray of shape (n_checkpoints,)
         Time of the frame before each checkpointed frame (NaN at the start of the log).
+    informed : ndarray of bool, shape (n_checkpoints,)
+        Whether any reading came before the checkpoint (until then the covariance is diagonal).
     every : int
     """
 
     m: np.ndarray
     P: np.ndarray
     t: np.ndarray
+    informed: np.ndarray
     every: int
 
 
@@ -553,13 +663,17 @@ def filter_chunk(model, carry, t, Y, *, every=None):
     n, p = t.size, model.n_coef
     every = int(every or default_segment(n))
     n_cp = (n + every - 1) // every
-    cp = Checkpoints(np.empty((n_cp, p)), np.empty((n_cp, p, p)), np.empty(n_cp), every)
+    cp = Checkpoints(np.empty((n_cp, p)), np.empty((n_cp, p, p)), np.empty(n_cp),
+                     np.zeros(n_cp, np.bool_), every)
     chi2, ll, n_used = np.zeros(n), np.zeros(n), np.zeros(n, np.int64)
     m, P = carry.m.astype(float).copy(), np.array(carry.P, dtype=float, order="C")
-    total = _forward(*model._args(), t, Y, m, P, float(carry.t), every, cp.m, cp.P, cp.t,
-                     chi2, n_used, ll) if n else 0.0
+    total, informed = 0.0, bool(carry.informed)
+    if n:
+        total, informed = _forward(*model._args(), t, Y, m, P, float(carry.t), informed, every,
+                                   cp.m, cp.P, cp.t, cp.informed, chi2, n_used, ll)
     t_last = float(t[-1]) if n else carry.t
-    return FilterCarry(m, P, t_last, carry.loglik + total), cp, chi2, ll, n_used
+    return (FilterCarry(m, P, t_last, carry.loglik + total, bool(informed)), cp, chi2, ll,
+            n_used)
 
 
 def smooth_chunk(model, checkpoints, back, t, Y, Hq=None):
@@ -597,7 +711,7 @@ def smooth_chunk(model, checkpoints, back, t, Y, Hq=None):
     lam, Lam = back.lam.astype(float).copy(), np.array(back.Lam, dtype=float, order="C")
     if n:
         _backward(*model._args(), t, Y, checkpoints.m, checkpoints.P, checkpoints.t,
-                  checkpoints.every, lam, Lam, Hq, level, *out)
+                  checkpoints.informed, checkpoints.every, lam, Lam, Hq, level, *out)
     return (BackwardCarry(lam, Lam), *out)
 
 
