@@ -77,6 +77,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import cached_property
 
 import numba
 import numpy as np
@@ -96,10 +97,13 @@ __all__ = [
 ]
 
 _LOG2PI = math.log(2.0 * math.pi)
+# Reassociation lets the row dot products run as SIMD reductions (rounding order only); no
+# "nnan"/"ninf" flags: the kernel tests readings for NaN.
+_JIT = {"cache": True, "fastmath": {"reassoc", "contract"}}
 
 
 # --- compiled loops ----------------------------------------------------------------------------
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _transition(dt, T, rw, drift, f, q):
     """Diagonals of F and Q for a step ``dt`` into ``f`` and ``q``."""
     e = math.exp(-dt / T)
@@ -113,7 +117,7 @@ def _transition(dt, T, rw, drift, f, q):
             q[j] = drift[j] * e2
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _predict(m, P, f, q):
     """m <- f m, P <- F P F + Q (F, Q diagonal)."""
     p = m.size
@@ -125,7 +129,7 @@ def _predict(m, P, f, q):
         P[a, a] += q[a]
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _symmetrise(P):
     p = P.shape[0]
     for a in range(p):
@@ -135,63 +139,78 @@ def _symmetrise(P):
             P[b, a] = x
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _sym_matvec(P, x, out):
-    """out = P x for symmetric P, as a sum of rows (contiguous, vectorised)."""
+    """out = P x (row dot products; P symmetric wherever rows stand for columns)."""
     p = x.size
-    for b in range(p):
-        out[b] = 0.0
     for a in range(p):
-        xa = x[a]
-        if xa != 0.0:
-            for b in range(p):
-                out[b] += xa * P[a, b]
+        acc = 0.0
+        for b in range(p):
+            acc += P[a, b] * x[b]
+        out[a] = acc
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _update(H, r, y, m, P, u, gains, svar, innov, sens):
     """Sequential scalar updates over the observed readings of one frame.
 
     Records per reading the gain ``k`` (rows of ``gains``), ``s``, the innovation and the
-    sensor index; returns (number used, log-likelihood term, chi-square).
+    sensor index; returns (number used, log-likelihood term, chi-square). One pass over
+    ``P`` per reading: the rank-one update of row ``a`` and that row's share of the next
+    reading's :math:`u = P h` are done together (``P`` symmetric, so rows are columns).
     """
     ns, p = H.shape
     n = 0
+    for i in range(ns):
+        if y[i] == y[i]:  # not NaN
+            sens[n] = i
+            n += 1
+    if n == 0:
+        return 0, 0.0, 0.0
+    un = np.empty(p)
     ll = 0.0
     chi2 = 0.0
-    for i in range(ns):
-        yi = y[i]
-        if yi != yi:  # NaN: missing reading
-            continue
+    _sym_matvec(P, H[sens[0]], u)
+    for o in range(n):
+        i = sens[o]
         h = H[i]
-        _sym_matvec(P, h, u)
         s = r[i]
         hm = 0.0
         for b in range(p):
             s += h[b] * u[b]
             hm += h[b] * m[b]
-        v = yi - hm
+        v = y[i] - hm
         inv = 1.0 / s
-        k = gains[n]
+        k = gains[o]
         for b in range(p):
             k[b] = u[b] * inv
             m[b] += k[b] * v
-        for a in range(p):
-            ka = k[a]
+        if o + 1 < n:
+            hn = H[sens[o + 1]]
+            for a in range(p):
+                ka = k[a]
+                acc = 0.0
+                for b in range(p):
+                    x = P[a, b] - ka * u[b]
+                    P[a, b] = x
+                    acc += x * hn[b]
+                un[a] = acc
             for b in range(p):
-                P[a, b] -= ka * u[b]
-        svar[n] = s
-        innov[n] = v
-        sens[n] = i
+                u[b] = un[b]
+        else:
+            for a in range(p):
+                ka = k[a]
+                for b in range(p):
+                    P[a, b] -= ka * u[b]
+        svar[o] = s
+        innov[o] = v
         ll -= 0.5 * (_LOG2PI + math.log(s) + v * v * inv)
         chi2 += v * v * inv
-        n += 1
-    if n:
-        _symmetrise(P)
+    _symmetrise(P)
     return n, ll, chi2
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _info_update(H, r, y, m, P, dprior, mprior):
     """Block update in information form from a diagonal prior (first frame with readings).
 
@@ -254,7 +273,7 @@ def _info_update(H, r, y, m, P, dprior, mprior):
     return n, -0.5 * (n * _LOG2PI + logdet + chi2), chi2
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _step(H, r, drift, rw, T, dt, y, m, P, f, q, u, gains, svar, innov, sens, informed,
           dprior, mprior):
     """Predict (if ``dt`` is a number) and update one frame.
@@ -276,7 +295,7 @@ def _step(H, r, drift, rw, T, dt, y, m, P, f, q, u, gains, svar, innov, sens, in
     return n, ll, c2, True, False
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _forward(H, r, drift, rw, T, t, Y, m, P, tp, informed, every, cp_m, cp_P, cp_t, cp_i,
              chi2, n_used, frame_ll):
     """Filter over all frames in place on (m, P); checkpoints before every ``every``-th frame.
@@ -312,7 +331,7 @@ def _forward(H, r, drift, rw, T, t, Y, m, P, tp, informed, every, cp_m, cp_P, cp
     return total, informed
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _outputs(m, P, lam, Lam, Hq, level, tmp, tmp2, out_m, out_qm, out_qs, out_lm, out_ls):
     """Smoothed moments of one frame from the filtered (m, P) and the adjoint (lam, Lam)."""
     p = m.size
@@ -340,32 +359,57 @@ def _outputs(m, P, lam, Lam, Hq, level, tmp, tmp2, out_m, out_qm, out_qs, out_lm
         out_ls[j] = math.sqrt(var) if var > 0.0 else 0.0
 
 
-@numba.njit(cache=True)
-def _adjoint_update(H, lam, Lam, k, s, v, i, w):
-    """Adjoint through one scalar update: lam <- C'lam - h v/s, Lam <- C'Lam C + h h'/s."""
+@numba.njit(**_JIT)
+def _adjoint_frame(H, lam, Lam, gains, svar, innov, sens, n, w, wn):
+    r"""Adjoint back through the ``n`` scalar updates of one frame (last reading first).
+
+    Per reading: :math:`\lambda \leftarrow C^\top\lambda - h\nu/s`, :math:`\Lambda
+    \leftarrow \Lambda - h z^\top - z h^\top`, :math:`z = w - \tfrac12(k^\top w + 1/s)h`,
+    :math:`w = \Lambda k`; the pass that updates :math:`\Lambda` also accumulates the next
+    (earlier) reading's :math:`w`.
+    """
+    if n == 0:
+        return
     p = lam.size
-    h = H[i]
-    _sym_matvec(Lam, k, w)
-    kw = 0.0
-    kl = 0.0
-    for b in range(p):
-        kw += k[b] * w[b]
-        kl += k[b] * lam[b]
-    c = kw + 1.0 / s
-    # -h w' - w h' + c h h' = -h z' - z h' with z = w - (c/2) h
-    for b in range(p):
-        w[b] -= 0.5 * c * h[b]
-    for a in range(p):
-        ha = h[a]
-        wa = w[a]
+    _sym_matvec(Lam, gains[n - 1], w)
+    for o in range(n - 1, -1, -1):
+        h = H[sens[o]]
+        k = gains[o]
+        s = svar[o]
+        kw = 0.0
+        kl = 0.0
         for b in range(p):
-            Lam[a, b] -= ha * w[b] + wa * h[b]
-    g = kl + v / s
-    for b in range(p):
-        lam[b] -= h[b] * g
+            kw += k[b] * w[b]
+            kl += k[b] * lam[b]
+        c = 0.5 * (kw + 1.0 / s)
+        for b in range(p):
+            w[b] -= c * h[b]
+        g = kl + innov[o] / s
+        for b in range(p):
+            lam[b] -= h[b] * g
+        if o > 0:
+            kn = gains[o - 1]
+            for a in range(p):
+                ha = h[a]
+                wa = w[a]
+                acc = 0.0
+                for b in range(p):
+                    x = Lam[a, b] - (ha * w[b] + wa * h[b])
+                    Lam[a, b] = x
+                    acc += x * kn[b]
+                wn[a] = acc
+            for b in range(p):
+                w[b] = wn[b]
+        else:
+            for a in range(p):
+                ha = h[a]
+                wa = w[a]
+                for b in range(p):
+                    Lam[a, b] -= ha * w[b] + wa * h[b]
+    _symmetrise(Lam)
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _adjoint_info(m, P, lam, Lam, dprior, mprior):
     r"""Adjoint through the information-form update: :math:`\hat\lambda = -D^{-1}(m^s -
     m^-)`, :math:`\hat\Lambda = D^{-1} - D^{-1} P^s D^{-1}`, :math:`P^s = P - P\Lambda P`."""
@@ -380,7 +424,7 @@ def _adjoint_info(m, P, lam, Lam, dprior, mprior):
         Lam[a, a] += 1.0 / dprior[a]
 
 
-@numba.njit(cache=True)
+@numba.njit(**_JIT)
 def _backward(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, cp_i, every, lam, Lam, Hq, level,
               out_m, out_qm, out_qs, out_lm, out_ls):
     """Backward over all segments (last first), recomputing each one's forward pass.
@@ -433,9 +477,7 @@ def _backward(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, cp_i, every, lam, Lam,
             if j == j_info:
                 _adjoint_info(Mb[j], Pb[j], lam, Lam, dprior, mprior)
             else:
-                for o in range(Nb[j] - 1, -1, -1):
-                    _adjoint_update(H, lam, Lam, Gb[j, o], Sb[j, o], Vb[j, o], Ib[j, o], u)
-                _symmetrise(Lam)
+                _adjoint_frame(H, lam, Lam, Gb[j], Sb[j], Vb[j], Ib[j], Nb[j], u, tmp)
             fj = Fb[j]
             for x in range(p):
                 lam[x] *= fj[x]
@@ -518,8 +560,34 @@ class KernelModel:
         """Indices of the random-walk (mean-level) columns."""
         return np.flatnonzero(self.random_walk)
 
+    @property
+    def width(self) -> int:
+        """State width inside the kernel: ``n_coef`` rounded up to a multiple of 8.
+
+        The extra coefficients have zero columns in ``H`` (never observed, never coupled to
+        the others: every product with them is an exact zero), so they change no result; they
+        let the compiled row loops run in whole SIMD vectors.
+        """
+        return -(-self.n_coef // 8) * 8
+
+    def pad(self, A):
+        """``A`` with zero columns appended up to :attr:`width` (for ``H`` or a query)."""
+        A = np.asarray(A, dtype=float)
+        out = np.zeros(A.shape[:-1] + (self.width,))
+        out[..., : self.n_coef] = A
+        return out
+
+    @cached_property
+    def padded(self):
+        """(H, noise_var, prior_var, drift_var, random_walk) at :attr:`width`."""
+        extra = self.width - self.n_coef
+        return (self.pad(self.H), self.noise_var, np.r_[self.prior_var, np.ones(extra)],
+                np.r_[self.drift_var, np.ones(extra)],
+                np.r_[self.random_walk, np.zeros(extra, np.bool_)])
+
     def _args(self):
-        return (self.H, self.noise_var, self.drift_var, self.random_walk, self.time_scale)
+        H, r, _, drift, rw = self.padded
+        return (H, r, drift, rw, self.time_scale)
 
 
 @dataclass(frozen=True)
@@ -538,7 +606,7 @@ class FilterCarry:
     @classmethod
     def initial(cls, model):
         """Before the first frame: mean 0, covariance ``diag(prior_var)``, no time yet."""
-        return cls(np.zeros(model.n_coef), np.diag(model.prior_var), np.nan, 0.0, False)
+        return cls(np.zeros(model.width), np.diag(model.padded[2]), np.nan, 0.0, False)
 
 
 @dataclass(frozen=True)
@@ -576,7 +644,7 @@ class BackwardCarry:
     @classmethod
     def final(cls, model):
         """After the last frame of the log."""
-        p = model.n_coef
+        p = model.width
         return cls(np.zeros(p), np.zeros((p, p)))
 
 
@@ -660,7 +728,7 @@ def filter_chunk(model, carry, t, Y, *, every=None):
     n_used : ndarray of int, shape (n_frames,)
     """
     t, Y = _check_log(model, t, Y, carry.t)
-    n, p = t.size, model.n_coef
+    n, p = t.size, model.width
     every = int(every or default_segment(n))
     n_cp = (n + every - 1) // every
     cp = Checkpoints(np.empty((n_cp, p)), np.empty((n_cp, p, p)), np.empty(n_cp),
@@ -701,18 +769,19 @@ def smooth_chunk(model, checkpoints, back, t, Y, Hq=None):
     t = np.ascontiguousarray(t, dtype=float)
     Y = np.ascontiguousarray(Y, dtype=float)
     p = model.n_coef
-    Hq = np.zeros((0, p)) if Hq is None else np.ascontiguousarray(np.atleast_2d(Hq), float)
-    if Hq.shape[1] != p:
-        raise ValueError(f"The 'Hq' parameter must have {p} columns. Got {Hq.shape[1]}.")
+    Hq = np.zeros((0, p)) if Hq is None else np.atleast_2d(np.asarray(Hq, float))
+    if Hq.ndim != 2 or Hq.shape[1] != p:
+        raise ValueError(f"The 'Hq' parameter must have {p} columns. Got shape {Hq.shape}.")
+    Hq = model.pad(Hq)
     level = model.level_columns
     n = t.size
-    out = (np.empty((n, p)), np.empty((n, Hq.shape[0])), np.empty((n, Hq.shape[0])),
+    out = (np.empty((n, model.width)), np.empty((n, Hq.shape[0])), np.empty((n, Hq.shape[0])),
            np.empty((n, level.size)), np.empty((n, level.size)))
     lam, Lam = back.lam.astype(float).copy(), np.array(back.Lam, dtype=float, order="C")
     if n:
         _backward(*model._args(), t, Y, checkpoints.m, checkpoints.P, checkpoints.t,
                   checkpoints.informed, checkpoints.every, lam, Lam, Hq, level, *out)
-    return (BackwardCarry(lam, Lam), *out)
+    return (BackwardCarry(lam, Lam), out[0][:, :p], *out[1:])
 
 
 def smooth_exact(H, noise_var, prior_var, drift_var, random_walk, time_scale, t, Y, Hq=None,
