@@ -60,7 +60,7 @@ def layout():
 
 
 def make_model():
-    """The batch runner's dynamics on the demo disk at the default truncation."""
+    """Build the batch runner's dynamics on the demo disk at the default truncation."""
     dom = make_domain(RADIUS)
     pts = layout()
     shape = SmoothnessPrior(s=2.0).shape(dom.eigenvalues, dom.degrees)
@@ -71,7 +71,7 @@ def make_model():
 
 
 def make_log(n, rng=0):
-    """Times and readings (SYNTHETIC) as described in the module docstring."""
+    """Generate times and readings (SYNTHETIC) as described in the module docstring."""
     rng = np.random.default_rng(rng)
     pts = layout()
     theta = np.arctan2(pts[:, 1], pts[:, 0])
@@ -136,6 +136,7 @@ def peak_memory(n):
 
 
 def main(n=1_000_000, n_exact=3000, mem_sizes=(100_000, 1_000_000)):
+    """Print the figures listed in the module docstring."""
     dom, model = make_model()
     km = kernel.KernelModel.from_dynamics(model)
     Hq = dom.design(QUERY)
