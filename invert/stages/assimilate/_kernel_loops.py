@@ -323,7 +323,20 @@ def _adjoint_frame(H, lam, Lam, gains, svar, innov, sens, n, w, wn):
                 wa = w[a]
                 for b in range(p):
                     Lam[a, b] -= ha * w[b] + wa * h[b]
-    _symmetrise(Lam)
+
+
+@numba.njit(**_JIT)
+def _scale_symmetric(lam, Lam, f):
+    """Take the adjoint through the dynamics: lam <- F lam, Lam <- F sym(Lam) F, one pass."""
+    p = lam.size
+    for a in range(p):
+        lam[a] *= f[a]
+        fa = f[a]
+        Lam[a, a] *= fa * fa
+        for b in range(a):
+            x = 0.5 * (Lam[a, b] + Lam[b, a]) * (fa * f[b])
+            Lam[a, b] = x
+            Lam[b, a] = x
 
 
 @numba.njit(**_JIT)
@@ -399,9 +412,4 @@ def backward_pass(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, cp_i, every, lam, 
                 _adjoint_info(Mb[j], Pb[j], lam, Lam, dprior, mprior)
             else:
                 _adjoint_frame(H, lam, Lam, Gb[j], Sb[j], Vb[j], Ib[j], Nb[j], u, tmp)
-            fj = Fb[j]
-            for x in range(p):
-                lam[x] *= fj[x]
-                fx = fj[x]
-                for y in range(p):
-                    Lam[x, y] *= fx * fj[y]
+            _scale_symmetric(lam, Lam, Fb[j])

@@ -293,6 +293,10 @@ class ExactSmoothing:
     loglik: float
 
 
+def _as_kernel_model(model):
+    return model if isinstance(model, KernelModel) else KernelModel.from_dynamics(model)
+
+
 def _check_log(model, t, Y, t_prev):
     t = np.ascontiguousarray(t, dtype=float)
     Y = np.ascontiguousarray(Y, dtype=float)
@@ -321,7 +325,7 @@ def filter_chunk(model, carry, t, Y, *, every=None):
 
     Parameters
     ----------
-    model : KernelModel
+    model : KernelModel or CoefficientDynamics
     carry : FilterCarry
         After the previous chunk (``FilterCarry.initial(model)`` at the start of the log).
     t : ndarray of shape (n_frames,)
@@ -339,6 +343,7 @@ def filter_chunk(model, carry, t, Y, *, every=None):
     chi2, frame_loglik : ndarray of shape (n_frames,)
     n_used : ndarray of int, shape (n_frames,)
     """
+    model = _as_kernel_model(model)
     t, Y = _check_log(model, t, Y, carry.t)
     n, p = t.size, model.width
     every = int(every or default_segment(n))
@@ -361,7 +366,7 @@ def smooth_chunk(model, checkpoints, back, t, Y, Hq=None):
 
     Parameters
     ----------
-    model : KernelModel
+    model : KernelModel or CoefficientDynamics
     checkpoints : Checkpoints
         From :func:`filter_chunk` on the same ``t``, ``Y``.
     back : BackwardCarry
@@ -378,6 +383,7 @@ def smooth_chunk(model, checkpoints, back, t, Y, Hq=None):
     query_mean, query_sd : ndarray of shape (n_frames, n_query)
     level_mean, level_sd : ndarray of shape (n_frames, n_level)
     """
+    model = _as_kernel_model(model)
     t = np.ascontiguousarray(t, dtype=float)
     Y = np.ascontiguousarray(Y, dtype=float)
     p = model.n_coef
@@ -433,8 +439,7 @@ def smooth_exact(H, noise_var, prior_var, drift_var, random_walk, time_scale, t,
 
 def smooth_model(model, t, Y, Hq=None, *, segment=None) -> ExactSmoothing:
     """:func:`smooth_exact` for a :class:`KernelModel` (or a ``CoefficientDynamics``)."""
-    if not isinstance(model, KernelModel):
-        model = KernelModel.from_dynamics(model)
+    model = _as_kernel_model(model)
     carry, cp, chi2, ll, n_used = filter_chunk(model, FilterCarry.initial(model), t, Y,
                                                every=segment)
     _, mean, qm, qs, lm, ls = smooth_chunk(model, cp, BackwardCarry.final(model), t, Y, Hq)
@@ -447,7 +452,6 @@ def filter_loglik(model, t, Y) -> float:
     ``model`` is a :class:`KernelModel` or a ``CoefficientDynamics``; memory does not grow with
     the log beyond the per-frame figures.
     """
-    if not isinstance(model, KernelModel):
-        model = KernelModel.from_dynamics(model)
+    model = _as_kernel_model(model)
     n = len(t)
     return filter_chunk(model, FilterCarry.initial(model), t, Y, every=max(n, 1))[0].loglik
