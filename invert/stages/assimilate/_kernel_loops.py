@@ -36,14 +36,19 @@ def _transition(dt, T, rw, drift, f, q):
 
 @numba.njit(**_JIT)
 def _predict(m, P, f, q):
-    """Predict in place: m <- f m, P <- F P F + Q (F, Q diagonal)."""
+    """Predict in place: m <- f m, P <- F sym(P) F + Q (F, Q diagonal), one triangular pass.
+
+    The updates leave ``P`` symmetric only to rounding; the symmetrisation is done here.
+    """
     p = m.size
     for a in range(p):
         m[a] *= f[a]
         fa = f[a]
-        for b in range(p):
-            P[a, b] *= fa * f[b]
-        P[a, a] += q[a]
+        P[a, a] = P[a, a] * (fa * fa) + q[a]
+        for b in range(a):
+            x = 0.5 * (P[a, b] + P[b, a]) * (fa * f[b])
+            P[a, b] = x
+            P[b, a] = x
 
 
 @numba.njit(**_JIT)
@@ -123,7 +128,6 @@ def _update(H, r, y, m, P, u, gains, svar, innov, sens):
         innov[o] = v
         ll -= 0.5 * (_LOG2PI + math.log(s) + v * v * inv)
         chi2 += v * v * inv
-    _symmetrise(P)
     return n, ll, chi2
 
 
