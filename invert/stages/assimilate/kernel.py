@@ -59,7 +59,8 @@ Memory. The forward pass keeps the filtered state at checkpoints every ``segment
 the backward pass recomputes each segment's forward pass from its checkpoint, keeping that
 segment's filtered covariances and scalar gains only. With the default ``segment`` of about
 :math:`\sqrt{n}` frames the working memory beyond the outputs grows like :math:`\sqrt{n}\,p^2`
-(about 40 MB at a million frames of 45 coefficients), against :math:`n p` for the outputs.
+(about 50 MB at a million frames of 45 coefficients, padded to 48), against :math:`n p`
+for the outputs.
 
 References
 ----------
@@ -206,7 +207,9 @@ class KernelModel:
 class FilterCarry:
     """Filtered state after a chunk, to start the next chunk from (small).
 
-    ``t`` is the time of the last frame filtered (NaN before the first frame of the log).
+    ``t`` is the time of the last frame filtered (NaN before the first frame of the log);
+    ``m`` and ``P`` have the kernel's padded width (:attr:`KernelModel.width`), as do the
+    arrays of :class:`Checkpoints` and :class:`BackwardCarry`.
     """
 
     m: np.ndarray
