@@ -44,7 +44,7 @@ import numpy as np  # noqa: E402
 from invert import make_domain  # noqa: E402
 from invert.prior import SmoothnessPrior  # noqa: E402
 from invert.stages.assimilate import kernel  # noqa: E402
-from invert.stages.assimilate.core import CoefficientDynamics, run_smoother  # noqa: E402
+from invert.stages.assimilate import CoefficientDynamics, run_smoother  # noqa: E402
 
 RADIUS = 0.25
 PROBES = np.array([[0.05, 0.0], [-0.08, 0.06]])  # datasets/demo_layout.csv

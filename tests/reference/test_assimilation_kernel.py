@@ -16,7 +16,7 @@ Oracles, both outside the kernel's algebra:
 
 import numpy as np
 import pytest
-from invert.stages.assimilate.core import CoefficientDynamics, run_smoother
+from invert.stages.assimilate import CoefficientDynamics, run_smoother
 from scipy import linalg, stats
 
 from invert.geometry.disk import Disk
