@@ -216,21 +216,9 @@ class Ball(SphereGrids, RoundDomain):
             raise ValueError(f"The 's' parameter must be > 1 for a ball (finite pointwise prior "
                              f"variance on the sphere). Got {s!r} instead.")
 
-    def with_modes(self, n_modes: int) -> Ball:
-        """Return the same ball with another truncation degree (same class)."""
-        return type(self)(self.radius, self.center, n_modes)
-
-    def describe(self) -> dict:
-        """Plain description for summaries."""
-        return {
-            "domain": self.kind,
-            "radius": self.radius,
-            "center": list(self.center),
-            "n_modes": self.n_modes,
-            "n_coefficients": self.n_coef,
-            "basis": "rho^l * sqrt(4 pi) * real spherical harmonic Y_lm, column l^2 + l + m; "
-                     "orthonormal under the surface mean, constant column 1",
-        }
+    #: Basis, as summaries describe it.
+    basis_description = ("rho^l * sqrt(4 pi) * real spherical harmonic Y_lm, column l^2 + l + m; "
+                     "orthonormal under the surface mean, constant column 1")
 
     # --- geometry ------------------------------------------------------------------------------
     def _xi(self, points) -> np.ndarray:

@@ -199,6 +199,19 @@ class RoundDomain:
         return None
 
     # --- geometry ------------------------------------------------------------------------------
+    def with_modes(self, n_modes: int):
+        """Return the same region with another truncation degree (same class: subclasses stay)."""
+        return type(self)(self.radius, self.center, n_modes)
+
+    def describe(self) -> dict:
+        """Plain description for summaries (``basis`` added by domains that describe theirs)."""
+        out = {"domain": self.kind, "radius": self.radius, "center": list(self.center),
+               "n_modes": self.n_modes, "n_coefficients": self.n_coef}
+        basis = getattr(self, "basis_description", None)
+        if basis:
+            out["basis"] = basis
+        return out
+
     def relative_radius(self, points) -> np.ndarray:
         r"""Relative radius :math:`\rho = |x - c|/R` of each point (no snapping or checks).
 

@@ -199,20 +199,6 @@ class Disk(RoundDomain):
         """Angle-based rim tools (:class:`~invert.geometry.arcs.CircleArcs`)."""
         return CircleArcs(self)
 
-    def with_modes(self, n_modes: int) -> Disk:
-        """Return the same disk with another truncation degree (same class: subclasses stay)."""
-        return type(self)(self.radius, self.center, n_modes)
-
-    def describe(self) -> dict:
-        """Plain description for summaries."""
-        return {
-            "domain": self.kind,
-            "radius": self.radius,
-            "center": list(self.center),
-            "n_modes": self.n_modes,
-            "n_coefficients": self.n_coef,
-        }
-
     # --- geometry ------------------------------------------------------------------------------
     def _w(self, points) -> np.ndarray:
         p = np.asarray(points, dtype=float)
