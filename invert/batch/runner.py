@@ -283,7 +283,7 @@ def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
 
 
 def _keep_log_warnings(manifest, source):
-    """The source's warnings, kept in the manifest (a resumed run may not re-read the log)."""
+    """Return the log's warnings, kept in the manifest (a resumed run may not re-read the log)."""
     kept = manifest.setdefault("log_warnings", [])
     for w in getattr(source, "warnings", []):
         if w not in kept:

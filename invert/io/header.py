@@ -7,7 +7,8 @@ column mapping as a :class:`Header`.
 
 A logger that restarts may write its header again mid-file, possibly with the columns in
 another order. :func:`header_lines` finds such lines in a piece of a CSV log (a line whose first
-cell is ``time`` or a column name of the log or layout); the reader then reads the frames after
+cell is ``time`` or a column name of the log or layout, and none of whose cells is a number;
+names that read as numbers cannot be told from data, so are not looked for); the reader then reads the frames after
 the line with the new header's mapping. A repeated header is held to the same rules as the
 first one, so one that cannot be mapped (no ``time`` column, an unknown or doubled sensor) is
 an :class:`~invert.errors.InputError` naming its line; it is never read as a frame.
@@ -106,9 +107,10 @@ def parse_header(names, sensors, source, *, line=None):
 
 
 def header_pattern(names, sensors):
-    """A regex (bytes) matching lines whose first cell is ``time`` or a column/sensor name."""
-    words = sorted({"time", *(str(n).strip() for n in names), *map(str, sensors)} - {""},
-                   key=len, reverse=True)
+    """Return a regex (bytes) for lines whose first cell is ``time`` or a column/sensor name."""
+    # names that read as numbers cannot tell a header from a data row: left out
+    words = sorted({w for w in ("time", *(str(n).strip() for n in names), *map(str, sensors))
+                    if w and not _is_number(w)}, key=len, reverse=True)
     alt = b"|".join(re.escape(w.encode()) for w in words)
     return re.compile(rb'(?mi)^[ \t]*"?(?:' + alt + rb')"?[ \t]*(?:,|\r?$)')
 
@@ -133,5 +135,16 @@ def header_lines(piece, pattern):
         end = piece.find(b"\n", start)
         end = len(piece) if end < 0 else end + 1
         text = bytes(piece[start:end]).decode("utf-8", errors="replace").rstrip("\r\n")
-        out.append((piece.count(b"\n", 0, start), start, end, next(csv.reader([text]))))
+        cells = next(csv.reader([text]))
+        if any(_is_number(c) for c in cells):  # a data row (a header holds names only)
+            continue
+        out.append((piece.count(b"\n", 0, start), start, end, cells))
     return out
+
+
+def _is_number(text):
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True

@@ -316,7 +316,7 @@ class WideLogReader:
                 yield ch
 
     def _segment_chunk(self, segment, start):
-        """The chunk of one segment (records numbered from ``start``) and its record count."""
+        """Return one segment's chunk (records numbered from ``start``) and record count."""
         batch, malformed, n_rec, h = segment
         ch = self._convert(batch, start, h) if batch is not None and batch.num_rows else None
         if not malformed:
