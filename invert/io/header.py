@@ -6,12 +6,13 @@ layout, a sensor given twice are :class:`~invert.errors.InputError` lines) and r
 column mapping as a :class:`Header`.
 
 A logger that restarts may write its header again mid-file, possibly with the columns in
-another order. :func:`header_lines` finds such lines in a piece of a CSV log (a line whose first
-cell is ``time`` or a column name of the log or layout, and none of whose cells is a number;
-names that read as numbers cannot be told from data, so are not looked for); the reader then reads the frames after
-the line with the new header's mapping. A repeated header is held to the same rules as the
-first one, so one that cannot be mapped (no ``time`` column, an unknown or doubled sensor) is
-an :class:`~invert.errors.InputError` naming its line; it is never read as a frame.
+another order. :func:`header_lines` finds such lines in a piece of a CSV log: a line whose
+first cell is ``time`` or a column name of the log or layout, and none of whose cells is a
+number (names that read as numbers cannot be told from data, so are not looked for). The
+reader then reads the frames after the line with the new header's mapping. A repeated header
+is held to the same rules as the first one, so one that cannot be mapped (no ``time`` column,
+an unknown or doubled sensor) is an :class:`~invert.errors.InputError` naming its line; it is
+never read as a frame.
 """
 
 from __future__ import annotations

@@ -22,6 +22,7 @@ import numpy as np
 
 from ..errors import InputError
 from .arrow import float_values
+from .cells import NULLS, LineCounter, parse_cells, time_cells
 from .header import header_lines, header_pattern, parse_header
 from .sources import Chunk
 
@@ -29,8 +30,6 @@ __all__ = ["WideLogReader", "log_signature"]
 
 _NONBLANK = re.compile(rb"\S")
 
-#: Cells read as missing readings (pyarrow's defaults cover these and more).
-_NULLS = ["", "NaN", "nan", "NA", "N/A", "null", "NULL", "None", "-nan", "#N/A"]
 
 
 def log_signature(path):
@@ -223,7 +222,7 @@ class WideLogReader:
             types = {n: (time_type if i == header.time_index else sensor_type)
                      for i, n in enumerate(names)}
             return pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
-                                       null_values=_NULLS, quoted_strings_can_be_null=True)
+                                       null_values=NULLS, quoted_strings_can_be_null=True)
 
         # Fast path: every column float64 (numeric times). After a failure, the time column as
         # text (numbers or date-times) with float64 sensors, then everything as text (the
@@ -262,7 +261,7 @@ class WideLogReader:
         with open(self.path, "rb") as fh:
             for _ in range(self.skip_rows + 1):  # comments and the header
                 fh.readline()
-            lines = _LineCounter(self.path, fh.tell(), self.skip_rows + 1)
+            lines = LineCounter(self.path, fh.tell(), self.skip_rows + 1)
             pos = fh.tell()  # file offset of the current piece
             while True:
                 data = fh.read(block)
@@ -397,7 +396,7 @@ class WideLogReader:
                     vals = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
                     bad = np.zeros(L, bool)
                 except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-                    vals, bad = _parse_cells(col)
+                    vals, bad = parse_cells(col)
             vals = np.asarray(vals, float)
             nonfinite = np.isinf(vals)
             if bad.any() or nonfinite.any():
@@ -453,66 +452,8 @@ class WideLogReader:
 
     def _time_cells(self, cells):
         """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
-        import pandas as pd
-
-        n = len(cells)
-        t = np.full(n, np.nan)
-        bad = np.zeros(n, np.int8)
-        text = np.array(["" if c is None else str(c).strip() for c in cells], dtype=object)
-        blank = np.array([x == "" or x in _NULLS for x in text])
-        bad[blank] = 2
-        num = pd.to_numeric(pd.Series(text), errors="coerce").to_numpy(float)
-        if self.time_kind is None:
-            first = next((i for i in range(n) if not blank[i]), None)
-            if first is not None:
-                self.time_kind = "number" if np.isfinite(num[first]) else "datetime"
-        if self.time_kind == "number":
-            ok = np.isfinite(num) & ~blank
-            t[ok] = num[ok]
-        elif self.time_kind == "datetime":
-            dt = pd.to_datetime(pd.Series(text), errors="coerce", format="ISO8601", utc=True)
-            ok = dt.notna().to_numpy() & ~blank
-            # nanoseconds whatever unit pandas chose (pandas 3 may give microseconds)
-            vals = dt.dt.tz_localize(None).to_numpy().astype("datetime64[ns]").view(np.int64)
-            t[ok] = vals[ok] / 1e9
-        else:
-            ok = np.zeros(n, bool)
-        bad[~ok & ~blank] = 1
+        t, bad, self.time_kind = time_cells(cells, self.time_kind)
         return t, bad
-
-
-class _LineCounter:
-    """Number of lines before a byte offset of a file, counted on demand, front to back."""
-
-    def __init__(self, path, offset, lines):
-        self.path, self.offset, self.lines = path, offset, lines
-
-    def before(self, offset):
-        with open(self.path, "rb") as fh:
-            fh.seek(self.offset)
-            left = offset - self.offset
-            while left > 0:
-                data = fh.read(min(left, 1 << 24))
-                if not data:
-                    break
-                self.lines += data.count(b"\n")
-                left -= len(data)
-        self.offset = offset
-        return self.lines
-
-
-def _parse_cells(col):
-    """Numbers from a string column cell by cell; ``bad`` marks non-blank non-numbers."""
-    import pandas as pd
-
-    s = pd.Series(col.to_pylist(), dtype=object)
-    blank = s.isna().to_numpy()
-    vals = pd.to_numeric(s.str.strip(), errors="coerce").to_numpy(float)
-    bad = np.isnan(vals) & ~blank
-    # literal NaN spellings are missing readings, not bad cells
-    low = s.str.strip().str.lower()
-    bad &= ~low.isin([v.lower() for v in _NULLS]).to_numpy()
-    return vals, bad
 
 
 def _concat(*parts):
