@@ -219,7 +219,7 @@ def merge_outputs(work, n_chunks, out, fmt, kind):
     work : WorkFolder
     n_chunks : int
     out : Path
-        Where the merged files go (the run's staging folder, :mod:`invert.batch.publish`).
+        Where the merged files go (the run's staging folder, :mod:`invert.io.publish`).
     fmt : {"csv", "parquet"}
     kind : {"number", "datetime"}
         Time kind of the empty tables written when there is no chunk.

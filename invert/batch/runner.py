@@ -24,7 +24,7 @@ rerun with ``resume=True`` continues after the last completed chunk, and the mer
 identical. The working folder holds data only (no pickle), and every chunk re-read on resume
 is checked against the content hash recorded when it was first read.
 
-The output folder (:mod:`invert.batch.publish`): one run at a time holds it (a lock file; a
+The output folder (:mod:`invert.io.publish`): one run at a time holds it (a lock file; a
 second run is refused with one line naming the folder and the holder's pid), and the finished
 set (frames, query, summary.json) is written into a staging folder beside it and swapped in at
 once, so the folder always holds either the complete old set or the complete new one.
@@ -40,6 +40,7 @@ from pathlib import Path
 import numpy as np
 
 from ..io.logs import open_log
+from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
 from ..io.readings import check_inside, load_layout, load_points
 from ..io.writers import write_json
 from ..report.files import CAUTIONS, to_jsonable
@@ -47,7 +48,6 @@ from .calibration import pooled_evidence_fit
 from .checkpoint import WorkFolder, merge_outputs
 from .engines import ENGINES, make_engine
 from .job import BatchJob, job_chunks
-from .publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
 from .static import StaticInverter
 from .statuses import frame_statuses
 
@@ -185,10 +185,10 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
 def run_job(job, source, engine, *, on_chunk=None):
     """Run ``job`` over ``source`` on ``engine``; publish the outputs and the summary.
 
-    The output folder is locked for the run (:class:`~invert.batch.publish.OutputLock`,
+    The output folder is locked for the run (:class:`~invert.io.publish.OutputLock`,
     released on every exit); stale staging folders of killed runs are removed; the merged
     frames and query and summary.json are written into a staging folder and swapped in at
-    once (:func:`~invert.batch.publish.publish`).
+    once (:func:`~invert.io.publish.publish`).
 
     Parameters
     ----------

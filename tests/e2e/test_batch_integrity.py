@@ -22,10 +22,10 @@ import pytest
 
 from invert.batch import LocalEngine, job_chunks
 from invert.batch.checkpoint import WorkFolder
-from invert.batch.publish import LOCK_NAME
 from invert.batch.runner import job_from_files, run_batch
 from invert.cli import main
 from invert.io.logs import open_log
+from invert.io.publish import LOCK_NAME
 
 ROOT = Path(__file__).resolve().parents[2]
 LOG, LAYOUT = ROOT / "datasets" / "demo_log.csv", ROOT / "datasets" / "demo_layout.csv"
@@ -433,4 +433,5 @@ def test_killed_run_leaves_nothing_that_looks_finished(tmp_path):
     assert not (out / "frames.parquet").exists() and (out / LOCK_NAME).exists()
     r = _cli(LOG, out, "--chunk-rows", "40", "--resume", "--format", "parquet")
     assert r.returncode == 0, r.stderr
+    assert "took over the lock" in r.stderr and f"pid {proc.pid}" in r.stderr
     _same(ref, out)

@@ -1,4 +1,4 @@
-"""The output folder of a batch run: one run at a time, and the finished set published at once.
+"""An output folder: one run at a time, and the finished set of outputs published at once.
 
 :class:`OutputLock` makes a run the only writer of its output folder: a lock file
 ``OUT/.rim-invert.lock`` holding the owner's pid and host, created with
@@ -17,8 +17,9 @@ folders of killed runs are removed at the start of the next run on
 the same folder (:func:`clean_stale_staging`; only names of this module's pattern, and only
 while the lock is held).
 
-The output folder may hold only what batch writes (:data:`OWN_NAMES`): a folder with other
-files is refused at the start, since the swap replaces the folder as a whole.
+Used by ``rim-invert batch`` (:mod:`invert.batch.runner`). The output folder may hold only what
+batch writes (:data:`OWN_NAMES`): a folder with other files is refused at the start, since the
+swap replaces the folder as a whole.
 """
 
 from __future__ import annotations
