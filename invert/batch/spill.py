@@ -2,13 +2,14 @@
 
 A state is a tree of dicts, lists, tuples, numbers, strings, bytes, None, NumPy arrays and
 instances of a few named dataclasses (the filter and smoother states). :func:`save_state`
-writes it as one ``.npz`` file: every array under its own name, and the tree itself as JSON
-(arrays replaced by their names) in the entry ``__tree__``. :func:`load_state` reads it back
-with ``numpy.load(allow_pickle=False)``, so a crafted file can hold only data: no object
-array is read, and only the dataclasses the caller names are built (from their fields).
-Types survive the round trip exactly (array dtypes, NumPy scalars, tuple vs list, the order
-of dict keys, floats through their shortest ``repr``), so a resumed run computes the same
-numbers as an uninterrupted one.
+writes it as one ``.npz`` file: the arrays, stacked by dtype and shape, and the tree itself
+as JSON (arrays replaced by their places in the stacks) in the entry ``__tree__``.
+:func:`load_state` reads it back with ``numpy.load(allow_pickle=False)``, so a crafted file
+can hold only data: no object array is read, and only the dataclasses the caller names are
+built (from their fields). Arrays come back as copies in their own memory order. Types
+survive the round trip exactly (array dtypes, NumPy scalars, tuple vs list, the order of dict
+keys, floats through their shortest ``repr``), so a resumed run computes the same numbers as
+an uninterrupted one.
 """
 
 from __future__ import annotations
@@ -100,12 +101,32 @@ def save_state(obj, path, classes=()):
     path = Path(path)
     arrays = []
     tree = _encode(obj, arrays, {c.__name__: c for c in classes})
-    payload = {f"a{i}": a for i, a in enumerate(arrays)}
-    payload["__tree__"] = np.frombuffer(json.dumps(tree).encode(), np.uint8)
+    payload, where = _pack(arrays)
+    payload["__tree__"] = np.frombuffer(json.dumps({"tree": tree, "where": where}).encode(),
+                                        np.uint8)
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     with open(tmp, "wb") as fh:
         np.savez(fh, **payload)
     os.replace(tmp, path)
+
+
+def _pack(arrays):
+    """Stack the C-ordered arrays of one dtype and shape into one entry each.
+
+    A segment in exact mode holds one covariance per frame: thousands of small arrays become
+    a few entries of the file. Other arrays are stored alone, in their own memory order.
+    """
+    groups = {}
+    for i, a in enumerate(arrays):
+        key = (a.dtype.str, a.shape) if a.flags.c_contiguous else ("single", i)
+        groups.setdefault(key, []).append(i)
+    payload, where = {}, [None] * len(arrays)
+    for g, idx in enumerate(groups.values()):
+        payload[f"g{g}"] = (np.stack([arrays[i] for i in idx]) if len(idx) > 1
+                            else np.expand_dims(arrays[idx[0]], 0))
+        for j, i in enumerate(idx):
+            where[i] = [g, j]
+    return payload, where
 
 
 def load_state(path, classes=()):
@@ -122,7 +143,8 @@ def load_state(path, classes=()):
     object
     """
     with np.load(path, allow_pickle=False) as z:
-        tree = json.loads(z["__tree__"].tobytes().decode())
-        n = sum(1 for k in z.files if k != "__tree__")
-        arrays = [z[f"a{i}"] for i in range(n)]
-    return _decode(tree, arrays, {c.__name__: c for c in classes})
+        head = json.loads(z["__tree__"].tobytes().decode())
+        stacks = {name: z[name] for name in z.files if name != "__tree__"}
+    # each array its own copy, in its own memory order (F-ordered ones were stored alone)
+    arrays = [np.array(stacks[f"g{g}"][j], order="K") for g, j in head["where"]]
+    return _decode(head["tree"], arrays, {c.__name__: c for c in classes})
