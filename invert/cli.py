@@ -349,6 +349,8 @@ def _cmd_batch(args):
                         max_transient=args.max_transient or None,
                         # exact mode on dask runs the parallel-in-time smoother
                         parallel_in_time=args.engine == "dask" and not args.max_transient)
+    for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
+        print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]
     print(f"batch ({summary['method']}, {summary['engine']}): {f['total']} frames, "
           f"{f.get('ok', 0)} ok, {f.get('no-data', 0)} no-data, {f.get('rejected', 0)} "

@@ -4,7 +4,8 @@ Sequential algorithm (the default): the forward pass filters chunk after chunk a
 filtered segment to the working folder (so memory stays bounded); the backward pass smooths
 the segments from the last to the first and writes each chunk's part files. The filter and
 smoother states passed from one chunk to its neighbour are small and are checkpointed with the
-manifest, so an interrupted run resumes at the chunk where it stopped. Each chunk's step is an
+manifest, so an interrupted run resumes at the chunk where it stopped. Spilled segments and
+states are ``.npz`` data files (:mod:`invert.batch.spill`), never pickles. Each chunk's step is an
 engine task that receives its neighbour's state (the chain is sequential by nature).
 
 Parallel-in-time algorithm (``job.parallel_in_time``, exact mode only): chunk summaries
@@ -26,6 +27,7 @@ from ..prior import SmoothnessPrior
 from ..problem import interval_z
 from ..stages.assimilate import (
     CoefficientDynamics,
+    FilterSegment,
     FilterState,
     SmootherState,
     combine_filter,
@@ -40,7 +42,10 @@ from .checkpoint import ChunkDone
 from .statuses import count_statuses, frame_statuses
 from .tables import empty_query, frames_table, query_table
 
-__all__ = ["assimilation_chunks", "parallel_chunks", "dynamics"]
+__all__ = ["assimilation_chunks", "parallel_chunks", "dynamics", "STATE_CLASSES"]
+
+#: The dataclasses spilled to the working folder (the only ones read back, as data).
+STATE_CLASSES = (FilterState, FilterSegment, SmootherState)
 
 _DYNAMICS = ("per-harmonic Ornstein-Uhlenbeck with the smoothness prior as stationary law; "
              "random-walk mean level")
@@ -183,7 +188,8 @@ def _forward_chunks(job, source, engine, work, model):
     if done.get("forward_complete"):
         return
     n_fwd = done.get("forward", 0)
-    state = work.load(f"fstate-{n_fwd - 1:06d}.pkl") if n_fwd else FilterState.initial(model)
+    state = (work.load(f"fstate-{n_fwd - 1:06d}.npz", STATE_CLASSES) if n_fwd
+             else FilterState.initial(model))
     last = work.manifest.get("last_time")
     last = -np.inf if last is None else last
     for i, chunk in enumerate(source):
@@ -191,12 +197,12 @@ def _forward_chunks(job, source, engine, work, model):
             continue
         state, seg, info, last = engine.submit(forward_task, model, state, chunk, last,
                                                job.steady_tol, job.max_transient).result()
-        work.dump((seg, info), f"seg-{i:06d}.pkl")
-        work.dump(state, f"fstate-{i:06d}.pkl")
+        work.dump((seg, info), f"seg-{i:06d}.npz", STATE_CLASSES)
+        work.dump(state, f"fstate-{i:06d}.npz", STATE_CLASSES)
         done["forward"] = i + 1
         work.manifest["last_time"] = last
         work.save()
-        work.remove(f"fstate-{i - 1:06d}.pkl")
+        work.remove(f"fstate-{i - 1:06d}.npz")
         yield ChunkDone("forward", i, len(chunk))
     done["forward_complete"] = True
     work.manifest["n_chunks"] = done.get("forward", 0)
@@ -212,19 +218,20 @@ def _backward_chunks(job, source, engine, work):
     Hq = job.domain.design(job.query_points)
     z = interval_z(job.level)
     n_back = done.get("backward", 0)
-    bstate = work.load(f"bstate-{n_chunks - n_back:06d}.pkl") if n_back else SmootherState()
+    bstate = (work.load(f"bstate-{n_chunks - n_back:06d}.npz", STATE_CLASSES) if n_back
+              else SmootherState())
     for i in range(n_chunks - 1 - n_back, -1, -1):
-        seg, info = work.load(f"seg-{i:06d}.pkl")
+        seg, info = work.load(f"seg-{i:06d}.npz", STATE_CLASSES)
         bstate, ms, sid, tab = engine.submit(backward_task, seg, bstate, job.steady_tol,
                                              job.max_transient).result()
         ftab, qtab = engine.submit(chunk_tables, info, seg, ms, sid, tab, Hq,
                                    job.query_labels, z, kind).result()
         work.write_parts(i, job.fmt, ftab, qtab)
-        work.dump(bstate, f"bstate-{i:06d}.pkl")
+        work.dump(bstate, f"bstate-{i:06d}.npz", STATE_CLASSES)
         count_statuses(work.manifest, info["status"], info["reason"])
         done["backward"] = n_chunks - i
         work.save()
-        work.remove(f"bstate-{i + 1:06d}.pkl", f"seg-{i:06d}.pkl")
+        work.remove(f"bstate-{i + 1:06d}.npz", f"seg-{i:06d}.npz")
         yield ChunkDone("backward", i, len(info["t"]))
 
 
@@ -273,7 +280,7 @@ def _filter_all(job, source, engine, work, model):
         info, last = _chunk_info(chunk, last)
         acc = info["acc"]
         ta, Ya = chunk.t[acc], chunk.Y[acc]
-        work.dump((ta, Ya, info, t_prev), f"pchunk-{i:06d}.pkl")
+        work.dump((ta, Ya, info, t_prev), f"pchunk-{i:06d}.npz", STATE_CLASSES)
         sum_futs.append(engine.submit(_summary_task, model, ta, Ya, t_prev,
                                       n == 0 and len(ta) > 0))
         if len(ta):
@@ -283,7 +290,7 @@ def _filter_all(job, source, engine, work, model):
     entering = _scan_entering(engine.gather(sum_futs))
     seg_futs = []
     for i, ent in enumerate(entering):
-        ta, Ya, _, tp = work.load(f"pchunk-{i:06d}.pkl")
+        ta, Ya, _, tp = work.load(f"pchunk-{i:06d}.npz", STATE_CLASSES)
         m, P = ent if ent is not None else (None, None)
         seg_futs.append(engine.submit(_filter_from, model, m, P, tp, ta, Ya, job.steady_tol,
                                       i << 40))
@@ -334,7 +341,7 @@ def parallel_chunks(job, source, engine, work, model):
     kind = source.time_kind or "number"
     out_futs = []
     for i in range(n_chunks):
-        _, _, info, _ = work.load(f"pchunk-{i:06d}.pkl")
+        _, _, info, _ = work.load(f"pchunk-{i:06d}.npz", STATE_CLASSES)
         if leaving[i] is None:
             ms = Ps = pred = None
         else:

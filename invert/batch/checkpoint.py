@@ -2,25 +2,36 @@
 
 Chunk outputs are written as part files under ``OUT/.batch-work`` (temporary file, then
 ``os.replace``; Arrow IPC parts for a Parquet output, merged into the final file at the end)
-and the manifest (a JSON file with the job's signature, the chunks done, the counts and the
-estimated hyperparameters) is replaced the same way after each chunk. A rerun with
-``resume=True`` and the same signature continues after the last completed chunk.
+and the manifest (a JSON file with the job's signature, the chunks done, the counts, the
+estimated hyperparameters and a content hash of every chunk read) is replaced the same way
+after each chunk. A rerun with ``resume=True`` and the same signature continues after the last
+completed chunk. Everything in the folder is data (JSON, Arrow IPC or CSV parts, ``.npz``
+states read with ``allow_pickle=False``, :mod:`invert.batch.spill`): nothing there is
+unpickled, so a crafted file cannot run code.
+
+Resume trusts no file metadata alone: :class:`CheckedLog` compares the hash of each chunk
+(:attr:`~invert.io.sources.Chunk.digest`) with the one recorded when it was first read, so a
+log rewritten with the same size and modification time is refused
+(:class:`~invert.errors.InputError` naming the log and the first chunk that differs) instead
+of mixing two logs.
 """
 
 from __future__ import annotations
 
 import json
 import os
-import pickle
 import shutil
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 
+from ..errors import InputError
 from ..io.writers import merge_parts, write_json, write_table
 from ..report.files import to_jsonable
+from .spill import load_state, save_state
 from .tables import empty_frames, empty_query
 
-__all__ = ["WORK_DIR", "ChunkDone", "WorkFolder", "merge_outputs"]
+__all__ = ["WORK_DIR", "ChunkDone", "WorkFolder", "CheckedLog", "merge_outputs"]
 
 #: Name of the working folder inside the output folder.
 WORK_DIR = ".batch-work"
@@ -62,7 +73,8 @@ class WorkFolder:
     dir : Path
     manifest : dict
         ``signature``, ``done`` (chunks done per phase), ``hyper``, ``counts``, ...; written
-        by :meth:`save`.
+        by :meth:`save` together with the chunk hashes (``digests``, see
+        :meth:`check_chunk`).
 
     Raises
     ------
@@ -76,12 +88,15 @@ class WorkFolder:
         self.signature = signature
         man = self.dir / "manifest.json"
         self.manifest = None
+        self._digests = []
+        self._dlock = threading.Lock()
         if resume and man.exists():
             with open(man) as fh:
                 m = json.load(fh)
             if m.get("signature") != signature:
                 raise ValueError(f"{self.dir}: the interrupted run used another log or other "
                                  f"options; rerun without --resume to start afresh")
+            self._digests = list(m.pop("digests", []))
             self.manifest = m
         else:
             shutil.rmtree(self.dir, ignore_errors=True)
@@ -91,8 +106,43 @@ class WorkFolder:
             self.save()
 
     def save(self):
-        """Write the manifest atomically."""
-        write_json(to_jsonable(self.manifest), self.dir / "manifest.json")
+        """Write the manifest (and the chunk hashes) atomically."""
+        with self._dlock:
+            digests = list(self._digests)
+        write_json(to_jsonable({**self.manifest, "digests": digests}),
+                   self.dir / "manifest.json")
+
+    def check_chunk(self, i, chunk, source):
+        """Record chunk ``i``'s content hash, or check it against the one recorded before.
+
+        Thread-safe (the log is read in a background thread).
+
+        Raises
+        ------
+        InputError
+            When chunk ``i`` differs from what this run (or the interrupted one) read.
+        """
+        digest = getattr(chunk, "digest", None)
+        if digest is None:
+            return
+        with self._dlock:
+            if i < len(self._digests):
+                if self._digests[i] != digest:
+                    first = int(chunk.frame[0]) if len(chunk.frame) else 0
+                    raise InputError(source, f"changed since it was first read: chunk {i} "
+                                     f"(frames from record {first}) differs; rerun without "
+                                     f"--resume to start afresh")
+            elif i == len(self._digests):
+                self._digests.append(digest)
+
+    def check_length(self, n, source):
+        """Refuse a log that ends before the chunks recorded (``n`` chunks read in full)."""
+        with self._dlock:
+            recorded = len(self._digests)
+        if n < recorded:
+            raise InputError(source, f"changed since it was first read: it ends after "
+                             f"{n} chunk(s), {recorded} were read before; rerun without "
+                             f"--resume to start afresh")
 
     def part(self, name, i, fmt):
         """Return the path of part ``i`` of output ``name``."""
@@ -105,18 +155,17 @@ class WorkFolder:
         write_table(frames, self.part("frames", i, fmt), fmt)
         write_table(query, self.part("query", i, fmt), fmt)
 
-    def dump(self, obj, name):
-        """Pickle ``obj`` to ``name`` in the folder, atomically."""
-        path = self.dir / name
-        tmp = path.with_name(f".{path.name}.tmp")
-        with open(tmp, "wb") as fh:
-            pickle.dump(obj, fh, protocol=pickle.HIGHEST_PROTOCOL)
-        os.replace(tmp, path)
+    def dump(self, obj, name, classes=()):
+        """Write state ``obj`` to ``name`` (``.npz``) atomically, as data only.
 
-    def load(self, name):
-        """Unpickle ``name`` from the folder."""
-        with open(self.dir / name, "rb") as fh:
-            return pickle.load(fh)
+        ``classes``: the dataclasses ``obj`` may contain (:func:`~invert.batch.spill.
+        save_state`).
+        """
+        save_state(obj, self.dir / name, classes)
+
+    def load(self, name, classes=()):
+        """Read state ``name`` back (``numpy.load`` with ``allow_pickle=False``)."""
+        return load_state(self.dir / name, classes)
 
     def remove(self, *names):
         """Delete files of the folder that exist."""
@@ -129,6 +178,39 @@ class WorkFolder:
         shutil.rmtree(self.dir, ignore_errors=True)
 
 
+class CheckedLog:
+    """A :class:`~invert.io.sources.LogSource` whose chunks are checked by content hash.
+
+    Every chunk read goes through :meth:`WorkFolder.check_chunk` (recorded the first time,
+    compared every later time, in this run or a resumed one); a full pass that ends early is
+    refused by :meth:`WorkFolder.check_length`. Everything else is the wrapped source's.
+
+    Parameters
+    ----------
+    source : LogSource
+    work : WorkFolder
+    """
+
+    def __init__(self, source, work):
+        self._source = source
+        self._work = work
+
+    def __getattr__(self, name):
+        return getattr(self._source, name)
+
+    def signature(self):
+        """Return the wrapped source's signature."""
+        return self._source.signature()
+
+    def __iter__(self):
+        n = 0
+        for i, chunk in enumerate(self._source):
+            self._work.check_chunk(i, chunk, self._source.source)
+            n = i + 1
+            yield chunk
+        self._work.check_length(n, self._source.source)
+
+
 def merge_outputs(work, n_chunks, out, fmt, kind):
     """Merge the part files of ``n_chunks`` chunks into ``out/frames.<fmt>`` and ``query``.
 
@@ -137,6 +219,7 @@ def merge_outputs(work, n_chunks, out, fmt, kind):
     work : WorkFolder
     n_chunks : int
     out : Path
+        Where the merged files go (the run's staging folder, :mod:`invert.io.publish`).
     fmt : {"csv", "parquet"}
     kind : {"number", "datetime"}
         Time kind of the empty tables written when there is no chunk.

@@ -100,16 +100,32 @@ class LocalEngine:
         self.close()
 
 
+def _stop_http(dask_scheduler=None, dask_worker=None):
+    """Stop a dask node's HTTP server (run on the node's event loop)."""
+    node = dask_scheduler if dask_scheduler is not None else dask_worker
+    if getattr(node, "http_server", None) is not None:
+        node.http_server.stop()
+
+
 class DaskEngine:
     """Run tasks on a ``dask.distributed`` cluster.
 
     Parameters
     ----------
     scheduler : str, optional
-        Address of an existing scheduler; else a LocalCluster of in-process workers talking
-        over loopback TCP only is started (and closed by :meth:`close`).
+        Address of an existing scheduler; else a LocalCluster is started (and closed by
+        :meth:`close`) with its scheduler and workers in this process, talking over dask's
+        ``inproc://`` transport: it opens no network port (no dashboard either), so no other
+        process, local or remote, can connect to it and run code in it. Tasks and results
+        are then passed by reference, as on the local engine.
     n_workers : int, default=2
         Workers of the LocalCluster (one thread each); also sets :attr:`in_flight`.
+
+    Attributes
+    ----------
+    address : str
+        The scheduler's address (``inproc://...`` for the engine's own cluster); reported in
+        the summary.
     """
 
     name = "dask"
@@ -124,12 +140,18 @@ class DaskEngine:
         if scheduler:
             self._client = Client(scheduler)
         else:
-            # nothing listens beyond this host
+            # in-process transport: no listener at all, unreachable from other processes
             self._cluster = LocalCluster(n_workers=n_workers, threads_per_worker=1,
-                                         processes=False, protocol="tcp://",
-                                         host="127.0.0.1", dashboard_address="127.0.0.1:0",
+                                         processes=False, protocol="inproc://",
+                                         dashboard_address="127.0.0.1:0",
+                                         worker_dashboard_address="127.0.0.1:0",
                                          scheduler_kwargs={"dashboard": False})
             self._client = Client(self._cluster)
+            # the scheduler and workers always start an HTTP server (health, metrics): stop
+            # them, on their event loop, so that nothing listens at all
+            self._client.run_on_scheduler(_stop_http)
+            self._client.run(_stop_http)
+        self.address = self._client.scheduler.address
 
     def submit(self, fn, /, *args):
         """Submit ``fn(*args)`` to the cluster (never cached: ``pure=False``)."""

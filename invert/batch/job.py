@@ -16,6 +16,7 @@ import numpy as np
 
 from .._validation import check_level
 from .calibration import hyperparameters
+from .checkpoint import CheckedLog
 from .static import static_chunks
 
 __all__ = ["BatchJob", "job_chunks", "FORMATS"]
@@ -116,6 +117,7 @@ class BatchJob:
             "fmt": self.fmt, "chunk_rows": self.chunk_rows, "level": self.level,
             "steady_tol": self.steady_tol, "max_transient": self.max_transient,
             "parallel_in_time": bool(self.parallel_in_time), "parts": "arrow-ipc",
+            "state": "npz",
         }
 
 
@@ -126,6 +128,9 @@ def job_chunks(job, source, engine, work):
     ----------
     job : BatchJob
     source : LogSource
+        Read through :class:`~invert.batch.checkpoint.CheckedLog`: every chunk's content
+        hash is recorded in the manifest, and compared whenever the chunk is read again
+        (later in this run, or by a resumed run).
     engine : Engine
     work : WorkFolder
         The run's working folder (fresh, or an interrupted run's to resume).
@@ -141,6 +146,7 @@ def job_chunks(job, source, engine, work):
     extra : dict
         Summary entries of the mode.
     """
+    source = CheckedLog(source, work)
     hyper = hyperparameters(job, source, work.manifest)
     work.manifest["hyper"] = hyper
     work.save()

@@ -21,18 +21,26 @@ mode). Times must increase; a frame whose time is not after the last accepted on
 
 Resume: chunk outputs are written as part files with a manifest updated after each chunk; a
 rerun with ``resume=True`` continues after the last completed chunk, and the merged result is
-identical.
+identical. The working folder holds data only (no pickle), and every chunk re-read on resume
+is checked against the content hash recorded when it was first read.
+
+The output folder (:mod:`invert.io.publish`): one run at a time holds it (a lock file; a
+second run is refused with one line naming the folder and the holder's pid), and the finished
+set (frames, query, summary.json) is written into a staging folder beside it and swapped in at
+once, so the folder always holds either the complete old set or the complete new one.
 """
 
 from __future__ import annotations
 
 import hashlib
+import shutil
 import time as _time
 from pathlib import Path
 
 import numpy as np
 
 from ..io.logs import open_log
+from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
 from ..io.readings import check_inside, load_layout, load_points
 from ..io.writers import write_json
 from ..report.files import CAUTIONS, to_jsonable
@@ -112,7 +120,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         Kalman filter + RTS smoother instead of per-frame inversion.
     engine : {"local", "dask"}
     scheduler : str, optional
-        Address of an existing dask scheduler (else a loopback LocalCluster is started).
+        Address of an existing dask scheduler (else an in-process LocalCluster on the
+        ``inproc://`` transport is started, which no other process can reach).
     fmt : {"parquet", "csv"}
     resume : bool
         Continue an interrupted run in ``out``.
@@ -148,6 +157,12 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     -------
     dict
         The summary written to summary.json.
+
+    Raises
+    ------
+    InputError
+        Bad input; another run holding ``out``; ``out`` holding files batch did not write; a
+        log changed since the interrupted run read it (with ``resume``).
     """
     if engine not in ENGINES:
         raise ValueError(f"The 'engine' parameter of batch must be one of {tuple(ENGINES)}. "
@@ -161,12 +176,19 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time)
     source = open_log(log, job.sensors, chunk_rows=chunk_rows)
-    with make_engine(engine, scheduler=scheduler, n_workers=n_workers) as eng:
-        return run_job(job, source, eng, on_chunk=on_chunk)
+    # the folder is locked before the engine starts: a refused run starts no cluster
+    with OutputLock(job.out) as lock, \
+            make_engine(engine, scheduler=scheduler, n_workers=n_workers) as eng:
+        return _run_locked(job, source, eng, lock, on_chunk)
 
 
 def run_job(job, source, engine, *, on_chunk=None):
-    """Run ``job`` over ``source`` on ``engine``; merge the outputs and write the summary.
+    """Run ``job`` over ``source`` on ``engine``; publish the outputs and the summary.
+
+    The output folder is locked for the run (:class:`~invert.io.publish.OutputLock`,
+    released on every exit); stale staging folders of killed runs are removed; the merged
+    frames and query and summary.json are written into a staging folder and swapped in at
+    once (:func:`~invert.io.publish.publish`).
 
     Parameters
     ----------
@@ -181,7 +203,14 @@ def run_job(job, source, engine, *, on_chunk=None):
     dict
         The summary written to ``job.out/summary.json``.
     """
+    with OutputLock(job.out) as lock:
+        return _run_locked(job, source, engine, lock, on_chunk)
+
+
+def _run_locked(job, source, engine, lock, on_chunk):
     out = job.out
+    check_own_folder(out)
+    clean_stale_staging(out)
     work = WorkFolder(out, {"log": source.signature(), "options": job.options()}, job.resume)
     t_start = _time.perf_counter()
     limits = _one_blas_thread()
@@ -195,28 +224,42 @@ def run_job(job, source, engine, *, on_chunk=None):
                 hyper, extra = stop.value
                 break
             bar.update(step.n_frames)
+            _keep_log_warnings(work.manifest, source)
             if on_chunk is not None:
                 on_chunk(step.index)
-        merge_outputs(work, work.manifest["n_chunks"], out, job.fmt,
-                      source.time_kind or "number")
     finally:
         bar.close()
         if limits is not None:
             limits.restore_original_limits()
-    summary = _summary(job, source, engine, work, hyper, extra,
-                       _time.perf_counter() - t_start)
-    write_json(summary, out / "summary.json")
+    stage = staging_folder(out)
+    try:
+        merge_outputs(work, work.manifest["n_chunks"], stage, job.fmt,
+                      source.time_kind or "number")
+        summary = _summary(job, source, engine, work, hyper, extra,
+                           _time.perf_counter() - t_start, lock.note)
+        write_json(summary, stage / "summary.json")
+        publish(stage, out, lock)
+    except BaseException:
+        shutil.rmtree(stage, ignore_errors=True)
+        raise
     work.close()
     return summary
 
 
-def _summary(job, source, engine, work, hyper, extra, elapsed):
+def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
     counts = work.manifest["counts"]
     missing = source.missing_sensors
+    warnings = ([f"sensor(s) {', '.join(missing)} of the layout have no column in the log; "
+                 f"treated as always missing"] if missing else [])
+    warnings += _keep_log_warnings(work.manifest, source)
+    if note:
+        warnings.append(note)
+    where = {"scheduler": engine.address} if getattr(engine, "address", None) else {}
     summary = {
         "command": "batch",
         "method": "kalman-smoother" if job.assimilate else "tikhonov (fixed per frame)",
         "engine": engine.name,
+        **where,
         "log": source.source,
         "format": job.fmt,
         "level": job.level,
@@ -233,11 +276,19 @@ def _summary(job, source, engine, work, hyper, extra, elapsed):
         "query_labels": [str(x) for x in job.query_labels],
         "seconds": elapsed,
         **extra,
-        "warnings": ([f"sensor(s) {', '.join(missing)} of the layout have no "
-                      f"column in the log; treated as always missing"] if missing else []),
+        "warnings": warnings,
         "cautions": list(CAUTIONS),
     }
     return to_jsonable(summary)
+
+
+def _keep_log_warnings(manifest, source):
+    """Return the log's warnings, kept in the manifest (a resumed run may not re-read the log)."""
+    kept = manifest.setdefault("log_warnings", [])
+    for w in getattr(source, "warnings", []):
+        if w not in kept:
+            kept.append(w)
+    return list(kept)
 
 
 def _progress(total=None):

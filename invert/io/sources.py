@@ -32,12 +32,17 @@ class Chunk:
         Readings in layout order; NaN where missing (or where the cell was rejected).
     reason : ndarray of object, shape (L,)
         Rejection reason or None.
+    digest : str or None
+        Content hash (hex) of the bytes the chunk was read from, or None when the source
+        cannot give one; a resumed run compares it with the hash recorded when the chunk was
+        first read (:class:`~invert.batch.checkpoint.CheckedLog`).
     """
 
     frame: np.ndarray
     t: np.ndarray
     Y: np.ndarray
     reason: np.ndarray
+    digest: str | None = None
 
     def __len__(self):
         return len(self.t)
@@ -64,6 +69,10 @@ class LogSource(Protocol):
     time_kind : {"number", "datetime"} or None
         Fixed by the first parseable time (None before): numbers are written as read,
         date-times as seconds since the Unix epoch (UTC) in ``Chunk.t``.
+    warnings : list of str
+        Things found while reading that the user must hear of (e.g. a header line repeated
+        mid-file with the columns re-mapped), one sentence each, gathered as the chunks are
+        read; the job copies them into ``summary.json``'s warnings.
 
     Methods
     -------
@@ -73,11 +82,12 @@ class LogSource(Protocol):
         (``Chunk.frame``, increasing), with ``Chunk.reason`` set instead of dropping a record
         that cannot be used (bad cell, unparseable time, malformed row). Iterating again
         starts again from the first record and gives the same chunks (the job reads a source
-        more than once: calibration, resume). Memory stays bounded by a few chunks.
+        more than once: calibration, resume). Memory stays bounded by a few chunks. Each chunk
+        carries the content hash of what it was read from (``Chunk.digest``) when it can.
     signature()
         A JSON-serialisable dict that changes whenever the data may have changed (for a file:
         path, size, modification time). A resumed run refuses a source whose signature differs
-        from the interrupted run's.
+        from the interrupted run's, and then any chunk whose ``digest`` differs.
 
     Notes
     -----
@@ -90,6 +100,7 @@ class LogSource(Protocol):
     columns: list
     missing_sensors: list
     time_kind: str | None
+    warnings: list
 
     def __iter__(self) -> Iterator[Chunk]:
         """Yield the chunks of the log in order."""

@@ -1,13 +1,19 @@
 """Wide logs, CSV or Parquet: one time column and one column per sensor (a :class:`LogSource`).
 
-The time column is named ``time`` (any case), else it is the first column; every other column
-is a sensor id of the layout; a blank or NaN cell is a missing reading. Every record comes back
-as a frame, with a rejection reason when it cannot be used (text in a number, an unparseable
-time, a row with the wrong number of cells), so nothing is silently dropped.
+The time column is named ``time`` (any case; a log without one is an
+:class:`~invert.errors.InputError` naming the columns found, never read with another column as
+time); every other column is a sensor id of the layout (:mod:`invert.io.header`); a blank or
+NaN cell is a missing reading. Every record comes back as a frame, with a rejection reason
+when it cannot be used (text in a number, an unparseable time, a row with the wrong number of
+cells), so nothing is silently dropped. A header line repeated mid-file (a logger restarted)
+is not a record: the frames after it are read with its column order, and the reader's
+``warnings`` say at which line the header repeated. Each chunk carries the blake2b hash of the
+bytes it was read from (``Chunk.digest``).
 """
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
 from pathlib import Path
@@ -16,14 +22,14 @@ import numpy as np
 
 from ..errors import InputError
 from .arrow import float_values
+from .cells import NULLS, LineCounter, parse_cells, time_cells
+from .header import header_lines, header_pattern, parse_header
 from .sources import Chunk
 
 __all__ = ["WideLogReader", "log_signature"]
 
 _NONBLANK = re.compile(rb"\S")
 
-#: Cells read as missing readings (pyarrow's defaults cover these and more).
-_NULLS = ["", "NaN", "nan", "NA", "N/A", "null", "NULL", "None", "-nan", "#N/A"]
 
 
 def log_signature(path):
@@ -51,6 +57,9 @@ class WideLogReader:
         after a stray quote that would run on over the following lines, the piece is parsed
         again without quoting, so the quote is a bad cell of its own row; should the counts
         still disagree, the malformed rows go to the end of their chunk with frame ``-1``.
+        A header line repeated inside the file re-maps the columns from the next line on
+        (the same checks as the first header: a repeated header without ``time`` or with a
+        sensor not in the layout is an :class:`~invert.errors.InputError` naming its line).
     sensors : sequence of str
         Sensor ids from the layout; the log's sensor columns must be among them.
     chunk_rows : int, default=65536
@@ -65,30 +74,23 @@ class WideLogReader:
             raise InputError(self.source, "file not found")
         self.is_parquet = self.path.suffix.lower() in (".parquet", ".pq")
         names = self._names()
-        clean = [str(n).strip() for n in names]
-        lower = [c.lower() for c in clean]
-        self.time_index = lower.index("time") if "time" in lower else 0
-        self.raw_names = list(names)
-        self.time_name = self.raw_names[self.time_index]
-        cols = [c for i, c in enumerate(clean) if i != self.time_index]
-        known = set(self.sensors)
-        for c in cols:
-            if c not in known:
-                raise InputError(self.source, f"sensor '{c}' is not in the layout",
-                                 column=c)
-        seen = set()
-        for c in cols:
-            if c in seen:
-                raise InputError(self.source, f"sensor column '{c}' appears twice", column=c)
-            seen.add(c)
+        self.header = parse_header(names, self.sensors, self.source,
+                                   line=None if self.is_parquet else self.skip_rows + 1)
+        self.raw_names = list(self.header.raw_names)
+        self.time_index = self.header.time_index
+        self.time_name = self.header.time_name
+        seen = {self.sensors[j] for _, j in self.header.columns}
         self.missing_sensors = [s for s in self.sensors if s not in seen]
-        pos = {s: j for j, s in enumerate(self.sensors)}
-        self.columns = [(self.raw_names[i], pos[c]) for i, c in
-                        ((i, clean[i]) for i in range(len(clean)) if i != self.time_index)]
+        self.columns = list(self.header.columns)
         self.time_kind = None  # "number" or "datetime", fixed by the first parseable cell
+        self.warnings = []
+        self._parsers = {}
 
     def signature(self):
-        """Return the resume signature: path, size and modification time of the file."""
+        """Return the resume signature: path, size and modification time of the file.
+
+        A resumed run also compares every chunk's content hash (``Chunk.digest``).
+        """
         return log_signature(self.path)
 
     def _names(self):
@@ -114,26 +116,92 @@ class WideLogReader:
 
     # --- raw batches ---------------------------------------------------------------------------
     def _batches(self):
-        """Yield ``(table, malformed rows, number of records)`` piece by piece."""
+        """Yield ``(segments, digest)`` piece by piece.
+
+        ``segments``: ``[(table, malformed rows, number of records, header)]``, one per run of
+        lines under one header (several when the header line repeats inside the piece);
+        ``digest``: blake2b of the bytes the piece was read from.
+        """
         if self.is_parquet:
             import pyarrow.parquet as pq
 
             pf = pq.ParquetFile(self.path)
             for b in pf.iter_batches(batch_size=self.chunk_rows):
-                yield b, [], None
+                yield [(b, [], None, self.header)], _batch_digest(b)
             return
-        bad = []
-        parse_piece, unquoted = self._csv_parser(bad)
+        state = {"header": self.header}
         for pos, piece, lines in self._pieces():
-            table = parse_piece(piece)
-            got, n_rec = [], None
-            if bad:
-                table, got, n_rec = self._place_malformed(table, piece, lines.before(pos), bad,
-                                                          parse_piece, unquoted)
-            bad.clear()
-            yield table, got, n_rec
+            digest = hashlib.blake2b(piece, digest_size=20).hexdigest()
+            yield self._piece_segments(pos, piece, lines, state), digest
 
-    def _csv_parser(self, bad):
+    def _parser(self, header):
+        """``(parse_piece, unquoted, bad)`` for ``header`` (made once per header)."""
+        key = header.raw_names
+        if key not in self._parsers:
+            bad = []
+            self._parsers[key] = (*self._csv_parser(bad, header), bad)
+        return self._parsers[key]
+
+    def _piece_segments(self, pos, piece, lines, state):
+        """Parse one piece under the header in effect, re-mapping at repeated header lines.
+
+        The first conversion is tried on the whole piece; only when it fails, or rows do not
+        fit the header, is the piece searched for header lines (:func:`~invert.io.header.
+        header_lines`), so a clean log pays nothing for it.
+        """
+        h = state["header"]
+        parse_piece, unquoted, bad = self._parser(h)
+        table = parse_piece(piece, first_only=True)
+        if table is None or bad:
+            raw = bytes(piece)
+            found = header_lines(raw, self._header_re())
+            if found:
+                return self._split_at_headers(raw, lines.before(pos), found, state)
+        if table is None:
+            table = parse_piece(piece, skip_first=True)
+        return [self._segment(table, piece, lines.before(pos) if bad else 0, h)]
+
+    def _segment(self, table, piece, line0, h):
+        """One segment's ``(table, malformed, n_records, header)`` (malformed rows placed)."""
+        parse_piece, unquoted, bad = self._parser(h)
+        got, n_rec = [], None
+        if bad:
+            table, got, n_rec = self._place_malformed(table, piece, line0, bad, parse_piece,
+                                                      unquoted, len(h.raw_names))
+        bad.clear()
+        return table, got, n_rec, h
+
+    def _split_at_headers(self, raw, line0, found, state):
+        """Segments of a piece holding header lines (each line itself is not a record)."""
+        segments, start, first_line = [], 0, 0
+        for idx, a, b, cells in found:
+            segments.append((raw[start:a], line0 + first_line, state["header"]))
+            line = line0 + idx + 1
+            new = parse_header(cells, self.sensors, self.source, line=line)
+            old = state["header"]
+            what = ("with the same columns" if new.same_mapping(old) else
+                    "with the columns in another order; the columns were re-mapped and the "
+                    "frames after it read with the new order")
+            note = f"{self.source}: the header line repeats at line {line} {what}"
+            if note not in self.warnings:
+                self.warnings.append(note)
+            state["header"] = new
+            start, first_line = b, idx + 1
+        segments.append((raw[start:], line0 + first_line, state["header"]))
+        out = []
+        for part, l0, h in segments:
+            if not _NONBLANK.search(part):
+                continue
+            parse_piece, _, _ = self._parser(h)
+            out.append(self._segment(parse_piece(part), part, l0, h))
+        return out
+
+    def _header_re(self):
+        if getattr(self, "_hre", None) is None:
+            self._hre = header_pattern(self.raw_names, self.sensors)
+        return self._hre
+
+    def _csv_parser(self, bad, header):
         """``(parse_piece, unquoted)``: a piece parser that appends malformed rows to ``bad``."""
         import pyarrow as pa
         import pyarrow.csv as pcsv
@@ -142,7 +210,8 @@ class WideLogReader:
             bad.append((row.number, row.text))
             return "skip"
 
-        opts = pcsv.ReadOptions(column_names=self.raw_names, use_threads=True,
+        names = list(header.raw_names)
+        opts = pcsv.ReadOptions(column_names=names, use_threads=True,
                                 block_size=1 << 20, encoding="utf8")
         parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
         # Without quoting: a stray quote in a cell would otherwise run on over the following
@@ -150,10 +219,10 @@ class WideLogReader:
         unquoted = pcsv.ParseOptions(invalid_row_handler=on_invalid, quote_char=False)
 
         def convert(time_type, sensor_type):
-            types = {n: (time_type if i == self.time_index else sensor_type)
-                     for i, n in enumerate(self.raw_names)}
+            types = {n: (time_type if i == header.time_index else sensor_type)
+                     for i, n in enumerate(names)}
             return pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
-                                       null_values=_NULLS, quoted_strings_can_be_null=True)
+                                       null_values=NULLS, quoted_strings_can_be_null=True)
 
         # Fast path: every column float64 (numeric times). After a failure, the time column as
         # text (numbers or date-times) with float64 sensors, then everything as text (the
@@ -161,9 +230,9 @@ class WideLogReader:
         numeric = convert(pa.float64(), pa.float64())
         typed, text = convert(pa.string(), pa.float64()), convert(pa.string(), pa.string())
 
-        def parse_piece(piece, parse=parse):
+        def parse_piece(piece, parse=parse, first_only=False, skip_first=False):
             tries = (typed, text) if self.time_kind == "datetime" else (numeric, typed, text)
-            for conv in tries:
+            for conv in tries[:1] if first_only else tries[1:] if skip_first else tries:
                 bad.clear()
                 try:
                     return pcsv.read_csv(pa.py_buffer(piece), read_options=opts,
@@ -171,7 +240,7 @@ class WideLogReader:
                 except pa.ArrowInvalid as exc:
                     if conv is text:
                         raise InputError(self.source, f"cannot be read as CSV ({exc})") from None
-            return None  # pragma: no cover
+            return None  # the first conversion failed (first_only)
 
         return parse_piece, unquoted
 
@@ -192,7 +261,7 @@ class WideLogReader:
         with open(self.path, "rb") as fh:
             for _ in range(self.skip_rows + 1):  # comments and the header
                 fh.readline()
-            lines = _LineCounter(self.path, fh.tell(), self.skip_rows + 1)
+            lines = LineCounter(self.path, fh.tell(), self.skip_rows + 1)
             pos = fh.tell()  # file offset of the current piece
             while True:
                 data = fh.read(block)
@@ -212,7 +281,7 @@ class WideLogReader:
                     yield pos, memoryview(data)[:cut], lines
                 pos += cut
 
-    def _place_malformed(self, table, piece, line0, bad, parse_piece, unquoted):
+    def _place_malformed(self, table, piece, line0, bad, parse_piece, unquoted, width):
         """Malformed rows (rare): their line numbers and places among the piece's records.
 
         Found by reading the piece line by line (``line0``: lines before the piece, counted
@@ -221,10 +290,10 @@ class WideLogReader:
         (they go to the end of the chunk). Returns ``(table, malformed, n_records)``.
         """
         raw = bytes(piece)
-        got, n_rec = self._locate_malformed(raw, line0)
+        got, n_rec = self._locate_malformed(raw, line0, width)
         if not self._adds_up(table, got, bad, n_rec):
             table = parse_piece(piece, unquoted)
-            got, n_rec = self._locate_malformed(raw, line0, quoted=False)
+            got, n_rec = self._locate_malformed(raw, line0, width, quoted=False)
         if not self._adds_up(table, got, bad, n_rec):
             got = [(line0 + num if num is not None and num > 0 else None, txt, None)
                    for num, txt in bad]
@@ -233,30 +302,37 @@ class WideLogReader:
 
     def __iter__(self):
         start = 0
-        for batch, malformed, n_rec in self._batches():
-            ch = self._convert(batch, start) if batch is not None and batch.num_rows else None
-            if not malformed:
+        for segments, digest in self._batches():
+            parts = []
+            for seg in segments:
+                ch, n = self._segment_chunk(seg, start)
+                start += n
                 if ch is not None:
-                    start += len(ch)
-                    yield ch
-                continue
-            extra = self._malformed(malformed)
-            if n_rec is None:  # places unknown: at the end of the chunk, frame -1
-                if ch is not None:
-                    start += len(ch)
-                yield extra if ch is None else _concat(ch, extra)
-                continue
-            # every record in log order, numbered by its place in the log
-            at = np.array([r for _, _, r in malformed], np.int64)
-            good = np.setdiff1d(np.arange(n_rec), at)
-            extra.frame[:] = start + at
-            if ch is not None:
-                ch.frame[:] = start + good
-                extra = _concat(ch, extra)
-            order = np.argsort(extra.frame, kind="stable")
-            start += n_rec
-            yield Chunk(extra.frame[order], extra.t[order], extra.Y[order],
-                        extra.reason[order])
+                    parts.append(ch)
+            if parts:
+                ch = parts[0] if len(parts) == 1 else _concat(*parts)
+                ch.digest = digest
+                yield ch
+
+    def _segment_chunk(self, segment, start):
+        """Return one segment's chunk (records numbered from ``start``) and record count."""
+        batch, malformed, n_rec, h = segment
+        ch = self._convert(batch, start, h) if batch is not None and batch.num_rows else None
+        if not malformed:
+            return ch, 0 if ch is None else len(ch)
+        extra = self._malformed(malformed, h)
+        if n_rec is None:  # places unknown: at the end of the chunk, frame -1
+            return (extra if ch is None else _concat(ch, extra)), 0 if ch is None else len(ch)
+        # every record in log order, numbered by its place in the log
+        at = np.array([r for _, _, r in malformed], np.int64)
+        good = np.setdiff1d(np.arange(n_rec), at)
+        extra.frame[:] = start + at
+        if ch is not None:
+            ch.frame[:] = start + good
+            extra = _concat(ch, extra)
+        order = np.argsort(extra.frame, kind="stable")
+        return Chunk(extra.frame[order], extra.t[order], extra.Y[order],
+                     extra.reason[order]), n_rec
 
     @staticmethod
     def _adds_up(table, located, reported, n_rec):
@@ -264,7 +340,7 @@ class WideLogReader:
         return len(located) == len(reported) and table is not None and \
             table.num_rows == n_rec - len(located)
 
-    def _locate_malformed(self, piece, line0, quoted=True):
+    def _locate_malformed(self, piece, line0, width, quoted=True):
         """Find the rows of ``piece`` whose number of cells differs from the header's.
 
         Returns ``([(line number, text, place among the piece's records)], number of
@@ -276,7 +352,6 @@ class WideLogReader:
         """
         import csv
 
-        width = len(self.raw_names)
         out, rec = [], 0
         for i, raw in enumerate(piece.split(b"\n")):
             line = raw.rstrip(b"\r")
@@ -290,25 +365,26 @@ class WideLogReader:
         return out, rec
 
     # --- conversion -----------------------------------------------------------------------------
-    def _malformed(self, rows):
+    def _malformed(self, rows, h):
         n = len(rows)
         reason = np.array(["malformed row (wrong number of cells)"
                            + (f" at line {num}" if num is not None and num >= 0 else "")
                            for num, _, _ in rows], dtype=object)
         t = np.full(n, np.nan)
         for i, (_, text, _) in enumerate(rows):
-            cell = (text or "").split(",")[self.time_index] if text else ""
+            cells = (text or "").split(",")
+            cell = cells[h.time_index] if h.time_index < len(cells) else ""
             t[i] = self._time_cells(np.array([cell.strip()], dtype=object))[0][0]
         return Chunk(np.full(n, -1, np.int64), t, np.full((n, len(self.sensors)), np.nan), reason)
 
-    def _convert(self, batch, start):
+    def _convert(self, batch, start, h):
         import pyarrow as pa
         import pyarrow.compute as pc
 
         L = batch.num_rows
         Y = np.full((L, len(self.sensors)), np.nan)
         reason = np.full(L, None, dtype=object)
-        for name, j in self.columns:
+        for name, j in h.columns:
             col = batch.column(name)
             if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
                 vals = float_values(col.cast(pa.float64()))
@@ -320,7 +396,7 @@ class WideLogReader:
                     vals = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
                     bad = np.zeros(L, bool)
                 except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-                    vals, bad = _parse_cells(col)
+                    vals, bad = parse_cells(col)
             vals = np.asarray(vals, float)
             nonfinite = np.isinf(vals)
             if bad.any() or nonfinite.any():
@@ -331,7 +407,7 @@ class WideLogReader:
                         reason[i] = f"{what} cell in column '{name.strip()}': {text[i]!r}"
                 vals = np.where(bad | nonfinite, np.nan, vals)
             Y[:, j] = vals
-        t, tbad = self._time_column(batch.column(self.time_name))
+        t, tbad = self._time_column(batch.column(h.time_name))
         for i in np.flatnonzero(tbad):
             if reason[i] is None:
                 reason[i] = "unparseable time" if tbad[i] == 1 else "missing time"
@@ -376,70 +452,22 @@ class WideLogReader:
 
     def _time_cells(self, cells):
         """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
-        import pandas as pd
-
-        n = len(cells)
-        t = np.full(n, np.nan)
-        bad = np.zeros(n, np.int8)
-        text = np.array(["" if c is None else str(c).strip() for c in cells], dtype=object)
-        blank = np.array([x == "" or x in _NULLS for x in text])
-        bad[blank] = 2
-        num = pd.to_numeric(pd.Series(text), errors="coerce").to_numpy(float)
-        if self.time_kind is None:
-            first = next((i for i in range(n) if not blank[i]), None)
-            if first is not None:
-                self.time_kind = "number" if np.isfinite(num[first]) else "datetime"
-        if self.time_kind == "number":
-            ok = np.isfinite(num) & ~blank
-            t[ok] = num[ok]
-        elif self.time_kind == "datetime":
-            dt = pd.to_datetime(pd.Series(text), errors="coerce", format="ISO8601", utc=True)
-            ok = dt.notna().to_numpy() & ~blank
-            # nanoseconds whatever unit pandas chose (pandas 3 may give microseconds)
-            vals = dt.dt.tz_localize(None).to_numpy().astype("datetime64[ns]").view(np.int64)
-            t[ok] = vals[ok] / 1e9
-        else:
-            ok = np.zeros(n, bool)
-        bad[~ok & ~blank] = 1
+        t, bad, self.time_kind = time_cells(cells, self.time_kind)
         return t, bad
 
 
-class _LineCounter:
-    """Number of lines before a byte offset of a file, counted on demand, front to back."""
-
-    def __init__(self, path, offset, lines):
-        self.path, self.offset, self.lines = path, offset, lines
-
-    def before(self, offset):
-        with open(self.path, "rb") as fh:
-            fh.seek(self.offset)
-            left = offset - self.offset
-            while left > 0:
-                data = fh.read(min(left, 1 << 24))
-                if not data:
-                    break
-                self.lines += data.count(b"\n")
-                left -= len(data)
-        self.offset = offset
-        return self.lines
+def _concat(*parts):
+    return Chunk(np.concatenate([c.frame for c in parts]), np.concatenate([c.t for c in parts]),
+                 np.vstack([c.Y for c in parts]), np.concatenate([c.reason for c in parts]))
 
 
-def _parse_cells(col):
-    """Numbers from a string column cell by cell; ``bad`` marks non-blank non-numbers."""
-    import pandas as pd
-
-    s = pd.Series(col.to_pylist(), dtype=object)
-    blank = s.isna().to_numpy()
-    vals = pd.to_numeric(s.str.strip(), errors="coerce").to_numpy(float)
-    bad = np.isnan(vals) & ~blank
-    # literal NaN spellings are missing readings, not bad cells
-    low = s.str.strip().str.lower()
-    bad &= ~low.isin([v.lower() for v in _NULLS]).to_numpy()
-    return vals, bad
-
-
-def _concat(a, b):
-    return Chunk(np.concatenate([a.frame, b.frame]), np.concatenate([a.t, b.t]),
-                 np.vstack([a.Y, b.Y]), np.concatenate([a.reason, b.reason]))
+def _batch_digest(batch):
+    """blake2b of a record batch's Arrow buffers (what a Parquet chunk was read into)."""
+    h = hashlib.blake2b(digest_size=20)
+    for col in batch.columns:
+        for buf in col.buffers():
+            if buf is not None:
+                h.update(buf)
+    return h.hexdigest()
 
 

@@ -87,3 +87,25 @@ def test_parallel_in_time_is_an_exact_mode_option(tmp_path):
         BatchJob(**kw, max_transient=50, parallel_in_time=True)
     with pytest.raises(ValueError, match="format"):
         BatchJob(**kw, fmt="xlsx")
+
+
+def test_spilled_state_round_trips_exactly_and_builds_only_named_classes(tmp_path):
+    # oracle: numpy's own equality and dtypes/memory order of the originals
+    from invert.batch.spill import load_state, save_state
+    from invert.stages.assimilate.core import FilterState
+
+    F = np.asfortranarray(np.arange(6.0).reshape(2, 3))
+    state = FilterState(np.zeros(3), np.eye(3), key=(0.5, b"\x01"),
+                        fixed={(0.5, b"\x01"): np.ones((3, 3))})
+    obj = {"F": F, "same": [np.eye(3), 2 * np.eye(3)], "n": (np.float64(1.5), np.int64(3), 2.5),
+           "text": np.array(["ok", None], dtype=object), "state": state}
+    path = tmp_path / "s.npz"
+    save_state(obj, path, (FilterState,))
+    back = load_state(path, (FilterState,))
+    assert back["F"].flags.f_contiguous and np.array_equal(back["F"], F)
+    assert not np.shares_memory(back["same"][0], back["same"][1])
+    assert [type(x) for x in back["n"]] == [np.float64, np.int64, float]
+    assert list(back["text"]) == ["ok", None]
+    assert back["state"].key == (0.5, b"\x01") and list(back["state"].fixed) == [(0.5, b"\x01")]
+    with pytest.raises(KeyError):
+        load_state(path)  # FilterState not named by the caller: not built

@@ -1,0 +1,267 @@
+"""An output folder: one run at a time, and the finished set of outputs published at once.
+
+:class:`OutputLock` makes a run the only writer of its output folder: a lock file
+``OUT/.rim-invert.lock`` holding the owner's pid and host, created with
+``O_CREAT | O_EXCL`` (atomic: of two runs exactly one creates it). A second run refuses with
+one line naming the folder and the pid; a lock left by a run that died (its pid no longer alive
+on this host) is taken over with a note. The lock file also carries an ``flock`` of its holder,
+so that two runs taking over the same stale lock cannot both win.
+
+:func:`publish` writes nothing into the output folder itself: the caller fills a staging folder
+made by :func:`staging_folder` beside it (same parent, so the same file system) with the
+complete set (frames, query, summary.json), and :func:`publish` swaps the two folders with one
+``renameat2(RENAME_EXCHANGE)`` (Linux), so that at every instant ``OUT`` holds either the
+complete old set or the complete new set. Where the exchange is not available (not Linux)
+the swap falls back to two renames, with a short window in which ``OUT`` is missing. Staging
+folders of killed runs are removed at the start of the next run on
+the same folder (:func:`clean_stale_staging`; only names of this module's pattern, and only
+while the lock is held).
+
+Used by ``rim-invert batch`` (:mod:`invert.batch.runner`). The output folder may hold only what
+batch writes (:data:`OWN_NAMES`): a folder with other files is refused at the start, since the
+swap replaces the folder as a whole.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import errno
+import os
+import re
+import shutil
+import socket
+from pathlib import Path
+
+from ..errors import InputError
+
+__all__ = ["LOCK_NAME", "OWN_NAMES", "OutputLock", "staging_folder", "publish",
+           "clean_stale_staging", "check_own_folder"]
+
+#: Lock file inside the output folder.
+LOCK_NAME = ".rim-invert.lock"
+#: Names batch writes into its output folder (anything else there is refused).
+OWN_NAMES = frozenset({"frames.csv", "frames.parquet", "query.csv", "query.parquet",
+                       "summary.json", ".batch-work", LOCK_NAME})
+#: Temporary files of the atomic writers (invert.io.writers): ``.NAME.tmp-PID``.
+_OWN_TMP = re.compile(r"^\.(frames|query|summary)\.\w+\.tmp-\d+$")
+_STAGING = ".{name}.batch-staging-"
+_RENAME_EXCHANGE = 2   # linux/fs.h
+_AT_FDCWD = -100       # linux/fcntl.h
+
+
+def _alive(pid):
+    """Whether process ``pid`` exists on this host (signal 0 checks without sending)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # it exists, owned by someone else
+        return True
+    return True
+
+
+class OutputLock:
+    """Exclusive use of an output folder by one run (a context manager).
+
+    Parameters
+    ----------
+    out : str or Path
+        The output folder (created when missing).
+
+    Attributes
+    ----------
+    note : str or None
+        Set when a stale lock (of a run that died) was taken over; the run reports it.
+
+    Raises
+    ------
+    InputError
+        When another live run holds the folder (``OUT: another batch run (pid N on HOST) is
+        writing into this folder ...``).
+    """
+
+    def __init__(self, out):
+        self.out = Path(out)
+        self.path = self.out / LOCK_NAME
+        self.note = None
+        self._fd = None
+        self._text = f"{os.getpid()} {socket.gethostname()}\n"
+
+    def __enter__(self):
+        self.acquire()
+        return self
+
+    def __exit__(self, *exc):
+        self.release()
+
+    def _busy(self, pid, host):
+        who = f"pid {pid} on {host}" if pid is not None else "a run starting now"
+        return InputError(str(self.out), f"another batch run ({who}) is writing into this "
+                          f"folder; wait for it to finish or choose another --out")
+
+    def acquire(self):
+        """Create the lock file, or take over a stale one; raise when the folder is busy."""
+        import fcntl
+
+        self.out.mkdir(parents=True, exist_ok=True)
+        for _ in range(5):
+            try:
+                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_RDWR, 0o644)
+            except FileExistsError:
+                if self._take_over():
+                    return
+                continue
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except OSError:  # another run judged it stale in the instant before: it won
+                os.close(fd)
+                pid, host = self._read()
+                raise self._busy(pid, host) from None
+            os.write(fd, self._text.encode())
+            self._fd = fd
+            return
+        pid, host = self._read()
+        raise self._busy(pid, host)
+
+    def _read(self):
+        try:
+            parts = self.path.read_text().split()
+            return int(parts[0]), parts[1]
+        except (OSError, ValueError, IndexError):
+            return None, None
+
+    def _take_over(self):
+        """Take over the existing lock file if its owner is gone; True when taken."""
+        import fcntl
+
+        try:
+            fd = os.open(self.path, os.O_RDWR)
+        except FileNotFoundError:
+            return False  # released meanwhile: try to create it again
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            os.close(fd)
+            pid, host = self._read()
+            raise self._busy(pid, host) from None
+        try:
+            if os.fstat(fd).st_ino != os.stat(self.path).st_ino:
+                os.close(fd)
+                return False  # replaced meanwhile
+        except FileNotFoundError:
+            os.close(fd)
+            return False
+        pid, host = self._read()
+        here = socket.gethostname()
+        if pid is not None and (host != here or _alive(pid)):
+            os.close(fd)
+            raise self._busy(pid, host)
+        # the owner died (pid gone on this host), or died while creating the file (empty)
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, self._text.encode(), 0)
+        self._fd = fd
+        self.note = (f"{self.out}: took over the lock of an earlier run (pid {pid} on {host}) "
+                     f"that is no longer running" if pid is not None else
+                     f"{self.out}: took over an empty lock file of an earlier run")
+        return True
+
+    def release(self):
+        """Remove the lock file (when it is still this run's) and drop the flock."""
+        if self._fd is None:
+            return
+        try:
+            pid, host = self._read()
+            if pid == os.getpid() and host == socket.gethostname():
+                os.remove(self.path)
+        except FileNotFoundError:
+            pass
+        finally:
+            os.close(self._fd)
+            self._fd = None
+
+
+def check_own_folder(out):
+    """Refuse an output folder holding files batch did not write (the swap replaces it).
+
+    Raises
+    ------
+    InputError
+        Naming the folder and one foreign entry.
+    """
+    out = Path(out)
+    if not out.is_dir():
+        return
+    foreign = sorted(p.name for p in out.iterdir()
+                     if p.name not in OWN_NAMES and not _OWN_TMP.match(p.name))
+    if foreign:
+        raise InputError(str(out), f"holds files that batch did not write (e.g. "
+                         f"'{foreign[0]}'); the finished outputs replace the folder as a "
+                         f"whole: give a new or empty folder, or one written by batch")
+
+
+def staging_folder(out):
+    """Make a new staging folder beside ``out`` (same parent, so the same file system)."""
+    import tempfile
+
+    out = Path(out)
+    return Path(tempfile.mkdtemp(prefix=_STAGING.format(name=out.name) + f"{os.getpid()}-",
+                                 dir=out.parent))
+
+
+def _exchange(a, b):
+    """Swap two paths atomically (Linux ``renameat2(RENAME_EXCHANGE)``); False if unsupported."""
+    try:
+        fn = ctypes.CDLL(None, use_errno=True).renameat2
+    except (AttributeError, OSError):
+        return False
+    r = fn(_AT_FDCWD, os.fsencode(a), _AT_FDCWD, os.fsencode(b), _RENAME_EXCHANGE)
+    if r == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.ENOSYS, errno.EINVAL, errno.ENOTSUP, errno.EOPNOTSUPP):
+        return False
+    raise OSError(err, os.strerror(err), str(a))
+
+
+def publish(stage, out, lock=None):
+    """Swap the complete new set in ``stage`` in as ``out``; delete the old set.
+
+    Parameters
+    ----------
+    stage : Path
+        Staging folder from :func:`staging_folder`, holding the complete new set.
+    out : Path
+        The output folder (it holds the run's lock file and working folder).
+    lock : OutputLock, optional
+        The run's lock: a copy of it goes into ``stage`` first, so that the folder is locked
+        at every instant, before and after the swap.
+    """
+    stage, out = Path(stage), Path(out)
+    if lock is not None and lock.path.exists():
+        shutil.copyfile(lock.path, stage / LOCK_NAME)
+    if out.exists():
+        if not _exchange(stage, out):
+            # two renames (a short window without `out`)
+            old = Path(str(stage) + "-old")
+            os.rename(out, old)
+            os.rename(stage, out)
+            stage = old
+        shutil.rmtree(stage, ignore_errors=True)  # now the old set
+    else:
+        os.rename(stage, out)
+
+
+def clean_stale_staging(out):
+    """Remove staging folders of earlier killed runs on ``out`` (call with the lock held).
+
+    Only folders of this module's name pattern for ``out`` are touched: ``.OUT.batch-staging-
+    PID-XXXX`` (and their ``-old`` form of the fallback swap). While this run holds the lock no
+    other run can be using one, so every such folder is stale.
+    """
+    out = Path(out)
+    if not out.parent.is_dir():
+        return
+    prefix = _STAGING.format(name=out.name)
+    for p in sorted(out.parent.iterdir()):
+        if p.name.startswith(prefix) and p.is_dir() and not p.is_symlink():
+            shutil.rmtree(p, ignore_errors=True)
