@@ -16,12 +16,11 @@ Oracles, both outside the kernel's algebra:
 
 import numpy as np
 import pytest
-from invert.stages.assimilate import CoefficientDynamics, run_smoother
 from scipy import linalg, stats
 
 from invert.geometry.disk import Disk
 from invert.prior import SmoothnessPrior
-from invert.stages.assimilate import kernel
+from invert.stages.assimilate import CoefficientDynamics, kernel, run_smoother
 
 
 def _model(mean_var=100.0, time_scale=5.0, n_modes=3):
