@@ -68,7 +68,8 @@ ul.cautions li{margin:.2em 0}
 
 
 def _table(header, rows):
-    h = "".join(f"<th>{html.escape(str(c))}</th>" for c in header)
+    # header and rows are HTML already: every user string is escaped where it enters
+    h = "".join(f"<th>{c}</th>" for c in header)
     body = "".join("<tr>" + "".join(f"<td>{c}</td>" for c in r) + "</tr>" for r in rows)
     return f"<table><tr>{h}</tr>{body}</table>"
 
@@ -108,13 +109,15 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
         diagnostics = diagnose(estimate, problem, level=level, threshold=threshold)
     figs = write_figures(out, estimate, problem, readings, level, unit, length_unit=length_unit,
                          diagnostics=diagnostics, threshold=threshold)
-    u = f" {unit}" if unit else ""
+    # user strings are escaped once, here; everything below receives HTML-safe text
+    u = f" {html.escape(unit)}" if unit else ""
+    length_unit = html.escape(length_unit or "")
     lvl = f"{round(level * 100):g} %"
     parts = [f"<h1>{html.escape(title or 'rim-invert report')}</h1>",
              f"<p class='small'>Readings: {html.escape(str(readings.source))} · method "
              f"{html.escape(estimate.method)} · intervals are central {lvl} intervals · values in "
              f"{html.escape(unit or 'the readings’ unit')}, lengths in "
-             f"{html.escape(length_unit or 'the unit of the radius')}.</p>"]
+             f"{length_unit or 'the unit of the radius'}.</p>"]
     # model check first: it says whether the rest can be trusted
     parts += _check_section(diagnostics.check, u)
     warn = list(summary["warnings"]) if summary is not None else \
