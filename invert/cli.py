@@ -17,6 +17,8 @@ from ._validation import check_level
 from .errors import InputError
 
 EXIT_BAD_INPUT = 2
+#: Exit code when the operating system refused a read or write (disk full, permissions).
+EXIT_SYSTEM = 1
 
 
 class _Parser(argparse.ArgumentParser):
@@ -369,6 +371,10 @@ def main(argv=None):
     except ValueError as exc:
         print(f"rim-invert: error: {str(exc).splitlines()[0]}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except OSError as exc:  # the system refused a read or write: one line, nothing half-written
+        where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
+        print(f"rim-invert: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        return EXIT_SYSTEM
     return 0
 
 

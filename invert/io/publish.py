@@ -17,9 +17,11 @@ folders of killed runs are removed at the start of the next run on
 the same folder (:func:`clean_stale_staging`; only names of this module's pattern, and only
 while the lock is held).
 
-Used by ``rim-invert batch`` (:mod:`invert.batch.runner`). The output folder may hold only what
-batch writes (:data:`OWN_NAMES`): a folder with other files is refused at the start, since the
-swap replaces the folder as a whole.
+Used by ``rim-invert batch`` (:mod:`invert.batch.runner`) and by ``fit``, ``demo`` and
+``advise`` (:func:`invert.report.files.staged_output`), each with its own ``command`` name in
+the staging folders. The output folder may hold only what the tool writes (:data:`OWN_NAMES`,
+:data:`FIT_NAMES`): a folder with other files is refused at the start, since the swap replaces
+the folder as a whole.
 """
 
 from __future__ import annotations
@@ -34,7 +36,7 @@ from pathlib import Path
 
 from ..errors import InputError
 
-__all__ = ["LOCK_NAME", "OWN_NAMES", "OutputLock", "staging_folder", "publish",
+__all__ = ["LOCK_NAME", "OWN_NAMES", "FIT_NAMES", "OutputLock", "staging_folder", "publish",
            "clean_stale_staging", "check_own_folder"]
 
 #: Lock file inside the output folder.
@@ -42,9 +44,15 @@ LOCK_NAME = ".rim-invert.lock"
 #: Names batch writes into its output folder (anything else there is refused).
 OWN_NAMES = frozenset({"frames.csv", "frames.parquet", "query.csv", "query.parquet",
                        "summary.json", ".batch-work", LOCK_NAME})
+#: Names fit, demo and advise write into their output folder (figures are ``*.png``).
+FIT_NAMES = frozenset({"summary.json", "boundary.csv", "query.csv", "field.csv", "report.html",
+                       "sensors.csv", "posterior.nc", "candidates.csv", "repair.csv",
+                       "advice.json", LOCK_NAME})
 #: Temporary files of the atomic writers (invert.io.writers): ``.NAME.tmp-PID``.
 _OWN_TMP = re.compile(r"^\.(frames|query|summary)\.\w+\.tmp-\d+$")
-_STAGING = ".{name}.batch-staging-"
+_STAGING = ".{name}.{command}-staging-"
+#: Staging folders of fit before it published by folder exchange (cleaned like the others).
+_LEGACY_FIT_STAGING = ".{name}.staging-"
 _RENAME_EXCHANGE = 2   # linux/fs.h
 _AT_FDCWD = -100       # linux/fcntl.h
 
@@ -96,14 +104,18 @@ class OutputLock:
 
     def _busy(self, pid, host):
         who = f"pid {pid} on {host}" if pid is not None else "a run starting now"
-        return InputError(str(self.out), f"another batch run ({who}) is writing into this "
-                          f"folder; wait for it to finish or choose another --out")
+        return InputError(str(self.out), f"another rim-invert run ({who}) is writing into "
+                          f"this folder; wait for it to finish or choose another --out")
 
     def acquire(self):
         """Create the lock file, or take over a stale one; raise when the folder is busy."""
         import fcntl
 
-        self.out.mkdir(parents=True, exist_ok=True)
+        try:
+            self.out.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:  # under a file, read-only parent, ...
+            raise InputError(str(self.out), f"the output folder cannot be created "
+                             f"({exc.strerror or exc.__class__.__name__})") from None
         for _ in range(5):
             try:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_RDWR, 0o644)
@@ -180,32 +192,43 @@ class OutputLock:
             self._fd = None
 
 
-def check_own_folder(out):
-    """Refuse an output folder holding files batch did not write (the swap replaces it).
+def check_own_folder(out, command="batch"):
+    """Refuse an output folder holding files ``command`` did not write (the swap replaces it).
+
+    ``command`` is ``"batch"`` (names :data:`OWN_NAMES`) or ``"fit"`` (fit, demo and advise:
+    :data:`FIT_NAMES` and figures ``*.png``).
 
     Raises
     ------
     InputError
-        Naming the folder and one foreign entry.
+        Naming the folder and one foreign entry; also when ``out`` exists but is a file.
     """
     out = Path(out)
+    if out.exists() and not out.is_dir():
+        raise InputError(str(out), "is a file, not a folder: give a folder for the outputs")
     if not out.is_dir():
         return
-    foreign = sorted(p.name for p in out.iterdir()
-                     if p.name not in OWN_NAMES and not _OWN_TMP.match(p.name))
+
+    def own(name):
+        if command == "batch":
+            return name in OWN_NAMES or _OWN_TMP.match(name)
+        return name in FIT_NAMES or (name.endswith(".png") and "/" not in name)
+
+    foreign = sorted(p.name for p in out.iterdir() if not own(p.name))
     if foreign:
-        raise InputError(str(out), f"holds files that batch did not write (e.g. "
+        what = "batch" if command == "batch" else "rim-invert fit, demo or advise"
+        raise InputError(str(out), f"holds files that {what} did not write (e.g. "
                          f"'{foreign[0]}'); the finished outputs replace the folder as a "
-                         f"whole: give a new or empty folder, or one written by batch")
+                         f"whole: give a new or empty folder, or one written by {what}")
 
 
-def staging_folder(out):
+def staging_folder(out, command="batch"):
     """Make a new staging folder beside ``out`` (same parent, so the same file system)."""
     import tempfile
 
     out = Path(out)
-    return Path(tempfile.mkdtemp(prefix=_STAGING.format(name=out.name) + f"{os.getpid()}-",
-                                 dir=out.parent))
+    prefix = _STAGING.format(name=out.name, command=command) + f"{os.getpid()}-"
+    return Path(tempfile.mkdtemp(prefix=prefix, dir=out.parent))
 
 
 def _exchange(a, b):
@@ -251,17 +274,20 @@ def publish(stage, out, lock=None):
         os.rename(stage, out)
 
 
-def clean_stale_staging(out):
+def clean_stale_staging(out, command="batch"):
     """Remove staging folders of earlier killed runs on ``out`` (call with the lock held).
 
-    Only folders of this module's name pattern for ``out`` are touched: ``.OUT.batch-staging-
-    PID-XXXX`` (and their ``-old`` form of the fallback swap). While this run holds the lock no
-    other run can be using one, so every such folder is stale.
+    Only folders of this module's name pattern for ``out`` and ``command`` are touched:
+    ``.OUT.COMMAND-staging-PID-XXXX`` (and their ``-old`` form of the fallback swap), and for
+    fit the ``.OUT.staging-XXXX`` folders of earlier versions. While this run holds the lock
+    no other run can be using one, so every such folder is stale.
     """
     out = Path(out)
     if not out.parent.is_dir():
         return
-    prefix = _STAGING.format(name=out.name)
+    prefixes = [_STAGING.format(name=out.name, command=command)]
+    if command == "fit":
+        prefixes.append(_LEGACY_FIT_STAGING.format(name=out.name))
     for p in sorted(out.parent.iterdir()):
-        if p.name.startswith(prefix) and p.is_dir() and not p.is_symlink():
+        if p.name.startswith(tuple(prefixes)) and p.is_dir() and not p.is_symlink():
             shutil.rmtree(p, ignore_errors=True)

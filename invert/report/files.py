@@ -8,9 +8,7 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import shutil
-import tempfile
 from contextlib import contextmanager
 from pathlib import Path
 
@@ -29,20 +27,40 @@ CAUTIONS = (
 
 @contextmanager
 def staged_output(out_dir):
-    """Yield a staging folder; on success move its files into ``out_dir``.
+    """Yield a staging folder; on success publish it as ``out_dir``, the whole set at once.
 
-    On an exception the staging folder is removed and ``out_dir`` is left as it was.
+    The output folder is locked for the run (:class:`~invert.io.publish.OutputLock`: a second
+    run on it stops with one line), must hold nothing but an earlier output of the tool
+    (:func:`~invert.io.publish.check_own_folder`), and is replaced as a whole by one folder
+    exchange (:func:`~invert.io.publish.publish`): at every instant it holds the complete old
+    set or the complete new one, so files of an earlier run (an MCMC run's posterior.nc beside a
+    new Tikhonov fit) never survive. Staging folders of killed runs are removed first. On an
+    exception the staging folder is removed and ``out_dir`` is left as it was.
     """
+    from ..io.publish import (
+        OutputLock,
+        check_own_folder,
+        clean_stale_staging,
+        publish,
+        staging_folder,
+    )
+
     out = Path(out_dir)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    stage = Path(tempfile.mkdtemp(prefix=f".{out.name}.staging-", dir=out.parent))
+    check_own_folder(out, "fit")
+    fresh = not out.exists()
     try:
-        yield stage
-        out.mkdir(parents=True, exist_ok=True)
-        for f in sorted(stage.iterdir()):
-            os.replace(f, out / f.name)
-    finally:
-        shutil.rmtree(stage, ignore_errors=True)
+        with OutputLock(out) as lock:
+            clean_stale_staging(out, "fit")
+            stage = staging_folder(out, "fit")
+            try:
+                yield stage
+                publish(stage, out, lock)
+            finally:
+                shutil.rmtree(stage, ignore_errors=True)
+    except BaseException:
+        if fresh and out.is_dir() and not any(out.iterdir()):
+            out.rmdir()  # made only to hold the lock: leave no empty folder behind
+        raise
 
 
 def to_jsonable(obj):
