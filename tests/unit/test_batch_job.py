@@ -91,7 +91,7 @@ def test_parallel_in_time_is_an_exact_mode_option(tmp_path):
 
 def test_spilled_state_round_trips_exactly_and_builds_only_named_classes(tmp_path):
     # oracle: numpy's own equality and dtypes/memory order of the originals
-    from invert.stages.assimilate.core import FilterState
+    from invert.stages.assimilate import FilterState
 
     from invert.batch.spill import load_state, save_state
 
