@@ -1,7 +1,7 @@
 """Sensor advice: rank-one algebra, the disk-average weights, greedy vs brute force, gaps, CLI.
 
 Sources: rank-one (Sherman–Morrison) update of the posterior covariance and the goal-oriented
-A-optimal gain (REFERENCES §2 "Where to add a sensor"; Alexanderian 2021); disk integrals by
+A-optimal gain (Joshi & Boyd 2009; Alexanderian 2021); disk integrals by
 scipy.integrate.
 """
 
@@ -99,7 +99,8 @@ def test_greedy_matches_brute_force():
         assert int(np.argmin(targets)) == i
         assert np.trace(H @ cov @ H.T) - targets[i] == pytest.approx(gain, rel=1e-8)
         cov = _posterior_with(cov, rows[i], nv)
-    # Greedy never increases the target (REFERENCES §2).
+    # Greedy never increases the target (Krause, Singh & Guestrin 2008: a rank-one update never
+    # increases the posterior variance).
     assert all(g >= 0 for g in gains)
 
 

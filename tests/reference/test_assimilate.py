@@ -1,7 +1,7 @@
 """Kalman filter / RTS smoother of the coefficients (invert.stages.assimilate).
 
 Oracles: the dense joint Gaussian posterior of the stacked linear model (Rauch, Tung & Striebel
-1965: the RTS smoother is exact for linear Gaussian models; REFERENCES.md §3) and
+1965: the RTS smoother is exact for linear Gaussian models; Särkkä 2013, Thm 8.2) and
 scipy.stats.multivariate_normal.logpdf for the prediction-error log-likelihood (Harvey 1989).
 """
 

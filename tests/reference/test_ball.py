@@ -59,7 +59,8 @@ def random_interior(rng, n, rho_max=0.9):
 
 # --- spherical harmonics --------------------------------------------------------------------
 def test_real_harmonics_orthonormal_under_gauss_legendre_product_rule():
-    # REFERENCES.md §6: Gram matrix to degree 6 on a Gauss-Legendre x uniform grid = I to 4e-14.
+    # Orthonormality of real spherical harmonics (DLMF §14.30): Gram matrix to degree 6 on a Gauss-
+    # Legendre x uniform grid = I to 4e-14.
     # 8 nodes integrate degree <= 15 exactly, more than the degree-12 products needed.
     T, P, _, W = gl_sphere(8)
     lm = [(ell, m) for ell in range(7) for m in range(-ell, ell + 1)]
@@ -84,7 +85,7 @@ def test_design_columns_orthonormal_under_surface_mean_with_constant_one():
 
 
 def test_check_values_y00_and_degree_one():
-    # REFERENCES.md §6: Y00 = 1/(2 sqrt(pi)) = 0.28209479177387814; Y_{1,1} = sqrt(3/4pi) x/r,
+    # DLMF §14.30: Y00 = 1/(2 sqrt(pi)) = 0.28209479177387814; Y_{1,1} = sqrt(3/4pi) x/r,
     # Y_{1,-1} = sqrt(3/4pi) y/r; Y_{1,0} = sqrt(3/4pi) z/r (standard table, e.g. DLMF 14.30).
     rng = np.random.default_rng(0)
     T, P = rng.uniform(0, np.pi, 20), rng.uniform(-np.pi, np.pi, 20)
@@ -129,7 +130,7 @@ def test_addition_theorem(ell):
 # --- Poisson kernel -----------------------------------------------------------------------
 @pytest.mark.parametrize("radius", [1.0, 2.5])
 def test_ball_kernel_integrates_to_one(radius):
-    # Evans §2.2.4 / REFERENCES.md §6: the integral over |zeta| = R is 1. The kernel is analytic
+    # Evans, PDE §2.2.4: the integral over |zeta| = R is 1. The kernel is analytic
     # on the sphere for |x| <= 0.7 R and the Gauss-Legendre product rule converges like
     # (|x|/R)^n, so 80 nodes give double precision; tolerance 1e-12.
     _, _, u, W = gl_sphere(80)
@@ -140,7 +141,8 @@ def test_ball_kernel_integrates_to_one(radius):
 
 
 def test_ball_kernel_series_check_value():
-    # REFERENCES.md §6: unit ball, r = 0.5, cos gamma = 0.3: 0.0644563919366958, and the series
+    # Series P = sum (2l+1)/(4 pi) r^l P_l(cos gamma) (Axler, Bourdon & Ramey): unit ball, r = 0.5,
+    # cos gamma = 0.3: 0.0644563919366958, and the series
     # sum (2l+1)/(4pi) r^l P_l(cos gamma) (Axler, Bourdon & Ramey ch. 5), summed here to l = 80
     # (terms fall like 0.5^l: remainder < 1e-22).
     x = np.array([0.5 * np.sqrt(1 - 0.09), 0.0, 0.5 * 0.3])
@@ -243,7 +245,8 @@ def test_known_coefficient_of_x2_minus_y2():
 
 
 def test_rim_data_x1_squared_check_value():
-    # REFERENCES.md §6: rim data x1^2 on the unit sphere gives u = 1/3 + (2x1^2 - x2^2 - x3^2)/3,
+    # Harmonic polynomial check (Axler, Bourdon & Ramey): rim data x1^2 on the unit sphere gives u =
+    # 1/3 + (2x1^2 - x2^2 - x3^2)/3,
     # 0.326666666666667 at (0.3, -0.2, 0.4), u(0) = 1/3. Checked through the basis and through
     # the closed-form kernel (quadrature with 90 nodes, 1e-12).
     b = Ball(1.0, (0, 0, 0), 4)

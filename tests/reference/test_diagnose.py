@@ -95,7 +95,8 @@ def test_resolved_degree_falls_with_depth(designed):
 
 
 def test_attenuation_is_rho_to_the_n():
-    # Definition of the interior damping (DESIGN.md): harmonic n scales by rho^n.
+    # Definition of the interior damping (the Poisson integral written as a series, Evans PDE
+    # §2.2.4): harmonic n scales by rho^n.
     a = attenuation([0.5, 1.0], [0, 1, 3])
     assert a == pytest.approx(np.array([[1, 0.5, 0.125], [1, 1, 1]]), rel=1e-15)
 

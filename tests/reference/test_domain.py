@@ -57,7 +57,7 @@ def test_re_zn_and_x2_minus_y2():
 
 def test_cos_squared_check_value():
     # Rim data cos^2 phi gives u = 1/2 + (r^2/2) cos 2 theta; 0.625407207682490 at r=0.6,
-    # theta=0.4 (REFERENCES.md section 6, reproduced there by quadrature).
+    # theta=0.4 (closed form; reproduced by scipy quadrature).
     d = Disk(1.0, (0, 0), 4)
     th = np.arange(64) * 2 * np.pi / 64
     c = d.rim_coefficients(np.cos(th) ** 2)
@@ -78,7 +78,7 @@ def test_log_of_distance_to_outside_point(rng):
 
 @pytest.mark.parametrize(
     "alpha,beta,z,expected",
-    [  # REFERENCES.md section 6 (reproduced there by quadrature; Garnett & Marshall ch. I)
+    [  # closed-form harmonic measure (Garnett & Marshall 2005, ch. I; by scipy quadrature)
         (0, np.pi / 2, 0.0, 0.25),
         (0, np.pi / 2, 0.5 * np.exp(1j * np.pi / 4), 0.568611667367831),
         (-np.pi / 2, np.pi / 2, 0.5, 0.795167235300867),
@@ -97,7 +97,8 @@ def test_arc_harmonic_measure_check_values(alpha, beta, z, expected):
 
 def test_step_boundary_on_arc_forward():
     # Arc indicator rim data: the truncated Fourier series evaluated inside matches the harmonic
-    # measure of the arc and the half-disk formula 1/2 + (2/pi) arctan x (REFERENCES.md 6).
+    # measure of the arc and the half-disk formula 1/2 + (2/pi) arctan x (Garnett & Marshall 2005,
+    # ch. I).
     d = Disk(1.0, (0, 0), 400)
     c = arc_fourier_coefficients(-np.pi / 2, np.pi / 2, 400)
     xs = np.linspace(-0.8, 0.8, 9)
@@ -111,7 +112,7 @@ def test_step_boundary_on_arc_forward():
 
 def test_symmetric_arc_formula():
     # |phi| < a at (r, theta): [arctan(k tan((theta+a)/2)) - arctan(k tan((theta-a)/2))]/pi,
-    # k = (1+r)/(1-r); 0.549561017078302 at a=0.8, (0.5, 0.3) (REFERENCES.md 6).
+    # k = (1+r)/(1-r); 0.549561017078302 at a=0.8, (0.5, 0.3) (Garnett & Marshall 2005, ch. I).
     a, r, th = 0.8, 0.5, 0.3
     k = (1 + r) / (1 - r)
     val = (np.arctan(k * np.tan((th + a) / 2)) - np.arctan(k * np.tan((th - a) / 2))) / np.pi

@@ -1,7 +1,8 @@
 """Tests of the Gaussian stage (closed-form posterior, type-II maximum likelihood).
 
-Oracles: scikit-learn's BayesianRidge (evidence maximisation, REFERENCES.md §1), the gain form
-of the Gaussian posterior (Bishop 2006 eqs. 3.53-3.54; Rasmussen & Williams 2006 eq. 2.25),
+Oracles: scikit-learn's BayesianRidge (evidence maximisation, Bishop 2006 §3.5; MacKay
+1992), the gain form of the Gaussian posterior (Bishop 2006 eqs. 3.53-3.54; Rasmussen &
+Williams 2006 eq. 2.25),
 scipy.stats.multivariate_normal for the evidence, and seeded calibration with truth drawn from
 the prior.
 """
@@ -48,7 +49,8 @@ def rng():
 
 
 def test_hyperparameters_match_sklearn_bayesian_ridge(rng):
-    # REFERENCES.md §1: BayesianRidge maximises the same evidence on the standard-form problem
+    # Bishop 2006 §3.5 / MacKay 1992: BayesianRidge maximises the same evidence on the standard-form
+    # problem
     # Phi = G D(s), t = y; its lambda_ is our 1/tau^2 and alpha_ our 1/noise^2. With the gamma
     # hyperpriors set to 0 both find the same stationary point; rtol 1e-6 covers sklearn's
     # fixed-point stopping rule (tol=1e-10 on the coefficients).

@@ -86,7 +86,8 @@ def test_evidence_choice_matches_bayesian_ridge(rng):
 
 
 def test_log_evidence_is_gaussian_logpdf(rng):
-    # log p(y) = log N(y | 0, G Sigma_p G^T + Sigma_e) (Bishop 2006 eq. 3.86; REFERENCES 2).
+    # log p(y) = log N(y | 0, G Sigma_p G^T + Sigma_e) (Bishop 2006 eq. 3.86; Rasmussen & Williams
+    # 2006 eq. 2.30).
     from scipy.stats import multivariate_normal
 
     prob, _ = make_problem(rng, m_rim=12, n_probe=2, sigma=0.2)
@@ -123,7 +124,7 @@ def test_gcv_equals_hat_matrix_definition_and_brute_force(rng):
 
 def test_lcurve_curvature_matches_finite_differences(rng):
     # Hansen's closed-form curvature vs finite-difference curvature of (log sqrt(rho),
-    # log sqrt(eta)) against log lambda (REFERENCES 1: agrees to ~6 digits).
+    # log sqrt(eta)) against log lambda (Hansen & O'Leary 1993; checked to agree to ~6 digits).
     prob, _ = make_problem(rng)
     _, _, d = standard_form(prob)
     spec = Spectrum(prob, d)
@@ -256,7 +257,8 @@ def test_log_distance_recovered_from_dense_data():
 
 def test_arc_step_recovered_in_interior():
     # A step on the rim arc [-pi/2, pi/2] seen by 120 sensors (values 0/1): inside, the field is
-    # the half-disk harmonic measure 1/2 + (2/pi) arctan x (REFERENCES 6). 0.02: a step is not
+    # the half-disk harmonic measure 1/2 + (2/pi) arctan x (Garnett & Marshall 2005, ch. I). 0.02: a
+    # step is not
     # smooth, so a smoothness prior blurs it; the blur decays inward.
     d = Disk(1.0, (0, 0), 60)
     th = (np.arange(120) + 0.5) * 2 * np.pi / 120

@@ -91,9 +91,8 @@ def test_parallel_in_time_is_an_exact_mode_option(tmp_path):
 
 def test_spilled_state_round_trips_exactly_and_builds_only_named_classes(tmp_path):
     # oracle: numpy's own equality and dtypes/memory order of the originals
-    from invert.stages.assimilate import FilterState
-
     from invert.batch.spill import load_state, save_state
+    from invert.stages.assimilate import FilterState
 
     F = np.asfortranarray(np.arange(6.0).reshape(2, 3))
     state = FilterState(np.zeros(3), np.eye(3), key=(0.5, b"\x01"),

@@ -1,4 +1,7 @@
-"""Smoothness prior: variances, point variance and truncation (REFERENCES.md section 2)."""
+"""Smoothness prior: variances, point variance and truncation.
+
+Matérn-type prior on the circle and sphere: Borovitskiy et al. 2020 (NeurIPS).
+"""
 
 import numpy as np
 import pytest
@@ -8,7 +11,7 @@ from invert import Disk, SmoothnessPrior, truncation_degree
 
 def test_point_variance_matches_prior_draws(rng):
     # Point variance about the mean level = tau^2 sum_{n>=1} (1+n^2)^-s on the circle
-    # (Borovitskiy et al. 2020; REFERENCES.md 2). Monte Carlo with 20000 draws: relative sd of a
+    # (Borovitskiy et al. 2020, NeurIPS). Monte Carlo with 20000 draws: relative sd of a
     # variance estimate is sqrt(2/20000) = 1 %, so 5 % is > 4 sd.
     d = Disk(1.0, (0, 0), 200)
     prior = SmoothnessPrior(s=1.5, tau=2.0)
