@@ -40,7 +40,7 @@ from .._search import grid_then_refine
 from .recursion import close_relative, linear_recursion
 
 __all__ = ["FilterSegment", "FilterState", "MeasurementUpdate", "filter_segment",
-           "fit_time_scale", "information_update", "innovation_terms", "is_diagonal",
+           "exact_loglik", "fit_time_scale", "information_update", "innovation_terms", "is_diagonal",
            "log_likelihood", "measurement_update"]
 
 _LOG2PI = float(np.log(2 * np.pi))
@@ -424,10 +424,29 @@ def log_likelihood(model, t, Y, *, steady_tol=1e-10, segment=65536):
     return state.loglik
 
 
-def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=1e-10):
+def exact_loglik(model, t, Y, *, steady_tol=0.0, use_kernel=True):
+    """Exact log-likelihood of the readings, by the compiled kernel when it can run.
+
+    ``kernel.filter_loglik`` (numba, sequential scalar updates, exact) when numba imports and
+    the kernel accepts the model; otherwise :func:`log_likelihood` with ``steady_tol``.
+    """
+    if use_kernel:
+        try:
+            from .kernel import KernelModel, filter_loglik
+
+            km = KernelModel.from_dynamics(model)
+        except (ImportError, ValueError):
+            pass
+        else:
+            return filter_loglik(km, t, Y)
+    return log_likelihood(model, t, Y, steady_tol=steady_tol)
+
+
+def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=None, use_kernel=True):
     r"""Maximum-likelihood time scale :math:`T` of the dynamics.
 
-    Maximises the prediction-error log-likelihood over :math:`\log T` (bounded Brent search).
+    Maximises the prediction-error log-likelihood over :math:`\log T` (grid, then bounded
+    Brent search: :func:`~invert.stages._search.grid_then_refine`).
 
     Parameters
     ----------
@@ -435,6 +454,14 @@ def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=1e-10):
     t, Y : frame times and readings (as in :func:`filter_segment`).
     bounds : (float, float), optional
         Search range for ``T``; default from 0.5 to 1e6 times the median time step.
+    steady_tol : float, optional
+        Used only by the NumPy fallback (:func:`log_likelihood`); None means 0 there (the
+        exact recursion). The compiled kernel is exact at every frame and needs none, so the
+        likelihood is exact whenever the kernel runs, whatever ``steady_tol``.
+    use_kernel : bool, default=True
+        Evaluate the likelihood with the compiled exact kernel
+        (:func:`~invert.stages.assimilate.kernel.filter_loglik`) when numba is installed and
+        the kernel accepts the model; False forces the NumPy recursion.
 
     Returns
     -------
@@ -443,14 +470,16 @@ def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=1e-10):
         Log-likelihood at the optimum.
     """
     t = np.asarray(t, float)
+    Y = np.asarray(Y, float)
     if bounds is None:
         step = float(np.median(np.diff(t))) if len(t) > 1 else 1.0
         bounds = (0.5 * step, 1e6 * step)
     lo, hi = np.log(bounds[0]), np.log(bounds[1])
+    tol = 0.0 if steady_tol is None else float(steady_tol)
 
     def nll(logT):
-        return -log_likelihood(model.with_time_scale(np.exp(logT)), t, Y,
-                               steady_tol=steady_tol)
+        return -exact_loglik(model.with_time_scale(np.exp(logT)), t, Y, steady_tol=tol,
+                             use_kernel=use_kernel)
 
     x, fx = grid_then_refine(nll, np.linspace(lo, hi, 9), xatol=1e-3)
     return float(np.exp(x)), float(-fx)
