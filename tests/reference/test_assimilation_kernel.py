@@ -17,14 +17,14 @@ Oracles, both outside the kernel's algebra:
 
 import numpy as np
 import pytest
-from invert.stages.assimilate.dynamics import CoefficientDynamics
-from invert.stages.assimilate.filter import exact_loglik, fit_time_scale, log_likelihood
-from invert.stages.assimilate.smoother import run_smoother
 from scipy import linalg, stats
 
 from invert.geometry.disk import Disk
 from invert.prior import SmoothnessPrior
 from invert.stages.assimilate import kernel
+from invert.stages.assimilate.dynamics import CoefficientDynamics
+from invert.stages.assimilate.filter import exact_loglik, fit_time_scale, log_likelihood
+from invert.stages.assimilate.smoother import run_smoother
 
 
 def _model(mean_var=100.0, time_scale=5.0, n_modes=3):
@@ -217,7 +217,7 @@ def test_loglik_and_chi2_equal_stacked_density(case):
     # innovations whiten the stacked values, so sum_k v_k' S_k^-1 v_k = y' C^-1 y.
     # Tolerance 1e-9 relative: scipy's eigendecomposition of C (mean-level variance 100
     # shared by ~300 values against noise variance 0.01: condition ~1e6) rounds to ~1e-11,
-    # measured up to 4e-11 over six seeds; the kernel itself agrees with the NumPy recursion to ~1e-12.
+    # measured up to 4e-11 over six seeds; the kernel agrees with the NumPy recursion to ~1e-12.
     model, t, Y, _ = case
     C, yo = _stacked_values(model, t, Y)
     ref = stats.multivariate_normal(np.zeros(len(yo)), C).logpdf(yo)

@@ -40,8 +40,8 @@ from .._search import grid_then_refine
 from .recursion import close_relative, linear_recursion
 
 __all__ = ["FilterSegment", "FilterState", "MeasurementUpdate", "filter_segment",
-           "exact_loglik", "fit_time_scale", "information_update", "innovation_terms", "is_diagonal",
-           "log_likelihood", "measurement_update"]
+           "exact_loglik", "fit_time_scale", "information_update", "innovation_terms",
+           "is_diagonal", "log_likelihood", "measurement_update"]
 
 _LOG2PI = float(np.log(2 * np.pi))
 
