@@ -2,8 +2,9 @@
 
 ``dynamics`` (the state-space model), ``filter`` (the measurement update and the filter over a
 segment of frames), ``smoother`` (the RTS smoother and the in-memory filter-smoother),
-``parallel`` (parallel-in-time elements) and ``recursion`` (the steady-state linear
-recursions). Pure NumPy/SciPy.
+``parallel`` (parallel-in-time elements), ``recursion`` (the steady-state linear
+recursions): NumPy/SciPy. ``kernel`` (with ``_kernel_loops``) is the compiled exact
+filter-smoother (numba), imported on use; the time-scale fit evaluates its likelihood there.
 """
 
 from .dynamics import CoefficientDynamics
@@ -11,8 +12,10 @@ from .filter import (
                      FilterSegment,
                      FilterState,
                      MeasurementUpdate,
+                     exact_loglik,
                      filter_segment,
                      fit_time_scale,
+                     information_update,
                      log_likelihood,
                      measurement_update,
 )
@@ -31,9 +34,11 @@ __all__ = [
     "close_relative",
     "combine_filter",
     "combine_smoother",
+    "exact_loglik",
     "filter_segment",
     "filter_summary",
     "fit_time_scale",
+    "information_update",
     "linear_recursion",
     "log_likelihood",
     "measurement_update",

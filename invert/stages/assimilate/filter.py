@@ -40,7 +40,8 @@ from .._search import grid_then_refine
 from .recursion import close_relative, linear_recursion
 
 __all__ = ["FilterSegment", "FilterState", "MeasurementUpdate", "filter_segment",
-           "fit_time_scale", "log_likelihood", "measurement_update"]
+           "exact_loglik", "fit_time_scale", "information_update", "innovation_terms",
+           "is_diagonal", "log_likelihood", "measurement_update"]
 
 _LOG2PI = float(np.log(2 * np.pi))
 
@@ -110,7 +111,7 @@ def measurement_update(P, H, r, *, m=None, y=None, joseph=True):
     y : ndarray of shape (k,), optional
         The readings.
     joseph : bool, default=True
-        Posterior covariance in Joseph form, :math:`(I-KH)P(I-KH)^	op + KRK^	op` (stays
+        Posterior covariance in Joseph form, :math:`(I-KH)P(I-KH)^\top + KRK^\top` (stays
         positive semi-definite under rounding); else :math:`(I-KH)P`.
 
     Returns
@@ -119,9 +120,9 @@ def measurement_update(P, H, r, *, m=None, y=None, joseph=True):
 
     Notes
     -----
-    :math:`S = HPH^	op + R`, :math:`K = PH^	op S^{-1}`, :math:`v = y - Hm`,
+    :math:`S = HPH^\top + R`, :math:`K = PH^\top S^{-1}`, :math:`v = y - Hm`,
     :math:`m^+ = m + Kv` (Särkkä 2013, Thm 4.2; Joseph form: Bucy & Joseph 1968). ``S^{-1}``
-    and the covariance are symmetrised, :math:`	frac12(X + X^	op)`.
+    and the covariance are symmetrised, :math:`\tfrac12(X + X^\top)`.
     """
     PHt = P @ H.T
     S = H @ PHt + np.diag(r)
@@ -136,6 +137,74 @@ def measurement_update(P, H, r, *, m=None, y=None, joseph=True):
         v = y - H @ m
         mn = m + K @ v
     return MeasurementUpdate(mn, Pn, K, S, Sinv, IKH, v)
+
+
+def information_update(d, H, r, *, m=None, y=None):
+    r"""Update a Gaussian state with diagonal covariance by readings, in information form.
+
+    The same posterior as :func:`measurement_update` with ``P = diag(d)``, computed without
+    the cancellation of the covariance form when ``d`` is broad (a mean-level prior variance
+    of 1e8 beside readings of variance 1e-4 loses ~1e-4 relative there).
+
+    Parameters
+    ----------
+    d : ndarray of shape (p,)
+        Diagonal of the prior covariance (all > 0).
+    H, r, m, y : as in :func:`measurement_update`.
+
+    Returns
+    -------
+    MeasurementUpdate
+        ``S`` is formed as :math:`HDH^\top + R` for reference only; ``Sinv`` is from the
+        Woodbury identity, :math:`S^{-1} = R^{-1} - R^{-1}HPH^\top R^{-1}`.
+
+    Notes
+    -----
+    Information form (Anderson & Moore 1979, sec. 6.3): :math:`J = D^{-1} + H^\top R^{-1}H`
+    (Cholesky), :math:`P^+ = J^{-1}`, :math:`K = P^+H^\top R^{-1}`, :math:`m^+ = m + Kv`.
+    The log-determinant and the quadratic form of the innovations follow from the matrix
+    determinant lemma, :math:`\log|S| = \log|R| + \log|D| + \log|J|`, and from
+    :math:`v^\top S^{-1}v = (y - Hm^+)^\top R^{-1}(y - Hm^+) + (m^+ - m)^\top D^{-1}(m^+ - m)`
+    (:func:`innovation_terms`).
+    """
+    d = np.asarray(d, float)
+    w = 1.0 / np.asarray(r, float)
+    J = (H.T * w) @ H
+    J[np.diag_indices_from(J)] += 1.0 / d
+    Lc = np.linalg.cholesky(J)
+    Li = np.linalg.inv(Lc)
+    Pn = Li.T @ Li
+    Pn = 0.5 * (Pn + Pn.T)
+    K = (Pn @ H.T) * w[None, :]
+    IKH = np.eye(len(d)) - K @ H
+    HP = H @ Pn
+    Sinv = np.diag(w) - (w[:, None] * (HP @ H.T)) * w[None, :]
+    Sinv = 0.5 * (Sinv + Sinv.T)
+    S = (H * d[None, :]) @ H.T + np.diag(r)
+    v = mn = None
+    if m is not None:
+        v = y - H @ m
+        mn = m + K @ v
+    return MeasurementUpdate(mn, Pn, K, S, Sinv, IKH, v)
+
+
+def innovation_terms(u, d, H, r, m):
+    r"""Return :math:`(\log|S|, v^\top S^{-1}v)` of an :func:`information_update`.
+
+    Both without forming :math:`S` (see the Notes of :func:`information_update`): the
+    determinant lemma with the Cholesky factor of :math:`J = P^{+\,-1}`, and the sum of
+    squares of the posterior residuals of the readings and of the prior.
+    """
+    logdet = (float(np.sum(np.log(r))) + float(np.sum(np.log(d)))
+              - float(np.linalg.slogdet(u.P)[1]))
+    e = u.v - H @ (u.m - m)
+    dm = u.m - m
+    return logdet, float(e @ (e / r) + dm @ (dm / d))
+
+
+def is_diagonal(P):
+    """Whether every off-diagonal entry of ``P`` is an exact zero."""
+    return not np.any(P[~np.eye(len(P), dtype=bool)])
 
 
 def _riccati_fixed_point(f, Ho, q, ro, max_iter=100):
@@ -204,8 +273,11 @@ def _frozen_run(fz, Y, k, e, m, seg):
     return Mr[-1].copy(), fz["P"]
 
 
-def _exact_step(model, seg, k, dt, m, P, y, obs, next_id):
+def _exact_step(model, seg, k, dt, m, P, y, obs, next_id, diagonal=False):
     """One exact prediction and measurement update of frame ``k``; returns ``(m, P, step)``.
+
+    ``diagonal``: the covariance is still the diagonal prior (no reading yet), so the update
+    is done in information form (:func:`information_update`).
 
     The predicted and filtered covariances are stored in ``seg`` under the keys ``next_id``
     and ``next_id + 1``; ``step`` holds what the steady-state detection needs.
@@ -220,11 +292,17 @@ def _exact_step(model, seg, k, dt, m, P, y, obs, next_id):
     if idx.size:
         Ho = model.H[idx]
         ro = model.noise_var[idx]
-        u = measurement_update(Pp, Ho, ro, m=mp, y=y[idx])
+        if diagonal:
+            # first update from the diagonal prior: information form (no cancellation)
+            d = np.diag(Pp).copy()
+            u = information_update(d, Ho, ro, m=mp, y=y[idx])
+            logdet, q = innovation_terms(u, d, Ho, ro, mp)
+        else:
+            u = measurement_update(Pp, Ho, ro, m=mp, y=y[idx])
+            # numpy's LAPACK calls: scipy's triangular solves were far slower at this size
+            logdet = 2.0 * np.sum(np.log(np.diag(np.linalg.cholesky(u.S))))
+            q = float(u.v @ u.Sinv @ u.v)
         m, P = u.m, u.P
-        # numpy's LAPACK calls: scipy's triangular solves were far slower at this size
-        logdet = 2.0 * np.sum(np.log(np.diag(np.linalg.cholesky(u.S))))
-        q = float(u.v @ u.Sinv @ u.v)
         seg.nis[k] = q
         seg.loglik[k] = -0.5 * (q + logdet + idx.size * _LOG2PI)
         step.update(K=u.K, IKH=u.IKH, Sinv=u.Sinv, logdet=logdet, Ho=Ho, ro=ro)
@@ -292,6 +370,7 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
     frozen = dict(state.frozen) if state.frozen is not None else None
     prev, last_key = state.prev, state.key
     fixed = dict(state.fixed)
+    diagonal = is_diagonal(P)  # until the first reading the covariance stays diagonal
     k = 0
     while k < L:
         same = same_next[k] if k > 0 else (last_key is not None and key_of(0) == last_key)
@@ -305,7 +384,8 @@ def filter_segment(model, state, t, Y, *, steady_tol=1e-10, max_transient=None):
             continue
         # full step
         key = key_of(k)
-        m, P, st = _exact_step(model, seg, k, dts[k], m, P, Y[k], obs[k], next_id)
+        m, P, st = _exact_step(model, seg, k, dts[k], m, P, Y[k], obs[k], next_id, diagonal)
+        diagonal = diagonal and not st["idx"].size
         next_id += 2
         f, Pp, idx, K = st["f"], st["Pp"], st["idx"], st["K"]
         # steady-state detection: same key as the previous frame and nothing moved
@@ -344,10 +424,29 @@ def log_likelihood(model, t, Y, *, steady_tol=1e-10, segment=65536):
     return state.loglik
 
 
-def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=1e-10):
+def exact_loglik(model, t, Y, *, steady_tol=0.0, use_kernel=True):
+    """Exact log-likelihood of the readings, by the compiled kernel when it can run.
+
+    ``kernel.filter_loglik`` (numba, sequential scalar updates, exact) when numba imports and
+    the kernel accepts the model; otherwise :func:`log_likelihood` with ``steady_tol``.
+    """
+    if use_kernel:
+        try:
+            from .kernel import KernelModel, filter_loglik
+
+            km = KernelModel.from_dynamics(model)
+        except (ImportError, ValueError):
+            pass
+        else:
+            return filter_loglik(km, t, Y)
+    return log_likelihood(model, t, Y, steady_tol=steady_tol)
+
+
+def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=None, use_kernel=True):
     r"""Maximum-likelihood time scale :math:`T` of the dynamics.
 
-    Maximises the prediction-error log-likelihood over :math:`\log T` (bounded Brent search).
+    Maximises the prediction-error log-likelihood over :math:`\log T` (grid, then bounded
+    Brent search: :func:`~invert.stages._search.grid_then_refine`).
 
     Parameters
     ----------
@@ -355,6 +454,14 @@ def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=1e-10):
     t, Y : frame times and readings (as in :func:`filter_segment`).
     bounds : (float, float), optional
         Search range for ``T``; default from 0.5 to 1e6 times the median time step.
+    steady_tol : float, optional
+        Used only by the NumPy fallback (:func:`log_likelihood`); None means 0 there (the
+        exact recursion). The compiled kernel is exact at every frame and needs none, so the
+        likelihood is exact whenever the kernel runs, whatever ``steady_tol``.
+    use_kernel : bool, default=True
+        Evaluate the likelihood with the compiled exact kernel
+        (:func:`~invert.stages.assimilate.kernel.filter_loglik`) when numba is installed and
+        the kernel accepts the model; False forces the NumPy recursion.
 
     Returns
     -------
@@ -363,14 +470,16 @@ def fit_time_scale(model, t, Y, *, bounds=None, steady_tol=1e-10):
         Log-likelihood at the optimum.
     """
     t = np.asarray(t, float)
+    Y = np.asarray(Y, float)
     if bounds is None:
         step = float(np.median(np.diff(t))) if len(t) > 1 else 1.0
         bounds = (0.5 * step, 1e6 * step)
     lo, hi = np.log(bounds[0]), np.log(bounds[1])
+    tol = 0.0 if steady_tol is None else float(steady_tol)
 
     def nll(logT):
-        return -log_likelihood(model.with_time_scale(np.exp(logT)), t, Y,
-                               steady_tol=steady_tol)
+        return -exact_loglik(model.with_time_scale(np.exp(logT)), t, Y, steady_tol=tol,
+                             use_kernel=use_kernel)
 
     x, fx = grid_then_refine(nll, np.linspace(lo, hi, 9), xatol=1e-3)
     return float(np.exp(x)), float(-fx)

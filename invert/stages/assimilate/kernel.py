@@ -1,14 +1,16 @@
 r"""Exact Kalman filter and smoother of the coefficients, compiled (numba), bounded memory.
 
-The same model and the same answer as the exact recursion of :mod:`.core`
-(``run_smoother(model, t, Y, steady_tol=0, max_transient=0)``), at every frame, whatever the
+The same model (:class:`~invert.stages.assimilate.dynamics.CoefficientDynamics`) and the same
+answer as the NumPy exact recursion (:func:`~invert.stages.assimilate.filter.filter_segment`
+and :func:`~invert.stages.assimilate.smoother.smooth_segment`, run together by
+``smoother.run_smoother(model, t, Y, steady_tol=0, max_transient=0)``), at every frame, whatever the
 drop-out pattern and the time step: no steady-state shortcut and no approximation. The work
 per frame is a few :math:`O(p^2)` vector loops compiled with numba; there is no Python per
 frame.
 
 Notes
 -----
-Model (as in :mod:`.core`): state :math:`c_k \in \mathbb{R}^p` at time :math:`t_k`, readings
+Model (as in :mod:`.dynamics`): state :math:`c_k \in \mathbb{R}^p` at time :math:`t_k`, readings
 :math:`y_k = H c_k + e_k`, :math:`R = \operatorname{diag}(r_i)`; a missing reading (NaN) drops
 its row. Over :math:`\Delta_k = t_k - t_{k-1}`: :math:`F = \operatorname{diag}(f_j)`,
 :math:`Q = \operatorname{diag}(q_j)` with :math:`f_j = e^{-\Delta_k/T}`, :math:`q_j = v_j(1 -
@@ -118,7 +120,7 @@ class KernelModel:
 
     See Also
     --------
-    invert.stages.assimilate.core.CoefficientDynamics : the same fields.
+    invert.stages.assimilate.dynamics.CoefficientDynamics : the same fields.
     """
 
     H: np.ndarray
@@ -159,7 +161,7 @@ class KernelModel:
 
     @classmethod
     def from_dynamics(cls, model):
-        """From a :class:`~invert.stages.assimilate.core.CoefficientDynamics`."""
+        """From a :class:`~invert.stages.assimilate.dynamics.CoefficientDynamics`."""
         return cls.build(model.H, model.noise_var, model.prior_var, model.drift_var,
                          model.random_walk, model.time_scale)
 

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .filter import measurement_update
+from .filter import information_update, measurement_update
 
 __all__ = ["combine_filter", "combine_smoother", "filter_summary", "smoother_summary"]
 
@@ -74,7 +74,9 @@ def filter_summary(model, t, Y, *, t_prev=np.nan, first=False):
         if first and k == 0:
             m, P = np.zeros(p), np.diag(model.prior_var)
             if idx.size:
-                u = measurement_update(P, model.H[idx], model.noise_var[idx], m=m, y=Y[k, idx])
+                # from the diagonal prior: information form (no cancellation, filter.py)
+                u = information_update(model.prior_var, model.H[idx], model.noise_var[idx],
+                                       m=m, y=Y[k, idx])
                 m, P = u.m, u.P
             e = (np.zeros((p, p)), m, P, np.zeros(p), np.zeros((p, p)))
         else:
