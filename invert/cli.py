@@ -165,10 +165,11 @@ def _add_batch_parser(sub):
     p.add_argument("--smoothness", type=float, default=2.0)
     p.add_argument("--n-modes", type=int, default=None)
     p.add_argument("--chunk-rows", type=int, default=65536, help="frames per chunk")
-    p.add_argument("--max-transient", type=int, default=50,
-                   help="assimilation: exact Kalman steps after a change of drop-out pattern or "
-                        "time step before the steady-state gain is used; 0 = exact throughout "
-                        "(default: 50)")
+    p.add_argument("--max-transient", type=int, default=0,
+                   help="assimilation: 0 (default) = exact Kalman filter and smoother at every "
+                        "frame (compiled); N > 0 = the steady-state shortcut: exact steps for up "
+                        "to N frames after a change of drop-out pattern or time step, then the "
+                        "cached steady-state gain")
 
 
 def _fit_options(args):
@@ -348,9 +349,7 @@ def _cmd_batch(args):
                         lam=args.lam, noise_sd=args.noise_sd, level=args.level,
                         smoothness=args.smoothness, n_modes=args.n_modes, center=args.center,
                         time_scale=args.time_scale, chunk_rows=args.chunk_rows,
-                        max_transient=args.max_transient or None,
-                        # exact mode on dask runs the parallel-in-time smoother
-                        parallel_in_time=args.engine == "dask" and not args.max_transient)
+                        max_transient=args.max_transient or None)
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]

@@ -39,8 +39,8 @@ from ..stages.assimilate import (
     smoother_summary,
 )
 from .checkpoint import ChunkDone
+from .kernel_chain import RECURSION, chunk_info, chunk_tables_from, kernel_chunks
 from .statuses import count_statuses, frame_statuses
-from .tables import empty_query, frames_table, query_table
 
 __all__ = ["assimilation_chunks", "parallel_chunks", "dynamics", "STATE_CLASSES"]
 
@@ -73,16 +73,9 @@ def dynamics(job, hyper):
                                           tau2=tau2, time_scale=1.0)
 
 
-def _chunk_info(chunk, last_time):
-    status, reason, acc, last = frame_statuses(chunk, last_time, min_readings=1)
-    info = {"t": chunk.t, "frame": chunk.frame, "status": status, "reason": reason,
-            "acc": acc, "n_used": np.isfinite(chunk.Y).sum(axis=1)}
-    return info, last
-
-
 def forward_task(model, state, chunk, last_time, steady_tol, max_transient):
     """Filter one chunk from ``state`` (an engine task): ``(state, segment, info, last)``."""
-    info, last = _chunk_info(chunk, last_time)
+    info, last = chunk_info(chunk, last_time)
     acc = info["acc"]
     state, seg = filter_segment(model, state, chunk.t[acc], chunk.Y[acc], steady_tol=steady_tol,
                                 max_transient=max_transient)
@@ -96,26 +89,14 @@ def backward_task(seg, bstate, steady_tol, max_transient):
 
 def chunk_tables(info, seg, ms, sid, Ps_table, Hq, labels, z, kind):
     """Build the ``frames`` and ``query`` tables of one smoothed chunk (a task)."""
-    L = len(info["t"])
-    acc = info["acc"]
-    cmean, csd, chi2 = np.full(L, np.nan), np.full(L, np.nan), np.full(L, np.nan)
     qvar = np.array([np.einsum("ij,jk,ik->i", Hq, P, Hq) for P in Ps_table]) \
         if Ps_table else np.empty((0, len(Hq)))
     c0 = np.array([P[0, 0] for P in Ps_table])
-    if acc.any():
-        cmean[acc] = ms[:, 0]
-        csd[acc] = np.sqrt(np.clip(c0[sid], 0, None))
-        nis = seg.nis.copy()
-        nis[seg.n_used == 0] = np.nan
-        chi2[acc] = nis
-        qm = ms @ Hq.T
-        qs = np.sqrt(np.clip(qvar[sid], 0, None))
-        qtab = query_table(info["t"][acc], labels, qm, qs, z, kind)
-    else:
-        qtab = empty_query(kind)
-    ftab = frames_table(info["t"], info["frame"], info["status"], info["reason"],
-                        info["n_used"], cmean, csd, chi2, kind)
-    return ftab, qtab
+    if not info["acc"].any():
+        return chunk_tables_from(info, None, None, None, None, None, None, labels, z, kind)
+    return chunk_tables_from(info, ms[:, 0], np.sqrt(np.clip(c0[sid], 0, None)), seg.nis,
+                             seg.n_used, ms @ Hq.T, np.sqrt(np.clip(qvar[sid], 0, None)),
+                             labels, z, kind)
 
 
 def _time_scale(job, source, model, hyper, work):
@@ -170,14 +151,20 @@ def assimilation_chunks(job, source, engine, work, hyper):
     model = model.with_time_scale(hyper["time_scale"])
     if job.parallel_in_time:
         loglik = yield from parallel_chunks(job, source, engine, work, model)
-        extra = {"max_transient": None,
+        extra = {"max_transient": None, "recursion": "exact (NumPy)",
                  "parallel": "associative scan over chunk summaries (Särkkä & "
                              "García-Fernández 2021)"}
+    elif job.max_transient is None:
+        loglik = yield from kernel_chunks(job, source, engine, work, model)
+        extra = {"max_transient": None, "recursion": RECURSION}
     else:
         yield from _forward_chunks(job, source, engine, work, model)
         yield from _backward_chunks(job, source, engine, work)
         loglik = work.manifest.get("loglik")
-        extra = {"max_transient": job.max_transient}
+        extra = {"max_transient": job.max_transient,
+                 "recursion": (f"steady-state shortcut: exact for up to {job.max_transient} "
+                               f"frames after a change of drop-out pattern or time step, then "
+                               f"the cached steady state (tolerance {job.steady_tol:g})")}
     work.manifest.setdefault("counts", {})
     return {"time_scale": hyper["time_scale"], "time_scale_how": hyper["time_scale_how"],
             "loglik": loglik, "steady_tol": job.steady_tol, **extra, "dynamics": _DYNAMICS}
@@ -277,7 +264,7 @@ def _filter_all(job, source, engine, work, model):
     last, t_prev = -np.inf, np.nan
     sum_futs, n = [], 0
     for i, chunk in enumerate(source):
-        info, last = _chunk_info(chunk, last)
+        info, last = chunk_info(chunk, last)
         acc = info["acc"]
         ta, Ya = chunk.t[acc], chunk.Y[acc]
         work.dump((ta, Ya, info, t_prev), f"pchunk-{i:06d}.npz", STATE_CLASSES)

@@ -57,8 +57,9 @@ class BatchJob:
         Fixed time scale of the dynamics; else maximum likelihood on ``ml_frames`` frames.
     ml_frames : int, default=20000
     steady_tol : float, default=1e-10
-    max_transient : int or None, default=50
-        Steady-state shortcut of the smoother (None: exact throughout).
+    max_transient : int or None, default=None
+        None: the exact compiled filter and smoother at every frame; an integer: the
+        steady-state shortcut after that many exact frames.
     parallel_in_time : bool, default=False
         Assimilation by the parallel-in-time algorithm (exact mode only:
         ``max_transient=None``).
@@ -85,7 +86,7 @@ class BatchJob:
     time_scale: float | None = None
     ml_frames: int = 20000
     steady_tol: float = 1e-10
-    max_transient: int | None = 50
+    max_transient: int | None = None
     parallel_in_time: bool = False
     layout_digest: str | None = None
     query_digest: str | None = None

@@ -102,8 +102,8 @@ def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n
 def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine="local",
               scheduler=None, fmt="parquet", resume=False, lam=None, noise_sd=None,
               level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
-              chunk_rows=65536, steady_tol=1e-10, max_transient=50, calibration_frames=2000,
-              ml_frames=20000, n_workers=2, parallel_in_time=None, on_chunk=None, say=print):
+              chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
+              ml_frames=20000, n_workers=2, parallel_in_time=False, on_chunk=None, say=print):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -135,18 +135,19 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     chunk_rows : int
         Frames per chunk.
     steady_tol, max_transient :
-        Steady-state shortcut of the smoother
-        (:func:`~invert.stages.assimilate.filter_segment`): after ``max_transient`` exact
-        steps with an unchanged drop-out pattern and time step the gain jumps to its steady
-        state; ``max_transient=None`` keeps every step exact to ``steady_tol`` (slower when
-        the time scale is long). bench/bench_assimilate.py prints the difference.
+        ``max_transient=None`` (default): the exact filter and smoother of the compiled kernel
+        at every frame (:mod:`invert.batch.kernel_chain`). An integer: the NumPy recursion with
+        the steady-state shortcut (:func:`~invert.stages.assimilate.filter_segment`): after
+        ``max_transient`` exact steps with an unchanged drop-out pattern and time step the
+        gain jumps to its steady state (tolerance ``steady_tol``).
+        bench/bench_assimilate.py prints the difference.
     calibration_frames, ml_frames : int
         Frames of the pooled-evidence estimate of ``lam`` and of the time-scale estimate.
     n_workers : int, default=2
         Workers of the dask LocalCluster started when no ``scheduler`` is given.
-    parallel_in_time : bool, optional
-        Assimilation by the parallel-in-time smoother (needs ``max_transient=None``). Default:
-        on for the dask engine in exact mode, else off.
+    parallel_in_time : bool, default=False
+        Assimilation by the NumPy parallel-in-time smoother (associative scan over chunk
+        summaries; needs ``max_transient=None``).
     on_chunk : callable, optional
         Called as ``on_chunk(i)`` after chunk ``i`` of a phase is committed to the working
         folder (progress, or a pause).
@@ -167,8 +168,6 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     if engine not in ENGINES:
         raise ValueError(f"The 'engine' parameter of batch must be one of {tuple(ENGINES)}. "
                          f"Got {engine!r} instead.")
-    if parallel_in_time is None:
-        parallel_in_time = engine == "dask" and max_transient is None
     job = job_from_files(layout, query, radius=radius, center=center, smoothness=smoothness,
                           n_modes=n_modes, out=out, fmt=fmt, chunk_rows=chunk_rows,
                           resume=resume, level=level, lam=lam, noise_sd=noise_sd,

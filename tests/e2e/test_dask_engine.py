@@ -72,7 +72,7 @@ def test_parallel_in_time_smoother_on_dask_equals_local(tmp_path, cluster):
               time_scale=1500.0, max_transient=None, say=lambda *_: None)
     run_batch(LOG, LAYOUT, out=tmp_path / "local", **kw)
     s = run_batch(LOG, LAYOUT, out=tmp_path / "dask", engine="dask",
-                  scheduler=cluster.scheduler_address, **kw)
+                  scheduler=cluster.scheduler_address, parallel_in_time=True, **kw)
     assert "associative" in s["parallel"]
     fl, ql = _read(tmp_path / "local")
     fd, qd = _read(tmp_path / "dask")
