@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..io.sources import seconds
 from ..prior import SmoothnessPrior
 from ..problem import interval_z
 from ..stages.assimilate import (
@@ -77,7 +78,8 @@ def forward_task(model, state, chunk, last_time, steady_tol, max_transient):
     """Filter one chunk from ``state`` (an engine task): ``(state, segment, info, last)``."""
     info, last = chunk_info(chunk, last_time)
     acc = info["acc"]
-    state, seg = filter_segment(model, state, chunk.t[acc], chunk.Y[acc], steady_tol=steady_tol,
+    state, seg = filter_segment(model, state, seconds(chunk.t[acc]), chunk.Y[acc],
+                                steady_tol=steady_tol,
                                 max_transient=max_transient)
     return state, seg, info, last
 
@@ -111,7 +113,7 @@ def _time_scale(job, source, model, hyper, work):
         n = 0
         for chunk in source:
             _, _, acc, last = frame_statuses(chunk, last, min_readings=1)
-            ts.append(chunk.t[acc])
+            ts.append(seconds(chunk.t[acc]))
             Ys.append(chunk.Y[acc])
             n += int(acc.sum())
             if n >= job.ml_frames:
@@ -266,7 +268,7 @@ def _filter_all(job, source, engine, work, model):
     for i, chunk in enumerate(source):
         info, last = chunk_info(chunk, last)
         acc = info["acc"]
-        ta, Ya = chunk.t[acc], chunk.Y[acc]
+        ta, Ya = seconds(chunk.t[acc]), chunk.Y[acc]
         work.dump((ta, Ya, info, t_prev), f"pchunk-{i:06d}.npz", STATE_CLASSES)
         sum_futs.append(engine.submit(_summary_task, model, ta, Ya, t_prev,
                                       n == 0 and len(ta) > 0))

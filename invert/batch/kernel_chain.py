@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..io.sources import seconds
 from ..problem import interval_z
 from ..stages.assimilate.kernel import (
     BackwardCarry,
@@ -97,7 +98,7 @@ def forward_task(kmodel, carry, chunk, last_time):
     """Filter one chunk (an engine task): ``(carry, part, info, last_time)``."""
     info, last = chunk_info(chunk, last_time)
     acc = info["acc"]
-    t, Y = np.ascontiguousarray(chunk.t[acc]), np.ascontiguousarray(chunk.Y[acc])
+    t, Y = np.ascontiguousarray(seconds(chunk.t[acc])), np.ascontiguousarray(chunk.Y[acc])
     carry, cp, nis, _, n_used = filter_chunk(kmodel, carry, t, Y, every=SEGMENT)
     part = {"t": t, "Y": Y, "cp": cp, "nis": nis, "n_used": n_used}
     return carry, part, info, last

@@ -9,6 +9,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..io.sources import NO_TIME, exact_times
+
 __all__ = ["STATUSES", "frame_statuses", "count_statuses"]
 
 #: The statuses, in the order of their integer codes in the outputs.
@@ -22,8 +24,9 @@ def frame_statuses(chunk, last_time, *, min_readings=1):
     Parameters
     ----------
     chunk : Chunk
-    last_time : float
-        Last accepted time before the chunk (``-inf`` at the start).
+    last_time : float or int
+        Last accepted time before the chunk (``-inf`` at the start); an int (nanoseconds)
+        after a chunk of a date-time log.
     min_readings : int, default=1
         Frames with at least one but fewer readings are rejected.
 
@@ -39,10 +42,16 @@ def frame_statuses(chunk, last_time, *, min_readings=1):
     reason = chunk.reason.copy()
     valid = np.equal(reason, None).astype(bool)
     t = chunk.t
+    exact = exact_times(t)  # date-times as integer nanoseconds: compared exactly
+    lowest = NO_TIME if exact else -np.inf
+    if exact and not np.isfinite(last_time):
+        last_time = NO_TIME
+    elif exact:
+        last_time = int(last_time)
     # a valid frame is accepted iff its time exceeds every earlier valid time (rejected ones
     # never raise the running maximum, since they do not exceed it)
-    prior = np.where(valid, t, -np.inf)
-    run = np.maximum.accumulate(np.concatenate([[last_time], prior]))[:-1]
+    prior = np.where(valid, t, lowest)
+    run = np.maximum.accumulate(np.concatenate([np.array([last_time], t.dtype), prior]))[:-1]
     dup = valid & (t == run)
     back = valid & (t < run)
     reason[dup] = "duplicate time"
@@ -55,7 +64,10 @@ def frame_statuses(chunk, last_time, *, min_readings=1):
     code = np.where(accepted & ~few, np.where(n_used > 0, 0, 1), 2)
     status = _STATUS_NAMES[code]
     accepted &= ~few
-    new_last = float(np.max(t[accepted])) if accepted.any() else last_time
+    cast = int if exact else float
+    new_last = cast(np.max(t[accepted])) if accepted.any() else last_time
+    if exact and last_time == NO_TIME and not accepted.any():
+        return status, reason, accepted, -np.inf
     return status, reason, accepted, max(new_last, last_time)
 
 

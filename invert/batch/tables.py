@@ -11,6 +11,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..io.arrow import arrow_numbers, arrow_strings
+from ..io.sources import NO_TIME, exact_times
 from .statuses import STATUSES
 
 __all__ = ["time_array", "frames_table", "query_table", "empty_query", "empty_frames",
@@ -22,8 +23,9 @@ def time_array(t, kind):
 
     Parameters
     ----------
-    t : ndarray of float
-        Seconds (since the Unix epoch for date-times); NaN gives a null.
+    t : ndarray of float or int64
+        Numbers (NaN gives a null), or date-times as integer nanoseconds since the Unix epoch
+        (:data:`~invert.io.sources.NO_TIME` gives a null).
     kind : {"number", "datetime"}
 
     Returns
@@ -32,6 +34,8 @@ def time_array(t, kind):
     """
     import pyarrow as pa
 
+    if kind == "datetime" and exact_times(t):
+        return arrow_numbers(t, pa.timestamp("ns", "UTC"), mask=t == NO_TIME)
     if kind == "datetime":
         ns = np.where(np.isfinite(t), np.round(np.nan_to_num(t) * 1e9), 0).astype(np.int64)
         return arrow_numbers(ns, pa.timestamp("ns", "UTC"), mask=~np.isfinite(t))

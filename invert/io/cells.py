@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from .sources import NO_TIME
+
 __all__ = ["NULLS", "time_cells", "parse_cells", "LineCounter"]
 
 #: Cells read as missing readings (pyarrow's defaults cover these and more).
@@ -26,8 +28,9 @@ def time_cells(cells, kind):
 
     Returns
     -------
-    t : ndarray of float
-        Seconds (date-times: since the Unix epoch, UTC); NaN where not parsed.
+    t : ndarray of float or int64
+        Numbers as float (NaN where not parsed); date-times as integer nanoseconds since the
+        Unix epoch, UTC (``NO_TIME`` where not parsed).
     bad : ndarray of int8
         0 parsed, 1 unparseable, 2 blank (missing).
     kind : {"number", "datetime"} or None
@@ -53,7 +56,7 @@ def time_cells(cells, kind):
         ok = dt.notna().to_numpy() & ~blank
         # nanoseconds whatever unit pandas chose (pandas 3 may give microseconds)
         vals = dt.dt.tz_localize(None).to_numpy().astype("datetime64[ns]").view(np.int64)
-        t[ok] = vals[ok] / 1e9
+        t = np.where(ok, vals, NO_TIME)
     else:
         ok = np.zeros(n, bool)
     bad[~ok & ~blank] = 1

@@ -15,7 +15,37 @@ from typing import Protocol, runtime_checkable
 
 import numpy as np
 
-__all__ = ["Chunk", "LogSource"]
+__all__ = ["Chunk", "LogSource", "NO_TIME", "seconds", "has_time", "exact_times"]
+
+#: ``Chunk.t`` of a date-time log where a frame has no usable time (integer nanoseconds).
+NO_TIME = np.iinfo(np.int64).min
+
+
+def seconds(t):
+    """Return frame times as float seconds, for computation (NaN where there is none).
+
+    Date-time logs carry ``Chunk.t`` as exact integer nanoseconds since the Unix epoch (UTC),
+    so that outputs give back the log's own times; the filters work in float seconds (a
+    resolution of about 0.2 microseconds at today's epoch times, far below any logger step).
+    Numeric times are returned unchanged.
+    """
+    t = np.asarray(t)
+    if not exact_times(t):
+        return t
+    out = t / 1e9
+    out[t == NO_TIME] = np.nan
+    return out
+
+
+def has_time(t):
+    """Return where ``t`` (float seconds or integer nanoseconds) holds a time."""
+    t = np.asarray(t)
+    return t != NO_TIME if exact_times(t) else np.isfinite(t)
+
+
+def exact_times(t):
+    """Return whether ``t`` holds integer nanoseconds (a date-time log's exact times)."""
+    return np.issubdtype(np.asarray(t).dtype, np.integer)
 
 
 @dataclass
@@ -26,8 +56,10 @@ class Chunk:
     ----------
     frame : ndarray of int64, shape (L,)
         0-based record number in the log (``-1`` for malformed lines found by the CSV parser).
-    t : ndarray of float, shape (L,)
-        Time in seconds (numeric logs: the number as written); NaN when unparseable.
+    t : ndarray of float or int64, shape (L,)
+        Numeric logs: the number as written (float; NaN when unparseable). Date-time logs:
+        exact integer nanoseconds since the Unix epoch, UTC (:data:`NO_TIME` when
+        unparseable); :func:`seconds` gives float seconds for computation.
     Y : ndarray of shape (L, n_sensors)
         Readings in layout order; NaN where missing (or where the cell was rejected).
     reason : ndarray of object, shape (L,)
@@ -68,7 +100,7 @@ class LogSource(Protocol):
         Layout sensors with no column in the source (always missing; the job warns).
     time_kind : {"number", "datetime"} or None
         Fixed by the first parseable time (None before): numbers are written as read,
-        date-times as seconds since the Unix epoch (UTC) in ``Chunk.t``.
+        date-times as integer nanoseconds since the Unix epoch (UTC) in ``Chunk.t``.
     warnings : list of str
         Things found while reading that the user must hear of (e.g. a header line repeated
         mid-file with the columns re-mapped), one sentence each, gathered as the chunks are

@@ -24,7 +24,7 @@ from ..errors import InputError
 from .arrow import float_values
 from .cells import NULLS, LineCounter, parse_cells, time_cells
 from .header import header_lines, header_pattern, parse_header
-from .sources import Chunk
+from .sources import NO_TIME, Chunk, exact_times
 
 __all__ = ["WideLogReader", "log_signature"]
 
@@ -370,11 +370,11 @@ class WideLogReader:
         reason = np.array(["malformed row (wrong number of cells)"
                            + (f" at line {num}" if num is not None and num >= 0 else "")
                            for num, _, _ in rows], dtype=object)
-        t = np.full(n, np.nan)
-        for i, (_, text, _) in enumerate(rows):
-            cells = (text or "").split(",")
-            cell = cells[h.time_index] if h.time_index < len(cells) else ""
-            t[i] = self._time_cells(np.array([cell.strip()], dtype=object))[0][0]
+        cells = []
+        for _, text, _ in rows:
+            parts = (text or "").split(",")
+            cells.append(parts[h.time_index].strip() if h.time_index < len(parts) else "")
+        t = self._time_cells(np.array(cells, dtype=object))[0]
         return Chunk(np.full(n, -1, np.int64), t, np.full((n, len(self.sensors)), np.nan), reason)
 
     def _convert(self, batch, start, h):
@@ -407,10 +407,14 @@ class WideLogReader:
                         reason[i] = f"{what} cell in column '{name.strip()}': {text[i]!r}"
                 vals = np.where(bad | nonfinite, np.nan, vals)
             Y[:, j] = vals
-        t, tbad = self._time_column(batch.column(h.time_name))
-        for i in np.flatnonzero(tbad):
-            if reason[i] is None:
-                reason[i] = "unparseable time" if tbad[i] == 1 else "missing time"
+        tcol = batch.column(h.time_name)
+        t, tbad = self._time_column(tcol)
+        if tbad.any():
+            text = tcol.to_pylist()
+            for i in np.flatnonzero(tbad):
+                if reason[i] is None:
+                    reason[i] = (f"unparseable time {str(text[i]).strip()!r}" if tbad[i] == 1
+                                 else "missing time")
         return Chunk(np.arange(start, start + L, dtype=np.int64), t, Y, reason)
 
     def _time_column(self, col):
@@ -419,10 +423,11 @@ class WideLogReader:
 
         if pa.types.is_timestamp(col.type) or pa.types.is_date(col.type):
             self.time_kind = self.time_kind or "datetime"
-            ns = col.cast(pa.timestamp("ns")).cast(pa.int64()).to_numpy(zero_copy_only=False)
-            t = np.asarray(ns, float) / 1e9
+            if getattr(col.type, "tz", None) is None:
+                self._note_naive()
             null = np.asarray(col.is_null().to_numpy(zero_copy_only=False))
-            t[null] = np.nan
+            ns = col.cast(pa.timestamp("ns")).cast(pa.int64()).fill_null(NO_TIME)
+            t = np.asarray(ns.to_numpy(zero_copy_only=False), np.int64)
             if self.time_kind != "datetime":
                 return np.full(len(t), np.nan), np.ones(len(t), np.int8)
             return t, null.astype(np.int8) * 2
@@ -431,7 +436,7 @@ class WideLogReader:
             if self.time_kind is None and np.isfinite(t).any():
                 self.time_kind = "number"
             if self.time_kind == "datetime":
-                return np.full(len(t), np.nan), np.ones(len(t), np.int8)
+                return np.full(len(t), NO_TIME), np.ones(len(t), np.int8)
             bad = np.where(np.isnan(t), 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
             return np.where(bad == 0, t, np.nan), bad
         if not pa.types.is_string(col.type):
@@ -453,11 +458,29 @@ class WideLogReader:
     def _time_cells(self, cells):
         """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
         t, bad, self.time_kind = time_cells(cells, self.time_kind)
+        if self.time_kind == "datetime" and _NAIVE.search(str(next(
+                (c for c, b in zip(cells, bad, strict=True) if b == 0), "")) or "~"):
+            self._note_naive()
         return t, bad
+
+    def _note_naive(self):
+        note = NAIVE_NOTE.format(source=self.source)
+        if note not in self.warnings:
+            self.warnings.append(note)
+
+
+#: The warning for date-times without a zone (read as UTC, written with ``Z``).
+NAIVE_NOTE = ("{source}: times without a time zone were read as UTC (outputs write them with "
+              "'Z'); give times with an offset (e.g. +01:00) if the logger kept local time")
+#: A date-time cell that ends without a zone (``Z`` or an offset such as ``+01:00``).
+_NAIVE = re.compile(r"\d(?<![+-]\d\d:\d\d)(?<![+-]\d\d\d\d)$")
 
 
 def _concat(*parts):
-    return Chunk(np.concatenate([c.frame for c in parts]), np.concatenate([c.t for c in parts]),
+    ts = [c.t for c in parts]
+    if any(exact_times(t) for t in ts):  # date-times; float parts hold no time at all
+        ts = [t if exact_times(t) else np.full(len(t), NO_TIME) for t in ts]
+    return Chunk(np.concatenate([c.frame for c in parts]), np.concatenate(ts),
                  np.vstack([c.Y for c in parts]), np.concatenate([c.reason for c in parts]))
 
 

@@ -85,7 +85,9 @@ def test_bad_rows_get_statuses_and_the_rest_is_unchanged(tmp_path):
     assert st.loc[100, "status"] == "rejected" and "non-numeric" in st.loc[100, "reason"]
     assert "'open'" in st.loc[100, "reason"]
     assert st.loc[200, "status"] == "no-data"
-    assert st.loc[300, "status"] == "rejected" and st.loc[300, "reason"] == "unparseable time"
+    # the reason keeps the cell's text, so the user can find and mend it
+    assert st.loc[300, "status"] == "rejected"
+    assert st.loc[300, "reason"] == "unparseable time '12:00?'"
     assert st.loc[401, "status"] == "rejected" and st.loc[401, "reason"] == "duplicate time"
     assert (fr["status"] == "ok").sum() == n_records - 4
     # clean log with only the good records

@@ -128,7 +128,8 @@ def test_iso_times_over_many_pieces(tmp_path, layout):
     log = tmp_path / "log.csv"
     _write(log, times, _rows(700, rng))
     fr = _run(log, layout, tmp_path / "o").set_index("frame")
-    assert fr.loc[300, "status"] == "rejected" and fr.loc[300, "reason"] == "unparseable time"
+    assert fr.loc[300, "status"] == "rejected"
+    assert fr.loc[300, "reason"] == "unparseable time 'not-a-time'"
     ok = fr.drop(index=300)
     assert set(ok["status"]) <= {"ok", "no-data"}
     ref = pd.to_datetime(pd.Series(times).drop(index=300), utc=True, format="ISO8601")
@@ -147,7 +148,7 @@ def test_numeric_log_with_bad_cells_in_later_pieces(tmp_path, layout):
     _write(log, times, rows, comment=False, final_newline=False)
     fr = _run(log, layout, tmp_path / "o").set_index("frame")
     assert len(fr) == 1000                          # the last line has no line end
-    assert fr.loc[500, "reason"] == "unparseable time"
+    assert fr.loc[500, "reason"] == "unparseable time 'x12'"  # the cell's text kept
     assert fr.loc[501, "reason"] == "missing time"
     assert fr.loc[502, "reason"].startswith("non-finite cell in column 's2'")
     assert fr.loc[900, "reason"] == "non-numeric cell in column 's4': 'open'"
@@ -193,3 +194,57 @@ def test_arrow_buffers_round_trip_equals_pyarrow_conversions():
     allnull = pa.nulls(9, type=pa.float64())
     np.testing.assert_array_equal(float_values(allnull), np.full(9, np.nan))
     assert arrow_strings([None, None]).equals(pa.array([None, None], type=pa.string()))
+
+
+@pytest.mark.parametrize("assimilate", [False, True])
+@pytest.mark.parametrize("fmt", ["csv", "parquet"])
+def test_millisecond_times_come_back_exactly(tmp_path, layout, fmt, assimilate):
+    # Times are carried as integer nanoseconds end to end: every time written to the frames
+    # and query outputs is the log's own, so outputs join to inputs by time. Oracle: the log's
+    # times as pandas parses them (ISO 8601 with milliseconds; the Parquet log holds the same
+    # times as a timestamp[ms] column written by pyarrow).
+    rng = np.random.default_rng(4)
+    n = 300
+    base = pd.Timestamp("2024-03-01T00:00:00")
+    # jittered steps in whole milliseconds: 1.010 s, 2.003 s, 2.998 s ...
+    steps = 1000 + rng.integers(-30, 31, n)
+    times = [base + pd.Timedelta(milliseconds=int(ms)) for ms in np.cumsum(steps)]
+    text = [t.strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] for t in times]
+    rows = _rows(n, rng)
+    if fmt == "csv":
+        log = tmp_path / "log.csv"
+        _write(log, text, rows)
+    else:
+        import pyarrow as pa
+        import pyarrow.parquet as pq
+
+        cols = {"time": pa.array(pd.to_datetime(text).as_unit("ms"), pa.timestamp("ms"))}
+        for i in range(N_SENSORS):
+            cols[f"s{i}"] = pa.array([None if r[i] == "" else float(r[i]) for r in rows])
+        log = tmp_path / "log.parquet"
+        pq.write_table(pa.table(cols), log)
+    out = tmp_path / "o"
+    run_batch(log, layout, radius=1.0, out=out, lam=0.05, noise_sd=0.05, fmt="parquet",
+              chunk_rows=64, assimilate=assimilate, time_scale=50.0, say=lambda *_: None)
+    fr = pd.read_parquet(out / "frames.parquet")
+    q = pd.read_parquet(out / "query.parquet")
+    want = pd.to_datetime(text).tz_localize("UTC").as_unit("ns")
+    got = pd.DatetimeIndex(fr["time"]).as_unit("ns")
+    assert (got == want).all()
+    assert set(pd.DatetimeIndex(q["time"]).as_unit("ns")) <= set(want)
+
+
+def test_times_without_a_zone_are_said_to_be_read_as_utc(tmp_path, layout):
+    # ISO 8601 (common practice of loggers): a time without 'Z' or an offset has no zone; the
+    # tool reads it as UTC and says so once, and is silent when every time has a zone.
+    rng = np.random.default_rng(5)
+    rows = _rows(4, rng)
+    naive = [f"2024-03-01T00:00:0{k}.010" for k in range(4)]
+    for times, said in ((naive, True), ([t + "Z" for t in naive], False),
+                        ([t + "+00:00" for t in naive], False)):
+        log = tmp_path / "log.csv"
+        _write(log, times, rows)
+        out = tmp_path / f"o{len(times[0])}"
+        s = run_batch(log, layout, radius=1.0, out=out, lam=0.05, noise_sd=0.05, fmt="csv",
+                      say=lambda *_: None)
+        assert any("without a time zone were read as UTC" in w for w in s["warnings"]) == said
