@@ -165,6 +165,11 @@ def _add_batch_parser(sub):
     p.add_argument("--smoothness", type=float, default=2.0)
     p.add_argument("--n-modes", type=int, default=None)
     p.add_argument("--chunk-rows", type=int, default=65536, help="frames per chunk")
+    p.add_argument("--time-format", default=None, metavar="FORMAT",
+                   help="how the log writes its times when they are not numbers (kept as "
+                        "written) or ISO 8601 date-times: epoch-s, epoch-ms, epoch-us, epoch-ns "
+                        "(Unix epoch numbers) or a strptime pattern such as '%%d/%%m/%%Y "
+                        "%%H:%%M:%%S' (day-first dates); without a zone times are read as UTC")
     p.add_argument("--max-transient", type=int, default=0,
                    help="assimilation: 0 (default) = exact Kalman filter and smoother at every "
                         "frame (compiled); N > 0 = the steady-state shortcut: exact steps for up "
@@ -349,7 +354,8 @@ def _cmd_batch(args):
                         lam=args.lam, noise_sd=args.noise_sd, level=args.level,
                         smoothness=args.smoothness, n_modes=args.n_modes, center=args.center,
                         time_scale=args.time_scale, chunk_rows=args.chunk_rows,
-                        max_transient=args.max_transient or None)
+                        max_transient=args.max_transient or None,
+                        time_format=args.time_format)
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]

@@ -63,6 +63,8 @@ class BatchJob:
     parallel_in_time : bool, default=False
         Assimilation by the parallel-in-time algorithm (exact mode only:
         ``max_transient=None``).
+    time_format : str, optional
+        How the log writes its times (:mod:`invert.io.times`); None: numbers or ISO 8601.
     layout_digest, query_digest : str, optional
         Content hashes of the input files (part of the resume signature).
     """
@@ -88,6 +90,7 @@ class BatchJob:
     steady_tol: float = 1e-10
     max_transient: int | None = None
     parallel_in_time: bool = False
+    time_format: str | None = None
     layout_digest: str | None = None
     query_digest: str | None = None
 
@@ -118,6 +121,7 @@ class BatchJob:
             "fmt": self.fmt, "chunk_rows": self.chunk_rows, "level": self.level,
             "steady_tol": self.steady_tol, "max_transient": self.max_transient,
             "parallel_in_time": bool(self.parallel_in_time), "parts": "arrow-ipc",
+            "time_format": self.time_format,
             "state": "npz",
         }
 

@@ -103,7 +103,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               scheduler=None, fmt="parquet", resume=False, lam=None, noise_sd=None,
               level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
-              ml_frames=20000, n_workers=2, parallel_in_time=False, on_chunk=None, say=print):
+              ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
+              on_chunk=None, say=print):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -148,6 +149,9 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     parallel_in_time : bool, default=False
         Assimilation by the NumPy parallel-in-time smoother (associative scan over chunk
         summaries; needs ``max_transient=None``).
+    time_format : str, optional
+        How the log writes its times when not numbers or ISO 8601: ``epoch-s``/``-ms``/
+        ``-us``/``-ns`` or a strptime pattern (:mod:`invert.io.times`).
     on_chunk : callable, optional
         Called as ``on_chunk(i)`` after chunk ``i`` of a phase is committed to the working
         folder (progress, or a pause).
@@ -173,8 +177,9 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           resume=resume, level=level, lam=lam, noise_sd=noise_sd,
                           calibration_frames=calibration_frames, assimilate=assimilate,
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
-                          max_transient=max_transient, parallel_in_time=parallel_in_time)
-    source = open_log(log, job.sensors, chunk_rows=chunk_rows)
+                          max_transient=max_transient, parallel_in_time=parallel_in_time,
+                          time_format=time_format)
+    source = open_log(log, job.sensors, chunk_rows=chunk_rows, time_format=job.time_format)
     # the folder is locked before the engine starts: a refused run starts no cluster
     with OutputLock(job.out) as lock, \
             make_engine(engine, scheduler=scheduler, n_workers=n_workers) as eng:

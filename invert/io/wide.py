@@ -25,6 +25,7 @@ from .arrow import float_values
 from .cells import NULLS, LineCounter, parse_cells, time_cells
 from .header import header_lines, header_pattern, parse_header
 from .sources import NO_TIME, Chunk, exact_times
+from .times import check_time_format, parse_times
 
 __all__ = ["WideLogReader", "log_signature"]
 
@@ -63,9 +64,12 @@ class WideLogReader:
     sensors : sequence of str
         Sensor ids from the layout; the log's sensor columns must be among them.
     chunk_rows : int, default=65536
+    time_format : str, optional
+        Read every time cell as a date-time in this form (:mod:`invert.io.times`: an epoch
+        unit or a strptime pattern); default: numbers as written, or ISO 8601 date-times.
     """
 
-    def __init__(self, path, sensors, *, chunk_rows=65536):
+    def __init__(self, path, sensors, *, chunk_rows=65536, time_format=None):
         self.path = Path(path)
         self.source = self.path.name
         self.sensors = [str(s) for s in sensors]
@@ -82,7 +86,9 @@ class WideLogReader:
         seen = {self.sensors[j] for _, j in self.header.columns}
         self.missing_sensors = [s for s in self.sensors if s not in seen]
         self.columns = list(self.header.columns)
-        self.time_kind = None  # "number" or "datetime", fixed by the first parseable cell
+        self.time_format = check_time_format(time_format)
+        # "number" or "datetime", fixed by the first parseable cell (or by the format)
+        self.time_kind = None if time_format is None else "datetime"
         self.warnings = []
         self._parsers = {}
 
@@ -421,6 +427,9 @@ class WideLogReader:
         import pyarrow as pa
         import pyarrow.compute as pc
 
+        if self.time_format is not None and not (pa.types.is_timestamp(col.type)
+                                                 or pa.types.is_date(col.type)):
+            return parse_times(col.to_pylist(), self.time_format)
         if pa.types.is_timestamp(col.type) or pa.types.is_date(col.type):
             self.time_kind = self.time_kind or "datetime"
             if getattr(col.type, "tz", None) is None:
@@ -457,6 +466,8 @@ class WideLogReader:
 
     def _time_cells(self, cells):
         """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
+        if self.time_format is not None:
+            return parse_times(cells, self.time_format)
         t, bad, self.time_kind = time_cells(cells, self.time_kind)
         if self.time_kind == "datetime" and _NAIVE.search(str(next(
                 (c for c, b in zip(cells, bad, strict=True) if b == 0), "")) or "~"):
