@@ -22,10 +22,10 @@ import numpy as np
 
 from ..errors import InputError
 from .arrow import float_values
-from .cells import NULLS, LineCounter, parse_cells, time_cells
+from .cells import NULLS, LineCounter, parse_cells
 from .header import header_lines, header_pattern, parse_header
 from .sources import NO_TIME, Chunk, exact_times
-from .times import check_time_format, parse_times
+from .times import TimeReader
 
 __all__ = ["WideLogReader", "log_signature"]
 
@@ -86,11 +86,14 @@ class WideLogReader:
         seen = {self.sensors[j] for _, j in self.header.columns}
         self.missing_sensors = [s for s in self.sensors if s not in seen]
         self.columns = list(self.header.columns)
-        self.time_format = check_time_format(time_format)
-        # "number" or "datetime", fixed by the first parseable cell (or by the format)
-        self.time_kind = None if time_format is None else "datetime"
         self.warnings = []
+        self.times = TimeReader(self.source, self.warnings, time_format)
         self._parsers = {}
+
+    @property
+    def time_kind(self):
+        """``"number"`` or ``"datetime"``, fixed by the first parseable time (None before)."""
+        return self.times.time_kind
 
     def signature(self):
         """Return the resume signature: path, size and modification time of the file.
@@ -237,7 +240,7 @@ class WideLogReader:
         typed, text = convert(pa.string(), pa.float64()), convert(pa.string(), pa.string())
 
         def parse_piece(piece, parse=parse, first_only=False, skip_first=False):
-            tries = (typed, text) if self.time_kind == "datetime" else (numeric, typed, text)
+            tries = (typed, text) if self.times.time_kind == "datetime" else (numeric, typed, text)
             for conv in tries[:1] if first_only else tries[1:] if skip_first else tries:
                 bad.clear()
                 try:
@@ -380,7 +383,7 @@ class WideLogReader:
         for _, text, _ in rows:
             parts = (text or "").split(",")
             cells.append(parts[h.time_index].strip() if h.time_index < len(parts) else "")
-        t = self._time_cells(np.array(cells, dtype=object))[0]
+        t = self.times.cells(np.array(cells, dtype=object))[0]
         return Chunk(np.full(n, -1, np.int64), t, np.full((n, len(self.sensors)), np.nan), reason)
 
     def _convert(self, batch, start, h):
@@ -414,7 +417,7 @@ class WideLogReader:
                 vals = np.where(bad | nonfinite, np.nan, vals)
             Y[:, j] = vals
         tcol = batch.column(h.time_name)
-        t, tbad = self._time_column(tcol)
+        t, tbad = self.times.column(tcol)
         if tbad.any():
             text = tcol.to_pylist()
             for i in np.flatnonzero(tbad):
@@ -422,70 +425,6 @@ class WideLogReader:
                     reason[i] = (f"unparseable time {str(text[i]).strip()!r}" if tbad[i] == 1
                                  else "missing time")
         return Chunk(np.arange(start, start + L, dtype=np.int64), t, Y, reason)
-
-    def _time_column(self, col):
-        import pyarrow as pa
-        import pyarrow.compute as pc
-
-        if self.time_format is not None and not (pa.types.is_timestamp(col.type)
-                                                 or pa.types.is_date(col.type)):
-            return parse_times(col.to_pylist(), self.time_format)
-        if pa.types.is_timestamp(col.type) or pa.types.is_date(col.type):
-            self.time_kind = self.time_kind or "datetime"
-            if getattr(col.type, "tz", None) is None:
-                self._note_naive()
-            null = np.asarray(col.is_null().to_numpy(zero_copy_only=False))
-            ns = col.cast(pa.timestamp("ns")).cast(pa.int64()).fill_null(NO_TIME)
-            t = np.asarray(ns.to_numpy(zero_copy_only=False), np.int64)
-            if self.time_kind != "datetime":
-                return np.full(len(t), np.nan), np.ones(len(t), np.int8)
-            return t, null.astype(np.int8) * 2
-        if pa.types.is_floating(col.type) or pa.types.is_integer(col.type):
-            t = float_values(col.cast(pa.float64()))
-            if self.time_kind is None and np.isfinite(t).any():
-                self.time_kind = "number"
-            if self.time_kind == "datetime":
-                return np.full(len(t), NO_TIME), np.ones(len(t), np.int8)
-            bad = np.where(np.isnan(t), 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
-            return np.where(bad == 0, t, np.nan), bad
-        if not pa.types.is_string(col.type):
-            col = col.cast(pa.string())
-        if self.time_kind in (None, "number"):
-            try:
-                t = np.asarray(pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False), float)
-                if self.time_kind is None and np.isfinite(t).any():
-                    self.time_kind = "number"
-                if self.time_kind == "number":
-                    null = np.asarray(col.is_null().to_numpy(zero_copy_only=False))
-                    bad = np.where(null, 2, np.where(np.isfinite(t), 0, 1)).astype(np.int8)
-                    return np.where(bad == 0, t, np.nan), bad
-            except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-                pass
-        cells = np.array(col.to_pylist(), dtype=object)
-        return self._time_cells(cells)
-
-    def _time_cells(self, cells):
-        """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
-        if self.time_format is not None:
-            return parse_times(cells, self.time_format)
-        t, bad, self.time_kind = time_cells(cells, self.time_kind)
-        if self.time_kind == "datetime" and _NAIVE.search(str(next(
-                (c for c, b in zip(cells, bad, strict=True) if b == 0), "")) or "~"):
-            self._note_naive()
-        return t, bad
-
-    def _note_naive(self):
-        note = NAIVE_NOTE.format(source=self.source)
-        if note not in self.warnings:
-            self.warnings.append(note)
-
-
-#: The warning for date-times without a zone (read as UTC, written with ``Z``).
-NAIVE_NOTE = ("{source}: times without a time zone were read as UTC (outputs write them with "
-              "'Z'); give times with an offset (e.g. +01:00) if the logger kept local time")
-#: A date-time cell that ends without a zone (``Z`` or an offset such as ``+01:00``).
-_NAIVE = re.compile(r"\d(?<![+-]\d\d:\d\d)(?<![+-]\d\d\d\d)$")
-
 
 def _concat(*parts):
     ts = [c.t for c in parts]
