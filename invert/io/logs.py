@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
+from ..errors import InputError
+from .long import LongLogReader, is_long
 from .sources import LogSource
 from .wide import WideLogReader
 
@@ -11,8 +15,10 @@ __all__ = ["open_log"]
 def open_log(path, sensors, *, chunk_rows=65536, time_format=None) -> LogSource:
     """Open the log at ``path`` as a :class:`~invert.io.sources.LogSource`.
 
-    Today every log is a wide CSV or Parquet file (:class:`~invert.io.wide.WideLogReader`);
-    a new kind of log (long format, a database table) is chosen here.
+    A CSV or Parquet file whose columns are exactly ``time, sensor, value[, flag]`` is a long
+    log (:class:`~invert.io.long.LongLogReader`); any other is wide, a time column and one
+    column per sensor (:class:`~invert.io.wide.WideLogReader`). A new kind of log (a database
+    table) is chosen here.
 
     Parameters
     ----------
@@ -28,4 +34,33 @@ def open_log(path, sensors, *, chunk_rows=65536, time_format=None) -> LogSource:
     -------
     LogSource
     """
+    names, skip = _header(Path(path))
+    if names is not None and is_long(names):
+        return LongLogReader(path, sensors, names, chunk_rows=chunk_rows,
+                             time_format=time_format, skip_rows=skip)
     return WideLogReader(path, sensors, chunk_rows=chunk_rows, time_format=time_format)
+
+
+def _header(path):
+    """Return the column names and the comment lines before them (None when unreadable)."""
+    if not path.is_file():
+        return None, 0
+    if path.suffix.lower() in (".parquet", ".pq"):
+        import pyarrow.parquet as pq
+
+        try:
+            return pq.ParquetFile(path).schema_arrow.names, 0
+        except Exception:  # noqa: BLE001 - the wide reader names the problem
+            return None, 0
+    import csv
+
+    skip = 0
+    try:
+        with open(path, encoding="utf-8-sig", errors="replace") as fh:
+            line = fh.readline()
+            while line.lstrip().startswith("#"):
+                skip += 1
+                line = fh.readline()
+    except OSError as exc:
+        raise InputError(path.name, f"cannot be read ({exc.strerror})") from None
+    return (next(csv.reader([line])) if line.strip() else None), skip
