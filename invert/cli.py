@@ -141,7 +141,14 @@ def build_parser():
 
 def _add_batch_parser(sub):
     p = sub.add_parser("batch", help="reanalyse a log of frames (per frame or Kalman smoothing)")
-    p.add_argument("log", type=Path, help="LOG.csv or LOG.parquet: time + one column per sensor")
+    p.add_argument("log", help="LOG.csv or LOG.parquet (wide: time + one column per sensor; or "
+                               "long: time,sensor,value[,flag]), or a database URL "
+                               "sqlite:///FILE.db or postgresql://user@host:port/db with --table")
+    p.add_argument("--table", default=None, help="table of a database LOG (wide or long)")
+    p.add_argument("--from", dest="time_from", default=None, metavar="TIME",
+                   help="database LOG: only frames with time >= TIME")
+    p.add_argument("--to", dest="time_to", default=None, metavar="TIME",
+                   help="database LOG: only frames with time < TIME")
     p.add_argument("--layout", type=Path, required=True, help="LAYOUT.csv: sensor,x,y[,sigma]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
@@ -355,7 +362,8 @@ def _cmd_batch(args):
                         smoothness=args.smoothness, n_modes=args.n_modes, center=args.center,
                         time_scale=args.time_scale, chunk_rows=args.chunk_rows,
                         max_transient=args.max_transient or None,
-                        time_format=args.time_format)
+                        time_format=args.time_format, table=args.table,
+                        time_from=args.time_from, time_to=args.time_to)
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]

@@ -104,13 +104,15 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
               ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
-              on_chunk=None, say=print):
+              table=None, time_from=None, time_to=None, on_chunk=None, say=print):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
     ----------
     log : str or Path
-        CSV or Parquet log (time column + one column per sensor).
+        CSV or Parquet log, wide (time column + one column per sensor) or long (time, sensor,
+        value[, flag]); or a database URL (``sqlite:///FILE``, ``postgresql://...``) with
+        ``table`` (:func:`invert.io.logs.open_log`).
     layout : str or Path
         LAYOUT.csv: ``sensor,x,y[,sigma]``.
     radius : float
@@ -152,6 +154,9 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     time_format : str, optional
         How the log writes its times when not numbers or ISO 8601: ``epoch-s``/``-ms``/
         ``-us``/``-ns`` or a strptime pattern (:mod:`invert.io.times`).
+    table, time_from, time_to : str, optional
+        The table of a database log, and its time window (``time >= time_from``,
+        ``time < time_to``).
     on_chunk : callable, optional
         Called as ``on_chunk(i)`` after chunk ``i`` of a phase is committed to the working
         folder (progress, or a pause).
@@ -179,7 +184,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time,
                           time_format=time_format)
-    source = open_log(log, job.sensors, chunk_rows=chunk_rows, time_format=job.time_format)
+    source = open_log(log, job.sensors, chunk_rows=chunk_rows, time_format=job.time_format,
+                      table=table, time_from=time_from, time_to=time_to)
     # the folder is locked before the engine starts: a refused run starts no cluster
     with OutputLock(job.out) as lock, \
             make_engine(engine, scheduler=scheduler, n_workers=n_workers) as eng:

@@ -78,12 +78,13 @@ class LongLogReader:
     """
 
     def __init__(self, path, sensors, names, *, chunk_rows=65536, time_format=None,
-                 skip_rows=0):
-        self.path = Path(path)
-        self.source = self.path.name
+                 skip_rows=0, table=None):
+        self.table = table
+        self.path = None if table is not None else Path(path)
+        self.source = table.source if table is not None else self.path.name
         self.sensors = [str(s) for s in sensors]
         self.chunk_rows = int(chunk_rows)
-        self.is_parquet = self.path.suffix.lower() in (".parquet", ".pq")
+        self.is_parquet = table is None and self.path.suffix.lower() in (".parquet", ".pq")
         self.skip_rows = int(skip_rows)
         self.roles = _roles(names)
         if self.roles is None:
@@ -102,13 +103,16 @@ class LongLogReader:
         """Return the resume signature: path, size and modification time of the file."""
         from .wide import log_signature
 
-        return log_signature(self.path)
+        return self.table.signature() if self.table is not None else log_signature(self.path)
 
     # --- reading --------------------------------------------------------------------------------
     def _record_batches(self):
         import pyarrow as pa
 
         rows = max(self.chunk_rows * max(len(self.sensors), 1), 1024)
+        if self.table is not None:
+            yield from self.table.batches(rows)
+            return
         if self.is_parquet:
             import pyarrow.parquet as pq
 

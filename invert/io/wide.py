@@ -69,14 +69,16 @@ class WideLogReader:
         unit or a strptime pattern); default: numbers as written, or ISO 8601 date-times.
     """
 
-    def __init__(self, path, sensors, *, chunk_rows=65536, time_format=None):
-        self.path = Path(path)
-        self.source = self.path.name
+    def __init__(self, path, sensors, *, chunk_rows=65536, time_format=None, table=None):
+        self.table = table
+        self.path = None if table is not None else Path(path)
+        self.source = table.source if table is not None else self.path.name
         self.sensors = [str(s) for s in sensors]
         self.chunk_rows = int(chunk_rows)
-        if not self.path.exists():
+        if table is None and not self.path.exists():
             raise InputError(self.source, "file not found")
-        self.is_parquet = self.path.suffix.lower() in (".parquet", ".pq")
+        # Arrow record batches: a Parquet file, or a table of a database
+        self.is_parquet = table is not None or self.path.suffix.lower() in (".parquet", ".pq")
         names = self._names()
         self.header = parse_header(names, self.sensors, self.source,
                                    line=None if self.is_parquet else self.skip_rows + 1)
@@ -100,9 +102,11 @@ class WideLogReader:
 
         A resumed run also compares every chunk's content hash (``Chunk.digest``).
         """
-        return log_signature(self.path)
+        return self.table.signature() if self.table is not None else log_signature(self.path)
 
     def _names(self):
+        if self.table is not None:
+            return list(self.table.names)
         if self.is_parquet:
             import pyarrow.parquet as pq
 
@@ -134,8 +138,9 @@ class WideLogReader:
         if self.is_parquet:
             import pyarrow.parquet as pq
 
-            pf = pq.ParquetFile(self.path)
-            for b in pf.iter_batches(batch_size=self.chunk_rows):
+            batches = (self.table.batches(self.chunk_rows) if self.table is not None
+                       else pq.ParquetFile(self.path).iter_batches(batch_size=self.chunk_rows))
+            for b in batches:
                 yield [(b, [], None, self.header)], _batch_digest(b)
             return
         state = {"header": self.header}
