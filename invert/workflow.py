@@ -8,10 +8,12 @@ prior, the linear problem, and runs the chosen stage.
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from pathlib import Path
 
 import numpy as np
 
+from .errors import FitWarning
 from .geometry import domain_class
 from .io.readings import Readings, load_readings
 from .problem import LinearProblem
@@ -19,7 +21,8 @@ from .stages._truncation import truncation_for
 from .stages.registry import STAGES, stage_names
 
 __all__ = ["fit", "make_domain", "as_readings", "run_stage", "make_stage",
-           "problem_for_stage", "fit_stage", "METHODS"]
+           "problem_for_stage", "fit_stage", "residual_dof_warning", "METHODS",
+           "MIN_RESIDUAL_DOF"]
 
 #: The method names of the stage registry (:data:`invert.stages.registry.STAGES`).
 METHODS = stage_names()
@@ -161,9 +164,38 @@ def problem_for_stage(problem, stage):
                                assembly_notes=tuple(problem.assembly_notes) + (note,))
 
 
+#: Fewer residual degrees of freedom than this get a :class:`~invert.errors.FitWarning`.
+MIN_RESIDUAL_DOF = 3.0
+
+
+def residual_dof_warning(estimate, minimum=MIN_RESIDUAL_DOF):
+    """Return the warning for a fit leaving fewer than ``minimum`` residual dof, or None.
+
+    ``estimate.info["residual_dof"]`` is m minus the effective degrees of freedom; the
+    Tikhonov stage keeps no such margin for its default rule when sigma is given (see
+    :class:`~invert.stages.tikhonov.Tikhonov`), so a nearly interpolating fit is said here.
+    """
+    rdof = estimate.info.get("residual_dof") if estimate.info else None
+    m = estimate.info.get("n_readings")
+    if rdof is None or not np.isfinite(rdof) or rdof >= minimum:
+        return None
+    return (f"only {rdof:.3g} residual degrees of freedom are left of {m} readings: the fit "
+            f"nearly interpolates them, so the chi-square check and any noise estimate rest on "
+            f"little; more readings or a rule that keeps a margin (rule='gcv', --rule gcv) help")
+
+
 def fit_stage(stage, problem):
-    """``stage.fit(problem_for_stage(problem, stage))``: the stage on the truncation it needs."""
-    return stage.fit(problem_for_stage(problem, stage))
+    """``stage.fit(problem_for_stage(problem, stage))``: the stage on the truncation it needs.
+
+    A fit left with fewer than :data:`MIN_RESIDUAL_DOF` residual degrees of freedom gets a
+    :class:`~invert.errors.FitWarning`, also recorded in ``Estimate.warnings``.
+    """
+    estimate = stage.fit(problem_for_stage(problem, stage))
+    note = residual_dof_warning(estimate)
+    if note is None:
+        return estimate
+    warnings.warn(note, FitWarning, stacklevel=2)
+    return dataclasses.replace(estimate, warnings=tuple(estimate.warnings) + (note,))
 
 
 def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
