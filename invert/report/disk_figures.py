@@ -85,11 +85,19 @@ def plot_rim_profile(ax, estimate, problem, level=0.9, unit="", arcs=None):
     rho, th = domain.to_polar(problem.points)
     rim = rho > 0.999
     err = problem.sigma[rim] if problem.sigma is not None else None
+    limits = None
     if err is not None:
         # a huge sigma (a reading marked as nearly worthless) would stretch the axis to
-        # ~1e300 and overflow matplotlib's transforms: bars are cut at twice the band's span
-        span = np.ptp(np.concatenate([b["lower"], b["upper"], problem.y[rim]]))
-        err = np.minimum(err, 2 * max(span, np.finfo(float).tiny))
+        # ~1e300 and overflow matplotlib's transforms: bars longer than the band's span run
+        # off the axis, which is sized by the band and the shorter bars
+        span = max(np.ptp(np.concatenate([b["lower"], b["upper"], problem.y[rim]])),
+                   np.finfo(float).tiny)
+        short = err <= span
+        ends = np.concatenate([b["lower"], b["upper"], problem.y[rim],
+                               (problem.y[rim] - err)[short], (problem.y[rim] + err)[short]])
+        if not short.all():
+            limits = (ends.min() - 0.05 * np.ptp(ends), ends.max() + 0.05 * np.ptp(ends))
+        err = np.minimum(err, 2 * span)
     ax.errorbar(np.rad2deg(np.mod(th[rim], 2 * np.pi)), problem.y[rim], yerr=err, fmt="o",
                 ms=4, color=READ, label="rim reading (± sigma)")
     if problem.gap_points is not None and len(problem.gap_points):
@@ -98,6 +106,8 @@ def plot_rim_profile(ax, estimate, problem, level=0.9, unit="", arcs=None):
         ax.plot(gdeg, np.full(gdeg.shape, np.nanmin(b["lower"])), "x", color=WARN, mew=1.5,
                 label="sensor without reading")
     ax.set_xlim(0, 360)
+    if limits is not None:
+        ax.set_ylim(*limits)
     ax.set_xticks(range(0, 361, 45))
     ax.set_xlabel("rim angle θ (degrees, counter-clockwise from +x)")
     ax.set_ylabel(axis_label("value on the rim", unit, VALUE))

@@ -68,16 +68,19 @@ def literal_text(fig):
     User strings reach titles, axis and colour-bar labels, legends and tick labels; matplotlib
     would read a unit such as ``$^$`` as mathematics and fail. The figures' own strings use no
     mathtext, so every text is switched off; tick labels made by a formatter (numbers, which
-    may use mathtext on log axes) are left alone, fixed tick labels (sensor ids) are not.
+    may use mathtext on log axes) are left alone; labels of fixed ticks (sensor ids, set with
+    ``set_ticks``/``set_ticklabels``) are not.
     """
     from matplotlib.text import Text
-    from matplotlib.ticker import FixedFormatter
+    from matplotlib.ticker import FixedLocator
 
     numeric = set()
     for ax in fig.axes:
         for axis in (ax.xaxis, ax.yaxis):
-            if not isinstance(axis.get_major_formatter(), FixedFormatter):
-                numeric.update(map(id, axis.get_ticklabels(which="both")))
+            if not isinstance(axis.get_major_locator(), FixedLocator):
+                numeric.update(map(id, axis.get_ticklabels(which="major")))
+            if not isinstance(axis.get_minor_locator(), FixedLocator):
+                numeric.update(map(id, axis.get_ticklabels(which="minor")))
     for t in fig.findobj(Text):
         if id(t) not in numeric:
             t.set_parse_math(False)
@@ -104,10 +107,17 @@ def plot_residuals(ax, check, id_width=14):
     Sensor ids longer than ``id_width`` characters are shortened with an ellipsis.
     """
     k = np.arange(len(check.sensor))
-    ax.bar(k - 0.2, check.std_residual, width=0.4, color=BAND, edgecolor=LINE,
-           label="residual / noise sd")
-    ax.bar(k + 0.2, check.loo_z, width=0.4, color=GAP, edgecolor=WARN,
-           label="leave-one-out z")
+    res, loo = (np.asarray(v, float) for v in (check.std_residual, check.loo_z))
+    # a value that is not finite (a reading with a vast sigma has no leave-one-out z) gets
+    # no bar, which would overflow the axis transform, but a mark on the zero line
+    bad = ~np.isfinite(res) | ~np.isfinite(loo)
+    ax.bar(k - 0.2, np.where(np.isfinite(res), res, 0.0), width=0.4, color=BAND,
+           edgecolor=LINE, label="residual / noise sd")
+    ax.bar(k + 0.2, np.where(np.isfinite(loo), loo, 0.0), width=0.4, color=GAP,
+           edgecolor=WARN, label="leave-one-out z")
+    if bad.any():
+        ax.plot(k[bad], np.zeros(bad.sum()), "x", color=READ, mew=1.5,
+                label="not finite (no bar)")
     for v in (-2, 2):
         ax.axhline(v, color="grey", lw=0.7, ls=":")
     ax.axhline(0, color="k", lw=0.6)
