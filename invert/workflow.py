@@ -62,7 +62,7 @@ def as_readings(data, *, dim=2) -> Readings:
     return Readings.from_frame(data, dim=dim)
 
 
-def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence", s=2.0,
+def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.0,
         n_modes=None, kind="disk", **options):
     """Fit readings and return an :class:`~invert.problem.Estimate`.
 
@@ -79,8 +79,10 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
         :class:`~invert.stages.gaussian.GaussianPosterior`) or ``mcmc`` (posterior draws with
         sampled hyperparameters, faulty sensors or angle errors,
         :class:`~invert.stages.mcmc.sampler.MCMCSampler`).
-    rule : str, default="evidence"
-        Parameter-choice rule for the Tikhonov stage.
+    rule : str, optional
+        Parameter-choice rule of the Tikhonov stage, one of :data:`invert.RULES`
+        (``"evidence"`` by default; ``"fixed"`` with ``lam=``). Only with
+        ``method="tikhonov"``: the other stages choose their hyperparameters themselves.
     s : float, default=2.0
         Smoothness order of the prior.
     n_modes : int, optional
@@ -89,7 +91,14 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
         The region, a name in :data:`invert.geometry.DOMAINS`; readings have the domain's
         ``dim`` coordinates (a ball reads ``x, y, z``, see :class:`~invert.geometry.ball.Ball`).
     **options
-        Passed to the stage.
+        Passed to the stage: for ``tikhonov`` e.g. ``lam``, ``noise_sd``; for ``gaussian``
+        and ``mcmc`` ``fix_s``; for ``mcmc`` also ``faulty``, ``angle_sd_deg``,
+        ``max_steps``, ``n_draws`` (see each stage class).
+
+    Raises
+    ------
+    ValueError
+        ``method`` not one of :data:`METHODS`, or ``rule`` given for another method.
 
     Examples
     --------
@@ -102,13 +111,16 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
     20.0
     """
     if method not in METHODS:
-        raise ValueError(f"The 'method' parameter of fit must be one of {METHODS}. "
-                         f"Got {method!r} instead.")
+        raise ValueError(f"The 'method' parameter of fit must be one of {METHODS} "
+                         f"(tikhonov, gaussian, mcmc: see invert.fit). Got {method!r} instead.")
+    if rule is not None and method != "tikhonov":
+        raise ValueError(f"The 'rule' parameter of fit belongs to method='tikhonov'; "
+                         f"method={method!r} chooses its hyperparameters itself.")
     r = as_readings(readings, dim=domain_class(kind).dim)
     domain = make_domain(radius, center, kind=kind, s=s, n_modes=n_modes)
     problem = LinearProblem.from_readings(r, domain)
     if method == "tikhonov":
-        options = {"rule": rule, **options}
+        options = {"rule": rule or "evidence", **options}
     return run_stage(problem, method, s=s, **options)
 
 
