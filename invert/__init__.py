@@ -4,6 +4,8 @@ Cite the methods you use (see the ``References`` section of each stage) and this
 "rim-invert, version 0.1".
 """
 
+from importlib import metadata as _metadata
+
 from .batch import run_batch
 from .diagnostics import Diagnostics, ModelCheck, SensorAdvice, model_check
 from .errors import DomainError, FitWarning, InputError, MCMCWarning, ModelCheckWarning
@@ -32,7 +34,10 @@ from .stages import (
 )
 from .workflow import fit, make_domain
 
-__version__ = "0.1.0"
+try:  # the installed distribution's version (pyproject.toml), one source of truth
+    __version__ = _metadata.version("rim-invert")
+except _metadata.PackageNotFoundError:  # a source tree that was never installed
+    __version__ = "0+unknown"
 
 __all__ = [
     "Ball",

@@ -98,6 +98,10 @@ def build_parser():
     parser = _Parser(prog="rim-invert",
                      description="Estimate a harmonic field in a disk or ball from rim and "
                                  "interior sensor readings, with calibrated uncertainty.")
+    from importlib import metadata
+
+    parser.add_argument("--version", action="version",
+                        version=f"%(prog)s {metadata.version('rim-invert')}")
     sub = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     p = sub.add_parser("fit", help="fit one snapshot of readings")
@@ -297,7 +301,9 @@ def _cmd_demo(args):
                           unit=args.unit, length_unit=args.length_unit)
     print("Demo (synthetic data: a heated circular plate, radius 0.25 m, 32 rim thermocouples "
           "with a failed harness and drop-outs, 4 interior probes).")
-    print(f"method {summary['method']}, rule {summary.get('rule')}, "
+    from .report.files import describe_choice
+
+    print(f"method {summary['method']}, {describe_choice(summary)}, "
           f"{summary['readings']['n_used']} readings used, {summary['readings']['n_gaps']} gaps")
     print(f"Output written to {args.out}/ (summary.json, boundary.csv, query.csv, field.csv, "
           f"figures)")
@@ -372,17 +378,23 @@ def _cmd_batch(args):
           f"rejected; written to {args.out}/")
 
 
+def error_line(exc):
+    """Return the one line printed for ``exc``: its first non-blank line, never empty.
+
+    An exception without text is named by its class and repr (``ValueError()``).
+    """
+    line = next((ln.strip() for ln in str(exc).splitlines() if ln.strip()), "")
+    return line or f"{type(exc).__name__} without a message ({exc!r})"
+
+
 def main(argv=None):
     """Entry point of the ``rim-invert`` command."""
     args = build_parser().parse_args(argv)
     try:
         {"fit": _cmd_fit, "demo": _cmd_demo, "advise": _cmd_advise,
          "batch": _cmd_batch}[args.command](args)
-    except InputError as exc:
-        print(f"rim-invert: error: {exc}", file=sys.stderr)
-        return EXIT_BAD_INPUT
-    except ValueError as exc:
-        print(f"rim-invert: error: {str(exc).splitlines()[0]}", file=sys.stderr)
+    except (InputError, ValueError) as exc:
+        print(f"rim-invert: error: {error_line(exc)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except OSError as exc:  # the system refused a read or write: one line, nothing half-written
         where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""

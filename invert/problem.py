@@ -172,8 +172,12 @@ class LinearProblem:
     def from_readings(cls, readings, domain):
         """Build the problem from a :class:`~invert.io.readings.Readings` snapshot.
 
-        Gaps are dropped from ``G`` and ``y`` but kept in ``gap_sensor``/``gap_points``.
+        ``readings`` may also be a pandas DataFrame with the READINGS.csv columns (``x, y``
+        [``z``], ``value``, optional ``sigma, sensor``), read as
+        :func:`invert.load_readings` reads a file. Gaps are dropped from ``G`` and ``y`` but
+        kept in ``gap_sensor``/``gap_points``.
         """
+        readings = readings_from(readings, domain)
         n_snapped = readings.check_domain(domain)
         obs = readings.observed
         G = domain.design(readings.points[obs])
@@ -433,3 +437,19 @@ class Estimate:
         """
         pts, cols = self.domain.rim_grid(n)
         return self.at(pts, level).to_frame(**cols)
+
+
+def readings_from(data, domain):
+    """Return ``data`` as :class:`~invert.io.readings.Readings`, converting a DataFrame.
+
+    A DataFrame is read by :meth:`~invert.io.readings.Readings.from_frame` with the domain's
+    dimension and centre; Readings are returned as they are.
+    """
+    if hasattr(data, "check_domain"):
+        return data
+    if not hasattr(data, "columns"):
+        raise TypeError(f"readings must be Readings or a pandas DataFrame, got "
+                        f"{type(data).__name__}")
+    from .io.readings import Readings  # the one table reader (io layer), needed only here
+
+    return Readings.from_frame(data, dim=domain.dim, center=domain.center)

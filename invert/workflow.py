@@ -8,10 +8,12 @@ prior, the linear problem, and runs the chosen stage.
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from pathlib import Path
 
 import numpy as np
 
+from .errors import FitWarning
 from .geometry import domain_class
 from .io.readings import Readings, load_readings
 from .problem import LinearProblem
@@ -19,7 +21,8 @@ from .stages._truncation import truncation_for
 from .stages.registry import STAGES, stage_names
 
 __all__ = ["fit", "make_domain", "as_readings", "run_stage", "make_stage",
-           "problem_for_stage", "fit_stage", "METHODS"]
+           "problem_for_stage", "fit_stage", "residual_dof_warning", "METHODS",
+           "MIN_RESIDUAL_DOF"]
 
 #: The method names of the stage registry (:data:`invert.stages.registry.STAGES`).
 METHODS = stage_names()
@@ -59,7 +62,7 @@ def as_readings(data, *, dim=2) -> Readings:
     return Readings.from_frame(data, dim=dim)
 
 
-def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence", s=2.0,
+def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.0,
         n_modes=None, kind="disk", **options):
     """Fit readings and return an :class:`~invert.problem.Estimate`.
 
@@ -76,8 +79,10 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
         :class:`~invert.stages.gaussian.GaussianPosterior`) or ``mcmc`` (posterior draws with
         sampled hyperparameters, faulty sensors or angle errors,
         :class:`~invert.stages.mcmc.sampler.MCMCSampler`).
-    rule : str, default="evidence"
-        Parameter-choice rule for the Tikhonov stage.
+    rule : str, optional
+        Parameter-choice rule of the Tikhonov stage, one of :data:`invert.RULES`
+        (``"evidence"`` by default; ``"fixed"`` with ``lam=``). Only with
+        ``method="tikhonov"``: the other stages choose their hyperparameters themselves.
     s : float, default=2.0
         Smoothness order of the prior.
     n_modes : int, optional
@@ -86,7 +91,14 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
         The region, a name in :data:`invert.geometry.DOMAINS`; readings have the domain's
         ``dim`` coordinates (a ball reads ``x, y, z``, see :class:`~invert.geometry.ball.Ball`).
     **options
-        Passed to the stage.
+        Passed to the stage: for ``tikhonov`` e.g. ``lam``, ``noise_sd``; for ``gaussian``
+        and ``mcmc`` ``fix_s``; for ``mcmc`` also ``faulty``, ``angle_sd_deg``,
+        ``max_steps``, ``n_draws`` (see each stage class).
+
+    Raises
+    ------
+    ValueError
+        ``method`` not one of :data:`METHODS`, or ``rule`` given for another method.
 
     Examples
     --------
@@ -99,13 +111,16 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule="evidence"
     20.0
     """
     if method not in METHODS:
-        raise ValueError(f"The 'method' parameter of fit must be one of {METHODS}. "
-                         f"Got {method!r} instead.")
+        raise ValueError(f"The 'method' parameter of fit must be one of {METHODS} "
+                         f"(tikhonov, gaussian, mcmc: see invert.fit). Got {method!r} instead.")
+    if rule is not None and method != "tikhonov":
+        raise ValueError(f"The 'rule' parameter of fit belongs to method='tikhonov'; "
+                         f"method={method!r} chooses its hyperparameters itself.")
     r = as_readings(readings, dim=domain_class(kind).dim)
     domain = make_domain(radius, center, kind=kind, s=s, n_modes=n_modes)
     problem = LinearProblem.from_readings(r, domain)
     if method == "tikhonov":
-        options = {"rule": rule, **options}
+        options = {"rule": rule or "evidence", **options}
     return run_stage(problem, method, s=s, **options)
 
 
@@ -161,9 +176,38 @@ def problem_for_stage(problem, stage):
                                assembly_notes=tuple(problem.assembly_notes) + (note,))
 
 
+#: Fewer residual degrees of freedom than this get a :class:`~invert.errors.FitWarning`.
+MIN_RESIDUAL_DOF = 3.0
+
+
+def residual_dof_warning(estimate, minimum=MIN_RESIDUAL_DOF):
+    """Return the warning for a fit leaving fewer than ``minimum`` residual dof, or None.
+
+    ``estimate.info["residual_dof"]`` is m minus the effective degrees of freedom; the
+    Tikhonov stage keeps no such margin for its default rule when sigma is given (see
+    :class:`~invert.stages.tikhonov.Tikhonov`), so a nearly interpolating fit is said here.
+    """
+    rdof = estimate.info.get("residual_dof") if estimate.info else None
+    m = estimate.info.get("n_readings")
+    if rdof is None or not np.isfinite(rdof) or rdof >= minimum:
+        return None
+    return (f"only {rdof:.3g} residual degrees of freedom are left of {m} readings: the fit "
+            f"nearly interpolates them, so the chi-square check and any noise estimate rest on "
+            f"little; more readings or a rule that keeps a margin (rule='gcv', --rule gcv) help")
+
+
 def fit_stage(stage, problem):
-    """``stage.fit(problem_for_stage(problem, stage))``: the stage on the truncation it needs."""
-    return stage.fit(problem_for_stage(problem, stage))
+    """``stage.fit(problem_for_stage(problem, stage))``: the stage on the truncation it needs.
+
+    A fit left with fewer than :data:`MIN_RESIDUAL_DOF` residual degrees of freedom gets a
+    :class:`~invert.errors.FitWarning`, also recorded in ``Estimate.warnings``.
+    """
+    estimate = stage.fit(problem_for_stage(problem, stage))
+    note = residual_dof_warning(estimate)
+    if note is None:
+        return estimate
+    warnings.warn(note, FitWarning, stacklevel=2)
+    return dataclasses.replace(estimate, warnings=tuple(estimate.warnings) + (note,))
 
 
 def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):

@@ -107,6 +107,28 @@ def _stop_http(dask_scheduler=None, dask_worker=None):
         node.http_server.stop()
 
 
+def _nbytes(obj, depth=4):
+    """Approximate size in bytes of ``obj``, looking into containers and plain objects.
+
+    ``dask.sizeof`` counts a dataclass holding arrays (a filter segment) as a few bytes, so the
+    arrays reachable through containers and object attributes are added up here.
+    """
+    from dask.sizeof import sizeof
+
+    if depth == 0 or isinstance(obj, (str, bytes, int, float, complex, bool, type(None))):
+        return sizeof(obj)
+    if isinstance(obj, dict):
+        return sum(_nbytes(v, depth - 1) for v in obj.values())
+    if isinstance(obj, (list, tuple)):
+        return sum(_nbytes(v, depth - 1) for v in obj)
+    fields = getattr(obj, "__dict__", None)
+    if fields is None and hasattr(obj, "__slots__"):
+        fields = {k: getattr(obj, k, None) for k in obj.__slots__}
+    if fields and not hasattr(obj, "nbytes"):
+        return sum(_nbytes(v, depth - 1) for v in fields.values())
+    return sizeof(obj)
+
+
 class DaskEngine:
     """Run tasks on a ``dask.distributed`` cluster.
 
@@ -153,8 +175,19 @@ class DaskEngine:
             self._client.run(_stop_http)
         self.address = self._client.scheduler.address
 
+    #: Arguments larger than this (bytes, by ``dask.sizeof``) are scattered before a submit.
+    scatter_bytes = 1 << 20
+
     def submit(self, fn, /, *args):
-        """Submit ``fn(*args)`` to the cluster (never cached: ``pure=False``)."""
+        """Submit ``fn(*args)`` to the cluster (never cached: ``pure=False``).
+
+        An argument larger than :attr:`scatter_bytes` (a filtered segment handed back to the
+        smoother, a chunk of frames) is scattered to the cluster first and passed as a future:
+        embedded in the task it would make a graph of tens of MiB, which the scheduler must
+        unpickle and which dask warns about ("Sending large graph").
+        """
+        args = [self._client.scatter([a], hash=False)[0] if _nbytes(a) > self.scatter_bytes
+                else a for a in args]
         return self._client.submit(fn, *args, pure=False)
 
     def gather(self, futures):

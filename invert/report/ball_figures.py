@@ -11,16 +11,12 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["write_figures_ball", "plot_surface_map", "plot_slices"]
+from .plots import LENGTH, VALUE, axis_label, mpl_pyplot, save_figure
 
+__all__ = ["write_figures_ball", "plot_surface_map", "plot_slices", "SLICE_PLANES"]
 
-def _mpl():
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    return plt
+#: The central planes drawn, by their normal axis: the three planes of field.csv.
+SLICE_PLANES = ("z", "y", "x")
 
 
 def _latlon(domain, points):
@@ -66,7 +62,7 @@ def plot_surface_map(fig, estimate, problem, level=0.9, n=480, unit=""):
     for ax, data, title, cmap in ((axes[0], s.mean, "estimated surface value", "inferno"),
                                   (axes[1], s.sd, "posterior sd", "viridis")):
         im = ax.pcolormesh(lon, lat, data.reshape(shape), cmap=cmap, shading="nearest")
-        fig.colorbar(im, ax=ax, shrink=0.85, label=f"{title} {unit}".strip())
+        fig.colorbar(im, ax=ax, shrink=0.85, label=axis_label(title, unit, VALUE))
         ax.plot(slon, slat, "o", ms=4, mfc="w", mec="k", label="surface reading")
         if glat.size:
             ax.plot(glon, glat, "x", ms=7, mew=1.5, color="#d94801", label="no reading")
@@ -80,47 +76,56 @@ def plot_surface_map(fig, estimate, problem, level=0.9, n=480, unit=""):
     axes[1].legend(loc="lower right", fontsize=7)
 
 
-def plot_slices(fig, estimate, problem, level=0.9, n=81, unit="", axes_normal=("z", "x"),
-                near=0.1):
-    """Mean and posterior sd on central planes through the ball (rows: planes).
+def plot_slices(fig, estimate, problem, level=0.9, n=81, unit="", axes_normal=SLICE_PLANES,
+                near=0.1, length_unit=""):
+    """Mean (top row) and posterior sd (bottom row) on central planes through the ball.
 
-    Readings within ``near * R`` of a plane are marked on it (interior probes as triangles,
-    surface sensors as circles).
+    One column per plane of ``axes_normal`` (by default the three planes of field.csv), one
+    colour scale per row so that the planes can be compared. Readings within ``near * R`` of
+    a plane are marked on it (interior probes as triangles, surface sensors as circles).
     """
+    from matplotlib.colors import Normalize
+
     domain = estimate.domain
     names = {"z": ("x", "y"), "y": ("x", "z"), "x": ("y", "z")}
     index = {"x": 0, "y": 1, "z": 2}
-    grid = fig.subplots(len(axes_normal), 2, squeeze=False)
     c = np.asarray(domain.center)
     on = _surface_split(domain, problem.points)
     circle = np.linspace(0, 2 * np.pi, 400)
-    for row, axis in zip(grid, axes_normal):
+    planes = []
+    for axis in axes_normal:
         us, vs, pts, inside = domain.slice_grid(n, axis)
         s = estimate.at(pts[inside], level)
-        mean = np.full(len(pts), np.nan)
-        sd = np.full(len(pts), np.nan)
+        mean, sd = np.full(len(pts), np.nan), np.full(len(pts), np.nan)
         mean[inside], sd[inside] = s.mean, s.sd
-        k = index[axis]
-        iu, iv = (index[a] for a in names[axis])
-        close = np.abs(problem.points[:, k] - c[k]) <= near * domain.radius
-        for ax, data, title, cmap in ((row[0], mean, "estimated field", "inferno"),
-                                      (row[1], sd, "posterior sd", "viridis")):
-            im = ax.pcolormesh(us, vs, data.reshape(n, n), cmap=cmap, shading="auto")
-            fig.colorbar(im, ax=ax, shrink=0.85, label=f"{title} {unit}".strip())
-            ax.plot(c[iu] + domain.radius * np.cos(circle), c[iv] + domain.radius * np.sin(circle),
-                    color="k", lw=0.8)
+        planes.append((axis, us, vs, mean.reshape(n, n), sd.reshape(n, n)))
+    grid = fig.subplots(2, len(planes), squeeze=False)
+    rows = (("estimated field", "inferno", 3), ("posterior sd", "viridis", 4))
+    for r, (title, cmap, k_data) in enumerate(rows):
+        norm = Normalize(np.nanmin([np.nanmin(p[k_data]) for p in planes]),
+                         np.nanmax([np.nanmax(p[k_data]) for p in planes]))
+        for ax, plane in zip(grid[r], planes):
+            axis, us, vs = plane[:3]
+            k = index[axis]
+            iu, iv = (index[a] for a in names[axis])
+            im = ax.pcolormesh(us, vs, plane[k_data], cmap=cmap, norm=norm, shading="auto")
+            ax.plot(c[iu] + domain.radius * np.cos(circle),
+                    c[iv] + domain.radius * np.sin(circle), color="k", lw=0.8)
+            close = np.abs(problem.points[:, k] - c[k]) <= near * domain.radius
             ax.plot(problem.points[close & on, iu], problem.points[close & on, iv], "o", ms=4,
                     mfc="w", mec="k", label="surface reading near plane")
-            ax.plot(problem.points[close & ~on, iu], problem.points[close & ~on, iv], "^", ms=6,
-                    mfc="w", mec="k", label="interior probe near plane")
+            ax.plot(problem.points[close & ~on, iu], problem.points[close & ~on, iv], "^",
+                    ms=6, mfc="w", mec="k", label="interior probe near plane")
             ax.set_aspect("equal")
-            ax.set_xlabel(names[axis][0])
-            ax.set_ylabel(names[axis][1])
-            ax.set_title(f"{title}, plane {axis} = {c[k]:g}")
-        row[1].legend(loc="lower right", fontsize=6)
+            ax.set_xlabel(axis_label(names[axis][0], length_unit, LENGTH))
+            ax.set_ylabel(axis_label(names[axis][1], length_unit, LENGTH))
+            ax.set_title(f"{title}, plane {axis} = {c[k]:g}", fontsize=10)
+        fig.colorbar(im, ax=list(grid[r]), shrink=0.85, label=axis_label(title, unit, VALUE))
+    grid[1, -1].legend(loc="upper center", bbox_to_anchor=(0.5, -0.22), fontsize=7, ncol=2)
 
 
-def write_figures_ball(out_dir, estimate, problem, readings=None, level=0.9, unit=""):
+def write_figures_ball(out_dir, estimate, problem, readings=None, level=0.9, unit="",
+                       length_unit=""):
     """Write ``surface_map.png`` and ``interior_slices.png`` into ``out_dir``.
 
     Parameters
@@ -132,22 +137,21 @@ def write_figures_ball(out_dir, estimate, problem, readings=None, level=0.9, uni
     readings : Readings, optional
         Not needed for the drawings (kept for the same call shape as the disk figures).
     level : float, default=0.9
-    unit : str, default=""
+    unit, length_unit : str, default=""
+        Units of the values and of the coordinates.
 
     Returns
     -------
     list of Path
     """
-    plt = _mpl()
+    plt = mpl_pyplot()
     out = Path(out_dir)
     fig = plt.figure(figsize=(12, 4.2), layout="constrained")
     plot_surface_map(fig, estimate, problem, level, unit=unit)
     fig.suptitle("surface of the ball (latitude/longitude map)")
-    fig.savefig(out / "surface_map.png", dpi=100)
-    plt.close(fig)
-    fig = plt.figure(figsize=(10, 8.4), layout="constrained")
-    plot_slices(fig, estimate, problem, level, unit=unit)
-    fig.suptitle("central slices through the ball")
-    fig.savefig(out / "interior_slices.png", dpi=100)
-    plt.close(fig)
+    save_figure(plt, fig, out / "surface_map.png")
+    fig = plt.figure(figsize=(14, 8.2), layout="constrained")
+    plot_slices(fig, estimate, problem, level, unit=unit, length_unit=length_unit)
+    fig.suptitle("central slices through the ball (the three planes of field.csv)")
+    save_figure(plt, fig, out / "interior_slices.png")
     return [out / "surface_map.png", out / "interior_slices.png"]

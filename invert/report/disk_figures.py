@@ -14,8 +14,10 @@ import numpy as np
 from .plots import (
     BAND,
     GAP,
+    LENGTH,
     LINE,
     READ,
+    VALUE,
     WARN,
     axis_label,
     mpl_pyplot,
@@ -83,6 +85,19 @@ def plot_rim_profile(ax, estimate, problem, level=0.9, unit="", arcs=None):
     rho, th = domain.to_polar(problem.points)
     rim = rho > 0.999
     err = problem.sigma[rim] if problem.sigma is not None else None
+    limits = None
+    if err is not None:
+        # a huge sigma (a reading marked as nearly worthless) would stretch the axis to
+        # ~1e300 and overflow matplotlib's transforms: bars longer than the band's span run
+        # off the axis, which is sized by the band and the shorter bars
+        span = max(np.ptp(np.concatenate([b["lower"], b["upper"], problem.y[rim]])),
+                   np.finfo(float).tiny)
+        short = err <= span
+        ends = np.concatenate([b["lower"], b["upper"], problem.y[rim],
+                               (problem.y[rim] - err)[short], (problem.y[rim] + err)[short]])
+        if not short.all():
+            limits = (ends.min() - 0.05 * np.ptp(ends), ends.max() + 0.05 * np.ptp(ends))
+        err = np.minimum(err, 2 * span)
     ax.errorbar(np.rad2deg(np.mod(th[rim], 2 * np.pi)), problem.y[rim], yerr=err, fmt="o",
                 ms=4, color=READ, label="rim reading (± sigma)")
     if problem.gap_points is not None and len(problem.gap_points):
@@ -91,9 +106,11 @@ def plot_rim_profile(ax, estimate, problem, level=0.9, unit="", arcs=None):
         ax.plot(gdeg, np.full(gdeg.shape, np.nanmin(b["lower"])), "x", color=WARN, mew=1.5,
                 label="sensor without reading")
     ax.set_xlim(0, 360)
+    if limits is not None:
+        ax.set_ylim(*limits)
     ax.set_xticks(range(0, 361, 45))
     ax.set_xlabel("rim angle θ (degrees, counter-clockwise from +x)")
-    ax.set_ylabel(axis_label("value on the rim", unit))
+    ax.set_ylabel(axis_label("value on the rim", unit, VALUE))
     ax.legend(loc="best", fontsize=7)
 
 
@@ -108,44 +125,90 @@ def plot_field_maps(fig, estimate, problem, level=0.9, n=121, unit="", length_un
     for ax, data, title, cmap in ((axes[0], s.mean, "estimated field", "magma"),
                                   (axes[1], s.sd, "posterior sd", "cividis")):
         im = ax.pcolormesh(xs, ys, _full(inside, data).reshape(n, n), cmap=cmap, shading="auto")
-        fig.colorbar(im, ax=ax, shrink=0.8, label=axis_label(title, unit))
+        fig.colorbar(im, ax=ax, shrink=0.8, label=axis_label(title, unit, VALUE))
         _rim_circle(ax, domain, color="k", lw=0.8)
         _sensor_marks(ax, problem, legend=ax is axes[1])
         ax.set_aspect("equal")
         ax.set_title(title)
-        ax.set_xlabel(axis_label("x", length_unit))
-        ax.set_ylabel(axis_label("y", length_unit))
+        ax.set_xlabel(axis_label("x", length_unit, LENGTH))
+        ax.set_ylabel(axis_label("y", length_unit, LENGTH))
     axes[0].contour(xs, ys, stream.reshape(n, n), levels=16, colors="#e8f1f8", linewidths=0.6,
                     negative_linestyles="solid")
     axes[0].set_title("estimated field, with flux lines")
     axes[1].legend(loc="lower right", fontsize=7)
 
 
+#: Probability contours drawn on the exceedance map, where the map reaches them.
+EXCEEDANCE_LEVELS = (0.001, 0.01, 0.05, 0.25, 0.5, 0.75, 0.95, 0.99)
+
+
+def exceedance_levels(p, levels=EXCEEDANCE_LEVELS):
+    """Return the contour levels of ``levels`` that the probability map ``p`` crosses."""
+    p = np.asarray(p, float)
+    p = p[np.isfinite(p)]
+    if not p.size:
+        return []
+    return [v for v in levels if p.min() < v < p.max()]
+
+
 def plot_exceedance(fig, estimate, problem, threshold, max_exceed=None, n=101, unit="",
                     length_unit=""):
-    """Map of the probability that the field exceeds ``threshold``."""
+    """Map of the probability that the field exceeds ``threshold``, with contours.
+
+    The colour scale is logarithmic from 0.001 to 1 (smaller probabilities get the lightest
+    colour), so that small but non-zero probabilities are visible; the rim, where the maximum
+    lies, is drawn as a ring in the same colours with its largest value marked; contours are
+    drawn at the levels of :data:`EXCEEDANCE_LEVELS` the map crosses. Returns those levels.
+    """
+    from matplotlib.collections import LineCollection
+    from matplotlib.colors import LogNorm
+
     from ..diagnostics.diagnose import exceedance_probability
 
     domain = estimate.domain
     xs, ys, pts, inside = _grid_map(estimate, n)
-    p = _full(inside, exceedance_probability(estimate, pts[inside], threshold))
+    p = _full(inside, exceedance_probability(estimate, pts[inside], threshold)).reshape(n, n)
+    floor = EXCEEDANCE_LEVELS[0]
     ax = fig.subplots()
-    im = ax.pcolormesh(xs, ys, p.reshape(n, n), cmap="Reds", vmin=0, vmax=1, shading="auto")
+    im = ax.pcolormesh(xs, ys, np.clip(p, floor, 1.0), cmap="Reds",
+                       norm=LogNorm(vmin=floor, vmax=1.0), shading="auto")
     u = f" {unit}" if unit else ""
-    fig.colorbar(im, ax=ax, shrink=0.85, label=f"P(value > {threshold:g}{u})")
-    if np.nanmax(p) > 0.05:
-        ax.contour(xs, ys, p.reshape(n, n), levels=[0.05, 0.5, 0.95], colors="k",
-                   linewidths=0.7)
-    _rim_circle(ax, domain, color="k", lw=0.8)
+    cb = fig.colorbar(im, ax=ax, shrink=0.85)
+    cb.set_label(f"P(value > {threshold:g}{u}) (log scale; ≤ {floor:g} lightest)")
+    ticks = [0.001, 0.01, 0.05, 0.25, 1.0]
+    cb.set_ticks(ticks, labels=[f"{t:g}" for t in ticks])
+    # the rim, where the maximum lies (maximum principle), as a ring in the same colours
+    th = np.linspace(0, 2 * np.pi, 721)
+    rim = domain.center + domain.radius * np.column_stack([np.cos(th), np.sin(th)])
+    p_rim = exceedance_probability(estimate, rim, threshold)
+    seg = np.stack([rim[:-1], rim[1:]], axis=1)
+    ring = LineCollection(seg, cmap="Reds", norm=im.norm, linewidths=6, capstyle="butt")
+    ring.set_array(np.clip(0.5 * (p_rim[:-1] + p_rim[1:]), floor, 1.0))
+    ax.add_collection(ring)
+    levels = exceedance_levels(np.append(p[np.isfinite(p)], p_rim))
+    if levels:
+        cs = ax.contour(xs, ys, p, levels=levels, colors="k", linewidths=0.8)
+        ax.clabel(cs, fmt="%g", fontsize=7)
+        cb.add_lines(cs)
+    _rim_circle(ax, domain, color="k", lw=0.6)
     _sensor_marks(ax, problem)
-    title = f"probability of exceeding {threshold:g}{' ' + unit if unit else ''}"
+    k = int(np.argmax(p_rim))
+    pmax = float(max(np.nanmax(p), p_rim[k]))
+    inward = domain.center + 0.7 * (rim[k] - domain.center)
+    if p_rim[k] < 0.25:  # a small spot: point the reader at it
+            ax.annotate(f"largest: {p_rim[k]:.2g}", rim[k], xytext=inward, fontsize=8,
+                    ha="left" if rim[k][0] < domain.center[0] else "right",
+                    arrowprops={"arrowstyle": "->", "lw": 0.8})
+    title = f"probability of exceeding {threshold:g}{u}"
+    title += f"\nlargest at a point: {pmax:.2g}"
     if max_exceed is not None:
-        title += f"\nanywhere in the disk: {max_exceed.probability:.3f}"
+        title += f"; anywhere in the disk: {max_exceed.probability:.3f}"
     ax.set_title(title, fontsize=10)
     ax.set_aspect("equal")
-    ax.set_xlabel(axis_label("x", length_unit))
-    ax.set_ylabel(axis_label("y", length_unit))
+    ax.set_xlabel(axis_label("x", length_unit, LENGTH))
+    ax.set_ylabel(axis_label("y", length_unit, LENGTH))
     ax.legend(loc="lower right", fontsize=7)
+    return levels
 
 
 def plot_depth(fig, estimate, problem, diagnostics, unit=""):
@@ -183,7 +246,8 @@ def plot_depth(fig, estimate, problem, diagnostics, unit=""):
         ax.set_xlabel("harmonic degree n" + (f" (up to {top} of {res.degree[-1]})"
                                               if top < res.degree[-1] else ""))
         ax.set_title(f"per harmonic (effective dof {res.effective_dof:.1f})")
-        ax.legend(fontsize=7, loc="center right")
+        # below the axes: bars rise and the resolution falls across the whole width
+        ax.legend(fontsize=7, loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=2)
     else:
         for ax in axes[1:3]:
             ax.set_axis_off()
@@ -193,7 +257,7 @@ def plot_depth(fig, estimate, problem, diagnostics, unit=""):
     ax.fill_between(rp.rho, rp.min_sd, rp.max_sd, color=BAND, label="range over angle")
     ax.plot(rp.rho, rp.rms_sd, color=LINE, label="rms over angle")
     ax.set_xlabel("relative radius r/R")
-    ax.set_ylabel(axis_label("posterior sd", unit))
+    ax.set_ylabel(axis_label("posterior sd", unit, VALUE))
     ax.set_title("posterior sd against radius")
     ax.legend(fontsize=7)
 
@@ -218,8 +282,8 @@ def plot_gap_dependence(fig, estimate, problem, diagnostics, n=101, length_unit=
     _sensor_marks(ax, problem)
     ax.set_aspect("equal")
     ax.set_title("how much the estimate rests on unsensed rim arcs", fontsize=10)
-    ax.set_xlabel(axis_label("x", length_unit))
-    ax.set_ylabel(axis_label("y", length_unit))
+    ax.set_xlabel(axis_label("x", length_unit, LENGTH))
+    ax.set_ylabel(axis_label("y", length_unit, LENGTH))
     ax.legend(loc="lower right", fontsize=7)
 
 
@@ -252,12 +316,16 @@ def write_figures_disk(out_dir, estimate, problem, readings=None, level=0.9, uni
                  "Interior estimate with flux lines (level sets of the harmonic conjugate; heat "
                  "flows along them) and posterior sd."))
     if threshold is not None:
-        fig = plt.figure(figsize=(6, 5), layout="constrained")
-        plot_exceedance(fig, estimate, problem, threshold, diagnostics.max_exceed, unit=unit,
-                        length_unit=length_unit)
+        fig = plt.figure(figsize=(6.4, 5.2), layout="constrained")
+        levels = plot_exceedance(fig, estimate, problem, threshold, diagnostics.max_exceed,
+                                 unit=unit, length_unit=length_unit)
+        drawn = (f"contours at {', '.join(f'{v:g}' for v in levels)}" if levels else
+                 f"no contour: the map crosses none of the levels "
+                 f"{', '.join(f'{v:g}' for v in EXCEEDANCE_LEVELS)}")
         figs.append((save_figure(plt, fig, out / "exceedance.png"),
-                     f"Probability that the value exceeds {threshold:g} {unit} at each point "
-                     "(contours at 0.05, 0.5, 0.95)."))
+                     f"Probability that the value exceeds the threshold {threshold:g}"
+                     f"{' ' + unit if unit else ''} at each point, on a logarithmic colour "
+                     f"scale ({drawn})."))
     fig = plt.figure(figsize=(15, 3.7), layout="constrained")
     plot_depth(fig, estimate, problem, diagnostics, unit)
     figs.append((save_figure(plt, fig, out / "depth.png"),
@@ -279,9 +347,11 @@ def write_figures_disk(out_dir, estimate, problem, readings=None, level=0.9, uni
     post = estimate.extras.get("posterior") if estimate.extras else None
     if post is not None:
         fig = plt.figure(figsize=(9, 5.5), layout="constrained")
-        if plot_traces(fig, post):
+        shown = plot_traces(fig, post, trace=estimate.extras.get("trace"))
+        if shown:
             figs.append((save_figure(plt, fig, out / "traces.png"),
-                         "MCMC traces of the sampled hyperparameters."))
+                         f"MCMC traces of the sampled hyperparameters: {shown}; histograms of "
+                         "all kept posterior draws."))
         else:
             plt.close(fig)
     return figs

@@ -14,7 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["staged_output", "summary_dict", "write_fit_outputs", "CAUTIONS", "to_jsonable"]
+__all__ = ["staged_output", "summary_dict", "write_fit_outputs", "CAUTIONS", "to_jsonable",
+           "describe_choice"]
 
 CAUTIONS = (
     "The model assumes a steady, source-free, homogeneous and isotropic field in the region "
@@ -105,6 +106,22 @@ def summary_dict(estimate, problem, readings, *, level, extra=None):
     if extra:
         d.update(extra)
     return to_jsonable(d)
+
+
+def describe_choice(summary):
+    """How the fit chose its smoothing, in a few words, from its summary.json content.
+
+    ``"rule evidence"`` (Tikhonov), ``"hyperparameters by type-II maximum likelihood ..."``
+    (Gaussian), ``"sampled: log_tau, s"`` (MCMC).
+    """
+    if summary.get("rule"):
+        return f"rule {summary['rule']}"
+    how = summary.get("hyperparameters")
+    if isinstance(how, str):
+        return f"hyperparameters by {how}"
+    if summary.get("sampled"):
+        return "sampled: " + ", ".join(map(str, summary["sampled"]))
+    return "hyperparameters fixed"
 
 
 def _write_csv(frame, path):

@@ -22,7 +22,7 @@ from .disk_figures import (
     plot_rim_profile,
 )
 from .figures import write_figures
-from .plots import plot_residuals, plot_traces
+from .plots import plot_residuals, plot_traces, visible
 
 __all__ = [
     "write_figures",
@@ -37,6 +37,11 @@ __all__ = [
 ]
 
 
+def _esc(text):
+    """Return a user string as HTML text: control characters made visible, then escaped."""
+    return html.escape(visible(text))
+
+
 def _fmt(v, digits=4):
     if v is None:
         return "—"
@@ -45,7 +50,7 @@ def _fmt(v, digits=4):
     try:
         f = float(v)
     except (TypeError, ValueError):
-        return html.escape(str(v))
+        return _esc(v)
     if not np.isfinite(f):
         return "—"
     return f"{f:.{digits}g}"
@@ -110,21 +115,24 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
     figs = write_figures(out, estimate, problem, readings, level, unit, length_unit=length_unit,
                          diagnostics=diagnostics, threshold=threshold)
     # user strings are escaped once, here; everything below receives HTML-safe text
-    u = f" {html.escape(unit)}" if unit else ""
-    length_unit = html.escape(length_unit or "")
+    u = f" {_esc(unit)}" if unit else ""
+    length_unit = _esc(length_unit or "")
     lvl = f"{round(level * 100):g} %"
-    parts = [f"<h1>{html.escape(title or 'rim-invert report')}</h1>",
-             f"<p class='small'>Readings: {html.escape(str(readings.source))} · method "
-             f"{html.escape(estimate.method)} · intervals are central {lvl} intervals · values in "
-             f"{html.escape(unit or 'the readings’ unit')}, lengths in "
+    parts = [f"<h1>{_esc(title or 'rim-invert report')}</h1>",
+             f"<p class='small'>Readings: {_esc(readings.source)} · method "
+             f"{_esc(estimate.method)} · intervals are central {lvl} intervals · values in "
+             f"{_esc(unit) if unit else 'the readings’ unit'}, lengths in "
              f"{length_unit or 'the unit of the radius'}.</p>"]
-    # model check first: it says whether the rest can be trusted
+    # model check first: it says whether the rest can be trusted; then warnings and the
+    # cautions, all before the numbers a reader acts on
     parts += _check_section(diagnostics.check, u)
     warn = list(summary["warnings"]) if summary is not None else \
         list(estimate.warnings) + list(diagnostics.warnings)
     if warn:
-        parts.append("<h2>Warnings</h2><ul>" + "".join(f"<li>{html.escape(w)}</li>" for w in warn)
+        parts.append("<h2>Warnings</h2><ul>" + "".join(f"<li>{_esc(w)}</li>" for w in warn)
                      + "</ul>")
+    parts.append("<h2 id='cautions'>Cautions</h2><ul class='cautions'>" +
+                 "".join(f"<li>{html.escape(c)}</li>" for c in CAUTIONS) + "</ul>")
     parts.append("<h2>Summary</h2>")
     if diagnostics.check is not None and diagnostics.check.flagged:
         parts.append("<div class='verdict fail'>The intervals below assume a source-free "
@@ -142,12 +150,10 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
         parts.append(f"<figure><img alt='{html.escape(Path(path).stem)}' "
                      f"src='data:image/png;base64,{data}'><figcaption>{html.escape(cap)}"
                      "</figcaption></figure>")
-    parts.append("<h2>Cautions</h2><ul class='cautions'>" +
-                 "".join(f"<li>{html.escape(c)}</li>" for c in CAUTIONS) + "</ul>")
     parts.append("<p class='small'>Made by rim-invert. Method references are in the "
                  "documentation of each stage.</p>")
     doc = ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-           f"<title>{html.escape(title or 'rim-invert report')}</title><style>{_CSS}</style>"
+           f"<title>{_esc(title or 'rim-invert report')}</title><style>{_CSS}</style>"
            "</head><body>" + "\n".join(parts) + "</body></html>")
     path = out / "report.html"
     path.write_text(doc, encoding="utf-8")
@@ -160,13 +166,13 @@ def _check_section(chk, u):
         parts.append("<div class='verdict na'>No model check: the fit recorded no prior.</div>")
         return parts
     cls = "fail" if chk.flagged else ("pass" if chk.flagged is False else "na")
-    parts.append(f"<div class='verdict {cls}' id='verdict'>{html.escape(chk.verdict)}</div>")
+    parts.append(f"<div class='verdict {cls}' id='verdict'>{_esc(chk.verdict)}</div>")
     parts.append(f"<p class='small'>The check treats the readings as a harmonic field plus "
                  f"noise under the smoothness prior, with {html.escape(chk.hyperparameters)}"
                  f" (τ = {_fmt(chk.tau, 3)}{u}); α = {chk.alpha:g}, split between the "
                  "residual and source tests.</p>")
     for n in chk.notes:
-        parts.append(f"<p class='small'>Note: {html.escape(n)}</p>")
+        parts.append(f"<p class='small'>Note: {_esc(n)}</p>")
     return parts
 
 
@@ -196,7 +202,7 @@ def _summary_rows(estimate, level, query, length_unit):
         qp, ql = query
         qs = estimate.at(qp, level)
         for k, lab in enumerate(ql):
-            rows.append([f"{html.escape(str(lab))} {where(qp[k])}", _fmt(qs.mean[k]),
+            rows.append([f"{_esc(lab)} {where(qp[k])}", _fmt(qs.mean[k]),
                          _fmt(qs.sd[k], 3), f"{_fmt(qs.lower[k])} to {_fmt(qs.upper[k])}"])
     return rows
 
@@ -214,7 +220,7 @@ def _exceedance_section(mx, u, lvl):
 
 def _fit_rows(estimate, problem, u):
     info = dict(estimate.info)
-    rows = [["method", html.escape(estimate.method)]]
+    rows = [["method", _esc(estimate.method)]]
     for k, label in (("rule", "parameter rule"), ("lam", "regularisation parameter λ"),
                      ("s", "smoothness order s"), ("tau", f"prior scale τ{u}"),
                      ("noise_sd", f"estimated noise sd{u}"), ("effective_dof",
@@ -226,7 +232,7 @@ def _fit_rows(estimate, problem, u):
                  f"{problem.n_readings} / {len(problem.gap_sensor)}"])
     if len(problem.gap_sensor):
         rows.append(["sensors without reading",
-                     html.escape(", ".join(map(str, problem.gap_sensor)))])
+                     _esc(", ".join(map(str, problem.gap_sensor)))])
     return rows
 
 
@@ -254,7 +260,7 @@ def _gap_section(diagnostics, length_unit):
                      "sensor.</p>")
     labels = diagnostics.gap_labels or [f"p{k}" for k in range(len(g.share))]
     lu = f" {length_unit}" if length_unit else ""
-    rows = [[f"{html.escape(str(lab))} ({_fmt(p[0], 3)}, {_fmt(p[1], 3)}{lu})",
+    rows = [[f"{_esc(lab)} ({_fmt(p[0], 3)}, {_fmt(p[1], 3)}{lu})",
              f"{100 * sh:.1f} %", f"{w:.0f}°"]
             for lab, p, sh, w in zip(labels, g.points, g.share, g.half_mass_width_deg)]
     parts.append(_table(["dependence on gaps at", "kernel weight on unsensed arcs",

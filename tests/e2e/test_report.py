@@ -158,7 +158,7 @@ def test_ball_branch_uses_ball_figures(tmp_path, monkeypatch):
 
     calls = []
 
-    def write_figures_ball(out_dir, estimate, problem, readings, level, unit=""):
+    def write_figures_ball(out_dir, estimate, problem, readings, level, unit="", **_):
         import matplotlib
 
         matplotlib.use("Agg")

@@ -461,7 +461,8 @@ class MCMCSampler:
                         prior=PriorSummary(s=summ["s"]["median"], tau=summ["tau"]["median"],
                                            s_draws=np.asarray(s, float).ravel(),
                                            tau_draws=np.asarray(tau, float).ravel()),
-                        extras={"posterior": dt, "sensor_table": table})
+                        extras={"posterior": dt, "sensor_table": table,
+                                "trace": _trace_record(res, hyper)})
 
     def _model_name(self):
         parts = []
@@ -496,3 +497,20 @@ def mcmc(problem, **kwargs) -> Estimate:
     MCMCSampler
     """
     return MCMCSampler(**kwargs).fit(problem)
+
+
+def _trace_record(res, hyper, walkers=2, max_steps=1000):
+    """Chains of a few walkers of each ensemble after burn-in (tau, s, noise every ``step``).
+
+    For the trace figure (:func:`invert.report.plots.plot_traces`); None when the run kept
+    no chains (the augmented samplers, or nothing sampled).
+    """
+    ch = res.get("chains")
+    if ch is None or not hyper.ndim:
+        return None
+    burn = int(res["run"].get("burn", 0))
+    step = max(1, -(-(ch.shape[1] - burn) // max_steps))
+    th = np.moveaxis(ch[:, burn::step, :walkers, :hyper.ndim], 2, 1)  # (chain, draw, dim)
+    vals = [v.reshape(-1, th.shape[2]) for v in hyper.unpack(th.reshape(-1, hyper.ndim))]
+    return {"names": ["tau", "s", hyper.noise_name], "values": np.stack(vals, axis=-1),
+            "burn": burn, "step": step}
