@@ -162,7 +162,10 @@ def _add_batch_parser(sub):
                    help="Kalman filter + RTS smoother over time instead of per-frame fits")
     p.add_argument("--engine", default="local", choices=["local", "dask"])
     p.add_argument("--scheduler", default=None, help="address of an existing dask scheduler")
-    p.add_argument("--format", default="parquet", choices=["csv", "parquet"], dest="fmt")
+    p.add_argument("--format", default="parquet", choices=["csv", "parquet", "netcdf"],
+                   dest="fmt", help="frames and query tables as csv or parquet; netcdf: "
+                                    "parquet tables and results.nc (CF conventions)")
+    p.add_argument("--unit", default=None, help="unit of the readings (written into results.nc)")
     p.add_argument("--resume", action="store_true", help="continue an interrupted run in --out")
     p.add_argument("--lam", type=_positive("--lam"), default=None,
                    help="fixed regularisation parameter (e.g. from a fit's summary.json)")
@@ -369,7 +372,7 @@ def _cmd_batch(args):
                         time_scale=args.time_scale, chunk_rows=args.chunk_rows,
                         max_transient=args.max_transient or None,
                         time_format=args.time_format, table=args.table,
-                        time_from=args.time_from, time_to=args.time_to)
+                        time_from=args.time_from, time_to=args.time_to, unit=args.unit)
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]

@@ -215,7 +215,7 @@ def _backward_chunks(job, source, engine, work):
                                              job.max_transient).result()
         ftab, qtab = engine.submit(chunk_tables, info, seg, ms, sid, tab, Hq,
                                    job.query_labels, z, kind).result()
-        work.write_parts(i, job.fmt, ftab, qtab)
+        work.write_parts(i, job.table_fmt, ftab, qtab)
         work.dump(bstate, f"bstate-{i:06d}.npz", STATE_CLASSES)
         count_statuses(work.manifest, info["status"], info["reason"])
         done["backward"] = n_chunks - i
@@ -340,7 +340,7 @@ def parallel_chunks(job, source, engine, work, model):
                                       job.steady_tol, info, Hq, job.query_labels, z, kind))
     for i, fut in enumerate(out_futs):
         ftab, qtab = fut.result()
-        work.write_parts(i, job.fmt, ftab, qtab)
+        work.write_parts(i, job.table_fmt, ftab, qtab)
         yield ChunkDone("parallel", i, len(ftab))
     work.manifest["n_chunks"] = n_chunks
     work.manifest["loglik"] = loglik

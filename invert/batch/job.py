@@ -21,8 +21,8 @@ from .static import static_chunks
 
 __all__ = ["BatchJob", "job_chunks", "FORMATS"]
 
-#: Output formats.
-FORMATS = ("parquet", "csv")
+#: Output formats (``netcdf``: Parquet tables and results.nc).
+FORMATS = ("parquet", "csv", "netcdf")
 
 
 @dataclass(frozen=True, eq=False)
@@ -63,6 +63,8 @@ class BatchJob:
     parallel_in_time : bool, default=False
         Assimilation by the parallel-in-time algorithm (exact mode only:
         ``max_transient=None``).
+    unit : str, optional
+        Unit of the readings (results.nc).
     time_format : str, optional
         How the log writes its times (:mod:`invert.io.times`); None: numbers or ISO 8601.
     layout_digest, query_digest : str, optional
@@ -91,6 +93,7 @@ class BatchJob:
     max_transient: int | None = None
     parallel_in_time: bool = False
     time_format: str | None = None
+    unit: str | None = None
     layout_digest: str | None = None
     query_digest: str | None = None
 
@@ -98,8 +101,8 @@ class BatchJob:
         object.__setattr__(self, "level", check_level(self.level, where="batch"))
         object.__setattr__(self, "out", Path(self.out))
         if self.fmt not in FORMATS:
-            raise ValueError(f"The 'format' parameter of batch must be one of ('csv', "
-                             f"'parquet'). Got {self.fmt!r} instead.")
+            raise ValueError(f"The 'format' parameter of batch must be one of {FORMATS}. "
+                             f"Got {self.fmt!r} instead.")
         if self.noise_sd is not None and self.lam is None:
             raise ValueError("--noise-sd goes with --lam (both fixed, e.g. from a fit summary)")
         if self.lam is not None and self.sigma is None and self.noise_sd is None:
@@ -109,6 +112,11 @@ class BatchJob:
         if self.parallel_in_time and self.max_transient is not None:
             raise ValueError("The parallel-in-time smoother is exact: it needs "
                              f"max_transient=None. Got {self.max_transient!r} instead.")
+
+    @property
+    def table_fmt(self):
+        """Format of the frames and query tables: ``csv`` or ``parquet``."""
+        return "csv" if self.fmt == "csv" else "parquet"
 
     def options(self):
         """Return the settings a resumed run must share (JSON-serialisable)."""

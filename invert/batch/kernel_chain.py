@@ -185,7 +185,7 @@ def _backward(job, source, engine, work, kmodel):
         part, info = work.load(f"kpart-{i:06d}.npz", KERNEL_CLASSES)
         back, ftab, qtab = engine.submit(backward_task, kmodel, part, back, info, Hq,
                                          job.query_labels, z, kind).result()
-        work.write_parts(i, job.fmt, ftab, qtab)
+        work.write_parts(i, job.table_fmt, ftab, qtab)
         work.dump(back, f"bcarry-{i:06d}.npz", KERNEL_CLASSES)
         count_statuses(work.manifest, info["status"], info["reason"])
         done["backward"] = n_chunks - i

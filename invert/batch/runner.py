@@ -48,6 +48,7 @@ from .calibration import pooled_evidence_fit
 from .checkpoint import WorkFolder, merge_outputs
 from .engines import ENGINES, make_engine
 from .job import BatchJob, job_chunks
+from .netcdf import write_results_nc
 from .static import StaticInverter
 from .statuses import frame_statuses
 
@@ -104,7 +105,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
               ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
-              table=None, time_from=None, time_to=None, on_chunk=None, say=print):
+              table=None, time_from=None, time_to=None, unit=None, on_chunk=None,
+              say=print):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -154,6 +156,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     time_format : str, optional
         How the log writes its times when not numbers or ISO 8601: ``epoch-s``/``-ms``/
         ``-us``/``-ns`` or a strptime pattern (:mod:`invert.io.times`).
+    unit : str, optional
+        Unit of the readings (written into results.nc).
     table, time_from, time_to : str, optional
         The table of a database log, and its time window (``time >= time_from``,
         ``time < time_to``).
@@ -183,7 +187,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           calibration_frames=calibration_frames, assimilate=assimilate,
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time,
-                          time_format=time_format)
+                          time_format=time_format, unit=unit)
     source = open_log(log, job.sensors, chunk_rows=chunk_rows, time_format=job.time_format,
                       table=table, time_from=time_from, time_to=time_to)
     # the folder is locked before the engine starts: a refused run starts no cluster
@@ -243,10 +247,14 @@ def _run_locked(job, source, engine, lock, on_chunk):
             limits.restore_original_limits()
     stage = staging_folder(out)
     try:
-        merge_outputs(work, work.manifest["n_chunks"], stage, job.fmt,
+        merge_outputs(work, work.manifest["n_chunks"], stage, job.table_fmt,
                       source.time_kind or "number")
         summary = _summary(job, source, engine, work, hyper, extra,
                            _time.perf_counter() - t_start, lock.note)
+        if job.fmt == "netcdf":
+            write_results_nc(stage, labels=job.query_labels, points=job.query_points,
+                             point_columns=job.domain.point_columns, summary=summary,
+                             unit=job.unit)
         write_json(summary, stage / "summary.json")
         publish(stage, out, lock)
     except BaseException:

@@ -359,7 +359,7 @@ def static_chunks(job, source, engine, work, hyper):
         nonlocal n_factorised
         i, fut, status, reason, last, n = pending.popleft()
         ftab, qtab, n_new = fut.result()
-        work.write_parts(i, job.fmt, ftab, qtab)
+        work.write_parts(i, job.table_fmt, ftab, qtab)
         count_statuses(man, status, reason)
         man["done"]["static"] = i + 1
         man["last_time"] = last

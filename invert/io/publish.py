@@ -43,7 +43,7 @@ __all__ = ["LOCK_NAME", "OWN_NAMES", "FIT_NAMES", "OutputLock", "staging_folder"
 LOCK_NAME = ".rim-invert.lock"
 #: Names batch writes into its output folder (anything else there is refused).
 OWN_NAMES = frozenset({"frames.csv", "frames.parquet", "query.csv", "query.parquet",
-                       "summary.json", ".batch-work", LOCK_NAME})
+                       "results.nc", "report.html", "summary.json", ".batch-work", LOCK_NAME})
 #: Names fit, demo and advise write into their output folder (figures are ``*.png``).
 FIT_NAMES = frozenset({"summary.json", "boundary.csv", "query.csv", "field.csv", "report.html",
                        "sensors.csv", "posterior.nc", "candidates.csv", "repair.csv",
