@@ -25,6 +25,8 @@ import threading
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
+
 from ..errors import InputError
 from ..io.writers import merge_parts, write_json, write_table
 from ..report.files import to_jsonable
@@ -135,6 +137,32 @@ class WorkFolder:
             elif i == len(self._digests):
                 self._digests.append(digest)
 
+    def note_missing(self, i, chunk, blocks=16):
+        """Record chunk ``i``'s missing readings per sensor in ``blocks`` blocks of frames.
+
+        Once per chunk (the first time it is read), for the report's missing-readings map.
+        """
+        with self._dlock:
+            kept = self.manifest.setdefault("missing", [])
+            if i != len(kept):
+                return
+            n = len(chunk)
+            k = max(1, min(blocks, n))
+            edges = np.linspace(0, n, k + 1).astype(int)
+            miss = np.isnan(chunk.Y)
+            counts = [miss[a:b].sum(axis=0).tolist() for a, b in zip(edges[:-1], edges[1:],
+                                                                      strict=True)]
+            kept.append({"frames": np.diff(edges).tolist(), "missing": counts})
+
+    def missing_map(self):
+        """Return ``(fraction, n_frames)``: missing fraction per sensor and block of frames."""
+        kept = self.manifest.get("missing", [])
+        frames = [f for c in kept for f in c["frames"]]
+        if not frames:
+            return np.zeros((0, 0)), 0
+        counts = np.array([m for c in kept for m in c["missing"]], float)  # blocks x sensors
+        return (counts / np.maximum(np.array(frames, float), 1)[:, None]).T, int(sum(frames))
+
     def check_length(self, n, source):
         """Refuse a log that ends before the chunks recorded (``n`` chunks read in full)."""
         with self._dlock:
@@ -206,6 +234,7 @@ class CheckedLog:
         n = 0
         for i, chunk in enumerate(self._source):
             self._work.check_chunk(i, chunk, self._source.source)
+            self._work.note_missing(i, chunk)
             n = i + 1
             yield chunk
         self._work.check_length(n, self._source.source)

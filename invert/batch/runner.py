@@ -43,6 +43,7 @@ from ..io.logs import open_log
 from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
 from ..io.readings import check_inside, load_layout, load_points
 from ..io.writers import write_json
+from ..report.batch_report import write_batch_report
 from ..report.files import CAUTIONS, to_jsonable
 from .calibration import pooled_evidence_fit
 from .checkpoint import WorkFolder, merge_outputs
@@ -255,6 +256,9 @@ def _run_locked(job, source, engine, lock, on_chunk):
             write_results_nc(stage, labels=job.query_labels, points=job.query_points,
                              point_columns=job.domain.point_columns, summary=summary,
                              unit=job.unit)
+        frac, n_frames = work.missing_map()
+        write_batch_report(stage, summary, table_fmt=job.table_fmt, labels=job.query_labels,
+                           missing=(frac, list(job.sensors), n_frames), unit=job.unit)
         write_json(summary, stage / "summary.json")
         publish(stage, out, lock)
     except BaseException:

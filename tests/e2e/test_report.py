@@ -5,13 +5,11 @@ errors (skipped when Chromium is not installed)."""
 import base64
 import html
 import re
-import shutil
-import subprocess
-import tempfile
 from pathlib import Path
 
 import numpy as np
 import pytest
+from browser import chromium_path, render_in_chromium
 
 from invert import LinearProblem, Readings
 from invert.cli import run_fit
@@ -71,46 +69,19 @@ def test_every_figure_embedded_and_every_caution_present(demo_report):
     assert "<script" not in doc and "http://" not in doc and "https://" not in doc
 
 
-def _chromium():
-    return shutil.which("chromium") or shutil.which("chromium-browser")
-
-
-_CHECK_IMAGES = ("<script>window.addEventListener('load',()=>{let ok=0;for(const i of "
-                 "document.images){if(i.complete&&i.naturalWidth>0){ok++}else{console.error("
-                 "'image failed: '+i.alt)}}document.body.setAttribute('data-loaded',ok)});"
-                 "</script></body>")
-
-
-def _render(page: Path):
-    """Run headless Chromium on a copy of ``page`` with an image-load probe appended; return
-    (console lines, dumped DOM)."""
-    with tempfile.TemporaryDirectory() as profile, tempfile.TemporaryDirectory() as work:
-        probe = Path(work) / page.name
-        probe.write_text(page.read_text(encoding="utf-8").replace("</body>", _CHECK_IMAGES),
-                         encoding="utf-8")
-        cmd = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
-               "--no-first-run", "--disable-background-networking",
-               "--disable-component-update", "--disable-sync", f"--user-data-dir={profile}",
-               "--enable-logging=stderr", "--v=0", "--virtual-time-budget=5000", "--dump-dom",
-               probe.as_uri()]
-        run = subprocess.run(cmd, capture_output=True, text=True, timeout=180)
-    console = [ln for ln in run.stderr.splitlines() if ":CONSOLE" in ln]
-    return console, run.stdout
-
-
 @pytest.mark.slow
 def test_report_renders_in_chromium_without_console_errors(demo_report, tmp_path):
-    if not _chromium():
+    if not chromium_path():
         pytest.skip("chromium is not installed")
     # Negative control: the probe must see a console error and a broken image.
     bad = tmp_path / "bad.html"
     bad.write_text("<html><body><script>console.error('deliberate')</script>"
                    "<img alt='broken' src='data:image/png;base64,AAAA'></body></html>")
-    console, dom = _render(bad)
+    console, dom = render_in_chromium(bad)
     assert any("deliberate" in ln for ln in console)
     assert any("image failed: broken" in ln for ln in console)
     # The report: no console message at all, and every image decoded.
-    console, dom = _render(demo_report / "report.html")
+    console, dom = render_in_chromium(demo_report / "report.html")
     assert console == []
     n = len(list(demo_report.glob("*.png")))
     assert f'data-loaded="{n}"' in dom
