@@ -43,6 +43,7 @@ from ..io.logs import open_log
 from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
 from ..io.readings import check_inside, load_layout, load_points
 from ..io.writers import write_json
+from ..progress import progress
 from ..report.batch_report import write_batch_report
 from ..report.files import CAUTIONS, to_jsonable
 from .calibration import pooled_evidence_fit
@@ -50,6 +51,7 @@ from .checkpoint import WorkFolder, merge_outputs
 from .engines import ENGINES, make_engine
 from .job import BatchJob, job_chunks
 from .netcdf import write_results_nc
+from .result import BatchSummary
 from .static import StaticInverter
 from .statuses import frame_statuses
 
@@ -301,7 +303,7 @@ def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
         "warnings": warnings,
         "cautions": list(CAUTIONS),
     }
-    return to_jsonable(summary)
+    return BatchSummary(to_jsonable(summary))
 
 
 def _keep_log_warnings(manifest, source):
@@ -314,12 +316,7 @@ def _keep_log_warnings(manifest, source):
 
 
 def _progress(total=None):
-    import sys
-
-    from tqdm.auto import tqdm
-
-    return tqdm(total=total, unit="frame", unit_scale=True, disable=not sys.stderr.isatty(),
-                desc="batch", smoothing=0.1)
+    return progress(total, desc="batch", unit="frame")
 
 
 def _one_blas_thread():
