@@ -149,6 +149,9 @@ def _add_batch_parser(sub):
                                "long: time,sensor,value[,flag]), or a database URL "
                                "sqlite:///FILE.db or postgresql://user@host:port/db with --table")
     p.add_argument("--table", default=None, help="table of a database LOG (wide or long)")
+    p.add_argument("--out-table", default=None, metavar="NAME",
+                   help="database LOG: also write the results into tables NAME_frames and "
+                        "NAME_query of the same database (replaced if they exist)")
     p.add_argument("--from", dest="time_from", default=None, metavar="TIME",
                    help="database LOG: only frames with time >= TIME")
     p.add_argument("--to", dest="time_to", default=None, metavar="TIME",
@@ -372,6 +375,7 @@ def _cmd_batch(args):
                         time_scale=args.time_scale, chunk_rows=args.chunk_rows,
                         max_transient=args.max_transient or None,
                         time_format=args.time_format, table=args.table,
+                        out_table=args.out_table,
                         time_from=args.time_from, time_to=args.time_to, unit=args.unit)
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)

@@ -39,9 +39,11 @@ from pathlib import Path
 
 import numpy as np
 
+from ..errors import InputError
 from ..io.logs import open_log
 from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
 from ..io.readings import check_inside, load_layout, load_points
+from ..io.sql import is_database_url
 from ..io.writers import write_json
 from ..progress import progress
 from ..report.batch_report import write_batch_report
@@ -108,8 +110,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
               ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
-              table=None, time_from=None, time_to=None, unit=None, on_chunk=None,
-              say=print):
+              table=None, time_from=None, time_to=None, unit=None, out_table=None,
+              on_chunk=None, say=print):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -161,6 +163,9 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         ``-us``/``-ns`` or a strptime pattern (:mod:`invert.io.times`).
     unit : str, optional
         Unit of the readings (written into results.nc).
+    out_table : str, optional
+        Also write the frames and query tables into tables ``<out_table>_frames`` and
+        ``<out_table>_query`` of the log's database (replaced if they exist).
     table, time_from, time_to : str, optional
         The table of a database log, and its time window (``time >= time_from``,
         ``time < time_to``).
@@ -191,12 +196,24 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time,
                           time_format=time_format, unit=unit)
+    if out_table is not None and not is_database_url(log):
+        raise InputError(str(log), "--out-table writes into the log's database: give a "
+                                   "database log (sqlite:///FILE or postgresql://...)")
     source = open_log(log, job.sensors, chunk_rows=chunk_rows, time_format=job.time_format,
                       table=table, time_from=time_from, time_to=time_to)
     # the folder is locked before the engine starts: a refused run starts no cluster
     with OutputLock(job.out) as lock, \
             make_engine(engine, scheduler=scheduler, n_workers=n_workers) as eng:
-        return _run_locked(job, source, eng, lock, on_chunk)
+        summary = _run_locked(job, source, eng, lock, on_chunk)
+    if out_table is not None:
+        _write_back(source, out_table, job)
+    return summary
+
+
+def _write_back(source, name, job):
+    db = source.table
+    for part in ("frames", "query"):
+        db.write_back(f"{name}_{part}", job.out / f"{part}.{job.table_fmt}", job.table_fmt)
 
 
 def run_job(job, source, engine, *, on_chunk=None):

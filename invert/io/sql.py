@@ -167,6 +167,34 @@ class SqlTable:
         finally:
             cur.close()
 
+    def write_back(self, name, path, fmt):
+        """Write the table file ``path`` (``fmt`` csv or parquet) into table ``name``.
+
+        The table is replaced if it exists (a later run's results replace an earlier run's);
+        rows go in record batches, so memory stays bounded.
+        """
+        import pyarrow as pa
+
+        if fmt == "parquet":
+            import pyarrow.parquet as pq
+
+            pf = pq.ParquetFile(path)
+            reader = pa.RecordBatchReader.from_batches(pf.schema_arrow,
+                                                       pf.iter_batches(batch_size=1 << 16))
+        else:
+            import pyarrow.csv as pcsv
+
+            reader = pcsv.open_csv(path)
+        cur = self._conn.cursor()
+        try:
+            cur.adbc_ingest(name, reader, mode="replace")
+            self._conn.commit()
+        except Exception as exc:  # noqa: BLE001 - driver errors: one line, no password
+            raise InputError(self.source, f"cannot write table {name!r} "
+                             f"({_first_line(exc, self.url)})") from None
+        finally:
+            cur.close()
+
     def signature(self):
         """Return the resume signature (see the module docstring)."""
         where, params = self._where()

@@ -80,6 +80,14 @@ def test_sqlite_wide_and_long_tables_equal_the_csv_log(data, tmp_path):
         conn.commit()
     for table in ("wide_log", "long_log"):
         _same(_run(f"sqlite:///{db}", tmp, tmp_path / table, table=table), ref)
+    # results written back into the database equal the files of the same run
+    _run(f"sqlite:///{db}", tmp, tmp_path / "wb", table="wide_log", out_table="rim")
+    with sq.connect(str(db)) as conn, conn.cursor() as cur:
+        cur.execute("SELECT * FROM rim_query")
+        back = cur.fetch_arrow_table().to_pandas()
+    q = pd.read_parquet(tmp_path / "wb" / "query.parquet")
+    np.testing.assert_array_equal(back["mean"].to_numpy(), q["mean"].to_numpy())
+    assert len(back) == len(q)
     # a time window: the frames inside it, numbered from 0
     fr, _ = _run(f"sqlite:///{db}", tmp, tmp_path / "win", table="wide_log",
                  time_from="2024-03-01T00:01:00", time_to="2024-03-01T00:02:00")
@@ -152,3 +160,7 @@ def test_postgresql_tables_equal_the_csv_log(data, tmp_path, postgres):
         conn.commit()
     for table in ("wide_log", "long_log"):
         _same(_run(postgres, tmp, tmp_path / table, table=table), ref)
+    _run(postgres, tmp, tmp_path / "wb", table="long_log", out_table="rim")
+    with pg.connect(postgres) as conn, conn.cursor() as cur:
+        cur.execute("SELECT COUNT(*) FROM rim_frames")
+        assert cur.fetchone()[0] == N_FRAMES
