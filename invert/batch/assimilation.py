@@ -21,6 +21,8 @@ References
 
 from __future__ import annotations
 
+from functools import partial
+
 import numpy as np
 
 from ..io.sources import seconds
@@ -39,6 +41,7 @@ from ..stages.assimilate import (
     smooth_segment,
     smoother_summary,
 )
+from .chain import ChainSteps, run_chain
 from .checkpoint import ChunkDone
 from .kernel_chain import RECURSION, chunk_info, chunk_tables_from, kernel_chunks
 from .statuses import count_statuses, frame_statuses
@@ -82,11 +85,6 @@ def forward_task(model, state, chunk, last_time, steady_tol, max_transient):
                                 steady_tol=steady_tol,
                                 max_transient=max_transient)
     return state, seg, info, last
-
-
-def backward_task(seg, bstate, steady_tol, max_transient):
-    """Smooth one filtered segment from the following chunk's smoother state (a task)."""
-    return smooth_segment(seg, bstate, steady_tol=steady_tol, max_transient=max_transient)
 
 
 def chunk_tables(info, seg, ms, sid, Ps_table, Hq, labels, z, kind):
@@ -160,9 +158,8 @@ def assimilation_chunks(job, source, engine, work, hyper):
         loglik = yield from kernel_chunks(job, source, engine, work, model)
         extra = {"max_transient": None, "recursion": RECURSION}
     else:
-        yield from _forward_chunks(job, source, engine, work, model)
-        yield from _backward_chunks(job, source, engine, work)
-        loglik = work.manifest.get("loglik")
+        loglik = yield from run_chain(job, source, engine, work, shortcut_steps(job, model),
+                                      model.n_coef)
         extra = {"max_transient": job.max_transient,
                  "recursion": (f"steady-state shortcut: exact for up to {job.max_transient} "
                                f"frames after a change of drop-out pattern or time step, then "
@@ -172,56 +169,20 @@ def assimilation_chunks(job, source, engine, work, hyper):
             "loglik": loglik, "steady_tol": job.steady_tol, **extra, "dynamics": _DYNAMICS}
 
 
-def _forward_chunks(job, source, engine, work, model):
-    done = work.manifest["done"]
-    if done.get("forward_complete"):
-        return
-    n_fwd = done.get("forward", 0)
-    state = (work.load(f"fstate-{n_fwd - 1:06d}.npz", STATE_CLASSES) if n_fwd
-             else FilterState.initial(model))
-    last = work.manifest.get("last_time")
-    last = -np.inf if last is None else last
-    for i, chunk in enumerate(source):
-        if i < n_fwd:
-            continue
-        state, seg, info, last = engine.submit(forward_task, model, state, chunk, last,
-                                               job.steady_tol, job.max_transient).result()
-        work.dump((seg, info), f"seg-{i:06d}.npz", STATE_CLASSES)
-        work.dump(state, f"fstate-{i:06d}.npz", STATE_CLASSES)
-        done["forward"] = i + 1
-        work.manifest["last_time"] = last
-        work.save()
-        work.remove(f"fstate-{i - 1:06d}.npz")
-        yield ChunkDone("forward", i, len(chunk))
-    done["forward_complete"] = True
-    work.manifest["n_chunks"] = done.get("forward", 0)
-    work.manifest["loglik"] = state.loglik
-    work.save()
+def shortcut_steps(job, model):
+    """Return the chain steps of the NumPy recursion with the steady-state shortcut."""
+    kw = {"steady_tol": job.steady_tol, "max_transient": job.max_transient}
+    return ChainSteps(partial(forward_task, model, **kw), partial(shortcut_backward, **kw),
+                      FilterState.initial(model), SmootherState(),
+                      lambda state: state.loglik, STATE_CLASSES, "s")
 
 
-def _backward_chunks(job, source, engine, work):
-    done = work.manifest["done"]
-    n_chunks = work.manifest["n_chunks"]
-    kind = source.time_kind or work.manifest.get("time_kind") or "number"
-    work.manifest["time_kind"] = kind
-    Hq = job.domain.design(job.query_points)
-    z = interval_z(job.level)
-    n_back = done.get("backward", 0)
-    bstate = (work.load(f"bstate-{n_chunks - n_back:06d}.npz", STATE_CLASSES) if n_back
-              else SmootherState())
-    for i in range(n_chunks - 1 - n_back, -1, -1):
-        seg, info = work.load(f"seg-{i:06d}.npz", STATE_CLASSES)
-        bstate, ms, sid, tab = engine.submit(backward_task, seg, bstate, job.steady_tol,
-                                             job.max_transient).result()
-        ftab, qtab = engine.submit(chunk_tables, info, seg, ms, sid, tab, Hq,
-                                   job.query_labels, z, kind).result()
-        work.write_parts(i, job.table_fmt, ftab, qtab)
-        work.dump(bstate, f"bstate-{i:06d}.npz", STATE_CLASSES)
-        count_statuses(work.manifest, info["status"], info["reason"])
-        done["backward"] = n_chunks - i
-        work.save()
-        work.remove(f"bstate-{i + 1:06d}.npz", f"seg-{i:06d}.npz")
-        yield ChunkDone("backward", i, len(info["t"]))
+def shortcut_backward(seg, bstate, info, Hq, labels, z, kind, *, steady_tol, max_transient):
+    """Smooth one filtered segment and build its tables (an engine task)."""
+    bstate, ms, sid, tab = smooth_segment(seg, bstate, steady_tol=steady_tol,
+                                          max_transient=max_transient)
+    ftab, qtab = chunk_tables(info, seg, ms, sid, tab, Hq[1:], labels, z, kind)
+    return bstate, ftab, qtab
 
 
 # --- parallel in time ----------------------------------------------------------------------------

@@ -23,10 +23,11 @@ References
 
 from __future__ import annotations
 
+from functools import partial
+
 import numpy as np
 
 from ..io.sources import seconds
-from ..problem import interval_z
 from ..stages.assimilate.kernel import (
     BackwardCarry,
     Checkpoints,
@@ -35,11 +36,11 @@ from ..stages.assimilate.kernel import (
     filter_chunk,
     smooth_chunk,
 )
-from .checkpoint import ChunkDone
-from .statuses import count_statuses, frame_statuses
+from .chain import ChainSteps, run_chain
+from .statuses import frame_statuses
 from .tables import empty_query, frames_table, query_table
 
-__all__ = ["KERNEL_CLASSES", "RECURSION", "kernel_chunks", "chunk_tables_from"]
+__all__ = ["KERNEL_CLASSES", "RECURSION", "kernel_chunks", "kernel_steps", "chunk_tables_from"]
 
 #: The dataclasses spilled by this mode (the only ones read back, as data).
 KERNEL_CLASSES = (FilterCarry, Checkpoints, BackwardCarry)
@@ -116,6 +117,14 @@ def backward_task(kmodel, part, back, info, Hq, labels, z, kind):
     return back, ftab, qtab
 
 
+def kernel_steps(model):
+    """Return the chain steps of the exact kernel for ``model`` (``CoefficientDynamics``)."""
+    kmodel = KernelModel.from_dynamics(model)
+    return ChainSteps(partial(forward_task, kmodel), partial(backward_task, kmodel),
+                      FilterCarry.initial(kmodel), BackwardCarry.final(kmodel),
+                      lambda carry: carry.loglik, KERNEL_CLASSES, "k")
+
+
 def kernel_chunks(job, source, engine, work, model):
     """Run the exact assimilation chunk after chunk (forward, then backward).
 
@@ -137,58 +146,4 @@ def kernel_chunks(job, source, engine, work, model):
     float
         The log-likelihood of the log (prediction-error decomposition).
     """
-    kmodel = KernelModel.from_dynamics(model)
-    yield from _forward(source, engine, work, kmodel)
-    yield from _backward(job, source, engine, work, kmodel)
-    return work.manifest.get("loglik")
-
-
-def _forward(source, engine, work, kmodel):
-    done = work.manifest["done"]
-    if done.get("forward_complete"):
-        return
-    n_fwd = done.get("forward", 0)
-    carry = (work.load(f"fcarry-{n_fwd - 1:06d}.npz", KERNEL_CLASSES) if n_fwd
-             else FilterCarry.initial(kmodel))
-    last = work.manifest.get("last_time")
-    last = -np.inf if last is None else last
-    for i, chunk in enumerate(source):
-        if i < n_fwd:
-            continue
-        carry, part, info, last = engine.submit(forward_task, kmodel, carry, chunk,
-                                                last).result()
-        work.dump((part, info), f"kpart-{i:06d}.npz", KERNEL_CLASSES)
-        work.dump(carry, f"fcarry-{i:06d}.npz", KERNEL_CLASSES)
-        done["forward"] = i + 1
-        work.manifest["last_time"] = last
-        work.save()
-        work.remove(f"fcarry-{i - 1:06d}.npz")
-        yield ChunkDone("forward", i, len(chunk))
-    done["forward_complete"] = True
-    work.manifest["n_chunks"] = done.get("forward", 0)
-    work.manifest["loglik"] = float(carry.loglik)
-    work.save()
-
-
-def _backward(job, source, engine, work, kmodel):
-    done = work.manifest["done"]
-    n_chunks = work.manifest["n_chunks"]
-    kind = source.time_kind or work.manifest.get("time_kind") or "number"
-    work.manifest["time_kind"] = kind
-    p = kmodel.n_coef
-    Hq = np.vstack([np.eye(1, p), job.domain.design(job.query_points).reshape(-1, p)])
-    z = interval_z(job.level)
-    n_back = done.get("backward", 0)
-    back = (work.load(f"bcarry-{n_chunks - n_back:06d}.npz", KERNEL_CLASSES) if n_back
-            else BackwardCarry.final(kmodel))
-    for i in range(n_chunks - 1 - n_back, -1, -1):
-        part, info = work.load(f"kpart-{i:06d}.npz", KERNEL_CLASSES)
-        back, ftab, qtab = engine.submit(backward_task, kmodel, part, back, info, Hq,
-                                         job.query_labels, z, kind).result()
-        work.write_parts(i, job.table_fmt, ftab, qtab)
-        work.dump(back, f"bcarry-{i:06d}.npz", KERNEL_CLASSES)
-        count_statuses(work.manifest, info["status"], info["reason"])
-        done["backward"] = n_chunks - i
-        work.save()
-        work.remove(f"bcarry-{i + 1:06d}.npz", f"kpart-{i:06d}.npz")
-        yield ChunkDone("backward", i, len(info["t"]))
+    return (yield from run_chain(job, source, engine, work, kernel_steps(model), model.n_coef))

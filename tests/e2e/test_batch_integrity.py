@@ -246,8 +246,8 @@ def test_working_folder_holds_no_pickle_and_refuses_one(tmp_path):
     out = tmp_path / "o"
     work = _stopped(out, **kw)
     files = sorted(p.name for p in work.dir.iterdir())
-    # the exact kernel's spilled parts and carries (the shortcut mode's are seg-/fstate-)
-    states = [f for f in files if f.startswith(("kpart-", "fcarry-", "seg-", "fstate-"))]
+    # the exact kernel's spilled parts and carries (the shortcut mode's: spart-/sfcarry-)
+    states = [f for f in files if f.startswith(("kpart-", "kfcarry-", "spart-", "sfcarry-"))]
     assert states and all(f.endswith(".npz") for f in states)
     for f in states:  # numpy reads every state without pickle
         with np.load(work.dir / f, allow_pickle=False) as z:
@@ -260,7 +260,7 @@ def test_working_folder_holds_no_pickle_and_refuses_one(tmp_path):
     work = _stopped(out2, **kw)
     marker = tmp_path / "ran"
     crafted = np.array([_Marker(str(marker))], dtype=object)
-    name = sorted(p for p in work.dir.iterdir() if p.name.startswith(("fcarry-", "fstate-")))[-1]
+    name = sorted(p for p in work.dir.iterdir() if p.name.startswith(("kfcarry-", "sfcarry-")))[-1]
     with open(name, "wb") as fh:
         np.savez(fh, __tree__=crafted)
     with pytest.raises(ValueError, match="allow_pickle"):
@@ -352,7 +352,7 @@ def test_failure_while_writing_the_final_set_keeps_the_old_set(tmp_path, monkeyp
     out = tmp_path / "o"
     run_batch(LOG, LAYOUT, out=out, chunk_rows=100, fmt="csv", **FIXED)
     old = _snapshot(out)
-    assert set(old) == {"frames.csv", "query.csv", "summary.json"}
+    assert set(old) == {"frames.csv", "query.csv", "summary.json", "report.html"}
     import invert.batch.checkpoint as checkpoint
 
     real = checkpoint.merge_parts
@@ -405,7 +405,7 @@ def test_kill_before_the_swap_leaves_the_old_set_and_the_rerun_cleans_up(tmp_pat
     assert not any(p.name.startswith(".o.batch-staging-") for p in tmp_path.iterdir())
     assert other.exists()
     assert sorted(p.name for p in out.iterdir()) == ["frames.parquet", "query.parquet",
-                                                      "summary.json"]
+                                                      "report.html", "summary.json"]
 
 
 def test_folder_with_foreign_files_is_refused(tmp_path, capsys):
