@@ -206,7 +206,6 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
     """
     from . import workflow
     from .io.readings import check_inside, load_points, load_readings
-    from .problem import LinearProblem
     from .report.files import staged_output, write_fit_outputs
 
     level = check_level(level)
@@ -217,7 +216,7 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
         raise ValueError(f"--center needs {dim} numbers for a {domain}, got {len(center)}")
     readings = load_readings(readings_path, dim=dim, center=center)
     domain = workflow.make_domain(radius, center, kind=domain, s=smoothness, n_modes=n_modes)
-    problem = LinearProblem.from_readings(readings, domain)
+    problem = workflow.problem_from_readings(readings, domain)
     q = None
     if query is not None:
         pts, labels, rows = load_points(query, dim=dim)
@@ -295,7 +294,6 @@ def _cmd_advise(args):
     from . import workflow
     from .diagnostics.advise import advise
     from .io.readings import check_inside, load_points, load_readings
-    from .problem import LinearProblem
     from .report.files import staged_output, to_jsonable
 
     def points(path):
@@ -309,7 +307,7 @@ def _cmd_advise(args):
         raise ValueError(f"--count must be >= 1, got {args.count}")
     readings = load_readings(args.readings, center=args.center)
     domain = workflow.make_domain(args.radius, args.center, s=args.smoothness)
-    problem = LinearProblem.from_readings(readings, domain)
+    problem = workflow.problem_from_readings(readings, domain)
     cand, query = points(args.candidates), points(args.query)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
