@@ -41,6 +41,54 @@ def _positive(name):
     return conv
 
 
+def _int_at_least(name, low):
+    """Argparse type: an integer >= ``low``, the message naming the option."""
+    def conv(text):
+        try:
+            v = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{name} must be an integer, got {text!r}") from None
+        if v < low:
+            raise argparse.ArgumentTypeError(f"{name} must be >= {low}, got {text!r}")
+        return v
+
+    return conv
+
+
+def _finite(name):
+    """Argparse type: a finite number (no nan or inf), the message naming the option."""
+    def conv(text):
+        try:
+            v = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{name} must be a number, got {text!r}") from None
+        if not np.isfinite(v):
+            raise argparse.ArgumentTypeError(f"{name} must be a finite number, got {text!r}")
+        return v
+
+    return conv
+
+
+#: Seeds are what numpy.random.default_rng takes: non-negative integers, for every method.
+_SEED = _int_at_least("--seed", 0)
+
+
+def _add_dialect_options(p):
+    p.add_argument("--sep", default=None, metavar="SEP",
+                   help="delimiter of the CSV input: ',', ';' or 'tab' (default: detected from "
+                        "the first lines)")
+    p.add_argument("--decimal", default=None, metavar="MARK",
+                   help="decimal mark of numbers in the CSV input: '.' or ',' (default: "
+                        "detected; a comma with semicolon- or tab-separated files)")
+
+
+def _dialect(args):
+    """``{"sep": ..., "decimal": ...}`` from --sep/--decimal (None: detect)."""
+    from .io.dialect import parse_decimal, parse_sep
+
+    return {"sep": parse_sep(args.sep), "decimal": parse_decimal(args.decimal)}
+
+
 def _add_fit_options(p):
     p.add_argument("--method", default="tikhonov", choices=_methods(),
                    help="inference stage (default: tikhonov)")
@@ -50,30 +98,34 @@ def _add_fit_options(p):
     p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] to report")
     p.add_argument("--level", type=float, default=0.9,
                    help="probability of the central intervals (default: 0.9)")
-    p.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
+    p.add_argument("--seed", type=_SEED, default=0,
+                   help="random seed, an integer >= 0 (default: 0)")
     p.add_argument("--smoothness", type=float, default=2.0,
                    help="smoothness order s of the prior (default: 2)")
-    p.add_argument("--n-modes", type=int, default=None,
-                   help="truncation degree (default: chosen from the smoothness)")
+    p.add_argument("--n-modes", type=_int_at_least("--n-modes", 1), default=None,
+                   help="truncation degree, >= 1 (default: chosen from the smoothness)")
     p.add_argument("--lam", type=_positive("--lam"), default=None,
                    help="fix the regularisation parameter (with --noise-sd when readings "
                         "carry no sigma), e.g. from an earlier summary.json")
     p.add_argument("--noise-sd", type=_positive("--noise-sd"), default=None,
                    help="fix the common noise sd instead of estimating it (with --lam)")
-    p.add_argument("--grid", type=int, default=81, help="interior grid size (default: 81)")
+    p.add_argument("--grid", type=_int_at_least("--grid", 3), default=81,
+                   help="interior grid: points per side of the square around the region, "
+                        ">= 3 (default: 81)")
     p.add_argument("--fix-smoothness", action="store_true",
                    help="gaussian/mcmc: hold s at --smoothness instead of estimating it")
     p.add_argument("--faulty", action="store_true",
                    help="mcmc: model each reading as good or faulty; report fault probabilities")
     p.add_argument("--angle-sd", type=_positive("--angle-sd"), default=None, metavar="DEG",
                    help="mcmc: sd (degrees) of each sensor's angle error, integrated over")
-    p.add_argument("--max-steps", type=int, default=20000,
+    p.add_argument("--max-steps", type=_int_at_least("--max-steps", 1), default=20000,
                    help="mcmc: step cap per ensemble (default: 20000)")
     _add_report_options(p)
+    _add_dialect_options(p)
 
 
 def _add_report_options(p, threshold=None, unit="", length_unit=""):
-    p.add_argument("--threshold", type=float, default=threshold,
+    p.add_argument("--threshold", type=_finite("--threshold"), default=threshold,
                    help="report the probability that the value exceeds this, as a map and "
                         f"anywhere in the region (default: {threshold})")
     p.add_argument("--unit", default=unit, help=f"unit of the values (default: {unit!r})")
@@ -114,15 +166,21 @@ def build_parser():
     p = sub.add_parser("demo", help="run the main job on the bundled synthetic demo data")
     p.add_argument("--out", type=Path, default=Path("demo-output"))
     p.add_argument("--method", default="tikhonov", choices=_methods())
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--seed", type=_SEED, default=0,
+                   help="random seed, an integer >= 0 (default: 0)")
     _add_report_options(p, threshold=95.0, unit="°C", length_unit="m")
 
     p = sub.add_parser("advise", help="rank new sensor positions and failed sensors to repair")
     p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=float, nargs=2, metavar=("X", "Y"), default=None)
-    p.add_argument("--count", type=int, default=5, help="new sensors to choose (default: 5)")
+    p.add_argument("--center", type=float, nargs="+", metavar="C", default=None,
+                   help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
+    p.add_argument("--domain", default="disk", choices=_domains(),
+                   help="region of the readings (default: disk); advice needs rim arcs, so a "
+                        "ball is refused with one line")
+    p.add_argument("--count", type=_int_at_least("--count", 1), default=5,
+                   help="new sensors to choose (default: 5)")
     p.add_argument("--candidates", type=Path,
                    help="POINTS.csv of candidate positions (default: every degree on the rim "
                         "and rings at 1/4, 1/2, 3/4 of the radius)")
@@ -133,7 +191,9 @@ def build_parser():
                         "spacing)")
     p.add_argument("--method", default="tikhonov", choices=_methods())
     p.add_argument("--smoothness", type=float, default=2.0)
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--seed", type=_SEED, default=0,
+                   help="random seed, an integer >= 0 (default: 0)")
+    _add_dialect_options(p)
 
     _add_batch_parser(sub)
     return parser
@@ -161,11 +221,14 @@ def _add_batch_parser(sub):
                    help="estimate lam (and the noise sd) once on the log (default without --lam)")
     p.add_argument("--time-scale", type=_positive("--time-scale"), default=None,
                    help="fix the time scale of the dynamics (default: maximum likelihood)")
-    p.add_argument("--level", type=float, default=0.9)
+    p.add_argument("--level", type=float, default=0.9,
+                   help="probability of the central intervals (default: 0.9)")
     p.add_argument("--smoothness", type=float, default=2.0)
-    p.add_argument("--n-modes", type=int, default=None)
-    p.add_argument("--chunk-rows", type=int, default=65536, help="frames per chunk")
-    p.add_argument("--max-transient", type=int, default=50,
+    p.add_argument("--n-modes", type=_int_at_least("--n-modes", 1), default=None)
+    p.add_argument("--chunk-rows", type=_int_at_least("--chunk-rows", 1), default=65536,
+                   help="frames per chunk, >= 1 (default: 65536)")
+    _add_dialect_options(p)
+    p.add_argument("--max-transient", type=_int_at_least("--max-transient", 0), default=50,
                    help="assimilation: exact Kalman steps after a change of drop-out pattern or "
                         "time step before the steady-state gain is used; 0 = exact throughout "
                         "(default: 50)")
@@ -186,6 +249,9 @@ def _fit_options(args):
         elif args.faulty or args.angle_sd is not None:
             raise ValueError("--faulty and --angle-sd belong to --method mcmc")
         return opts
+    if args.faulty or args.angle_sd is not None:
+        raise ValueError("--faulty and --angle-sd belong to --method mcmc; the tikhonov fit "
+                         "would ignore them")
     if args.lam is not None:
         opts.update(rule="fixed", lam=args.lam, noise_sd=args.noise_sd)
     elif args.noise_sd is not None:
@@ -198,11 +264,12 @@ def _fit_options(args):
 def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query=None,
             level=0.9, seed=0, smoothness=2.0, n_modes=None, grid=81, figures=False,
             stage_options=None, say=print, threshold=None, unit="", length_unit="",
-            domain="disk"):
+            domain="disk", dialect=None):
     """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict.
 
     ``domain`` is a name in :data:`invert.geometry.DOMAINS`; readings, ``center`` and query
-    points have that domain's ``dim`` coordinates (``"ball"``: x, y, z).
+    points have that domain's ``dim`` coordinates (``"ball"``: x, y, z). ``dialect``:
+    ``{"sep": ..., "decimal": ...}`` of the readings file (None values: detected).
     """
     from . import workflow
     from .io.readings import check_inside, load_points, load_readings
@@ -214,7 +281,7 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
     dim = domain_class(domain).dim
     if center is not None and len(center) != dim:
         raise ValueError(f"--center needs {dim} numbers for a {domain}, got {len(center)}")
-    readings = load_readings(readings_path, dim=dim, center=center)
+    readings = load_readings(readings_path, dim=dim, center=center, **(dialect or {}))
     domain = workflow.make_domain(radius, center, kind=domain, s=smoothness, n_modes=n_modes)
     problem = workflow.problem_from_readings(readings, domain)
     q = None
@@ -268,7 +335,8 @@ def _cmd_fit(args):
                       method=args.method, query=args.query, level=args.level, seed=args.seed,
                       smoothness=args.smoothness, n_modes=args.n_modes, grid=args.grid,
                       figures=True, stage_options=_fit_options(args), threshold=args.threshold,
-                      unit=args.unit, length_unit=args.length_unit, domain=args.domain)
+                      unit=args.unit, length_unit=args.length_unit, domain=args.domain,
+                      dialect=_dialect(args))
     print(f"fit ({summary['method']}) written to {args.out}/ (report: {args.out}/report.html)")
 
 
@@ -293,20 +361,28 @@ def _cmd_demo(args):
 def _cmd_advise(args):
     from . import workflow
     from .diagnostics.advise import advise
+    from .geometry import domain_class
+    from .io.publish import check_output_path
     from .io.readings import check_inside, load_points, load_readings
-    from .report.files import staged_output, to_jsonable
 
     def points(path):
         if path is None:
             return None
-        pts, _, rows = load_points(path)
+        pts, _, rows = load_points(path, dim=dim)
         check_inside(domain, pts, rows, Path(path).name)
         return pts
 
-    if args.count < 1:
-        raise ValueError(f"--count must be >= 1, got {args.count}")
-    readings = load_readings(args.readings, center=args.center)
-    domain = workflow.make_domain(args.radius, args.center, s=args.smoothness)
+    check_output_path(args.out, "fit")
+    dim = domain_class(args.domain).dim
+    if args.center is not None and len(args.center) != dim:
+        raise ValueError(f"--center needs {dim} numbers for a {args.domain}, got "
+                         f"{len(args.center)}")
+    readings = load_readings(args.readings, dim=dim, center=args.center, **_dialect(args))
+    domain = workflow.make_domain(args.radius, args.center, kind=args.domain,
+                                  s=args.smoothness)
+    if getattr(domain, "rim_arcs", None) is None:
+        raise ValueError(f"advise needs a region with a rim circle (a disk); the {args.domain} "
+                         f"has none, so no sensor advice can be given")
     problem = workflow.problem_from_readings(readings, domain)
     cand, query = points(args.candidates), points(args.query)
     with warnings.catch_warnings():
@@ -314,17 +390,37 @@ def _cmd_advise(args):
         estimate = workflow.run_stage(problem, args.method, s=args.smoothness, seed=args.seed)
     adv = advise(estimate, problem, count=args.count, candidates=cand, query=query,
                  min_spacing_deg=args.min_spacing)
-    cframe, rframe = adv.to_frames()
+    _write_advice(args, adv, estimate, problem)
+
+
+def _advice_warnings(args, adv, cframe, problem):
+    notes = list(problem.notes)
+    if len(cframe) < args.count:
+        notes.append(f"--count {args.count}: only {len(cframe)} new sensor(s) could be placed "
+                     f"(candidates at least {adv.min_spacing_deg:.3g} deg apart; give "
+                     f"--min-spacing or --candidates for more)")
+    return notes
+
+
+def _write_advice(args, adv, estimate, problem):
     import json
 
+    from .io.writers import write_csv_frame
+    from .report.files import staged_output, to_jsonable
+
+    cframe, rframe = adv.to_frames()
+    notes = _advice_warnings(args, adv, cframe, problem)
     with staged_output(args.out) as stage:
-        cframe.to_csv(stage / "candidates.csv", index=False, float_format="%.10g")
-        rframe.to_csv(stage / "repair.csv", index=False, float_format="%.10g")
+        write_csv_frame(cframe, stage / "candidates.csv")
+        write_csv_frame(rframe, stage / "repair.csv")
         with open(stage / "advice.json", "w") as fh:
             json.dump(to_jsonable({"target": adv.target, "target_before": adv.target_before,
                                    "noise_sd": adv.noise_sd,
                                    "min_spacing_deg": adv.min_spacing_deg,
-                                   "method": estimate.method}), fh, indent=2)
+                                   "method": estimate.method, "count": args.count,
+                                   "n_chosen": len(cframe), "warnings": notes}), fh, indent=2)
+    for w in notes:
+        print(f"warning: {w}")
     print(f"target: {adv.target}, now {adv.target_before:.4g}")
     if len(rframe):
         print(f"repair first: {rframe['sensor'][0]} (cuts it by {rframe['reduction'][0]:.3g})")
@@ -335,26 +431,107 @@ def _cmd_advise(args):
     print(f"written to {args.out}/ (candidates.csv, repair.csv, advice.json)")
 
 
-def _cmd_batch(args):
-    from .batch.runner import run_batch
+#: Seconds to wait for a --scheduler to answer (dask's own default is 30 s).
+SCHEDULER_TIMEOUT = 5.0
+#: Address schemes a dask client can connect to from another process.
+_SCHEMES = ("tcp", "tls", "ws", "wss", "ucx")
+
+
+def check_scheduler(address, engine="dask", timeout=SCHEDULER_TIMEOUT):
+    """Check a ``--scheduler`` address before the run: well formed, secured, reachable.
+
+    Raises
+    ------
+    ValueError
+        One line naming the address: with another engine than dask, a malformed address or
+        unknown scheme, ``tls://``/``wss://`` without certificates in the dask configuration
+        (``distributed.comm.tls.client.cert``), or nothing answering within ``timeout`` s.
+    """
+    if address is None:
+        return
+    if engine != "dask":
+        raise ValueError(f"--scheduler {address!r} belongs to --engine dask")
+    import socket
+
+    import dask
+    from distributed.comm.addressing import parse_address, parse_host_port
+
+    try:
+        scheme, loc = parse_address(address)
+        host, port = parse_host_port(loc)
+    except ValueError as exc:
+        raise ValueError(f"--scheduler {address!r} is not an address like "
+                         f"tcp://HOST:PORT ({exc})") from None
+    if scheme not in _SCHEMES:
+        raise ValueError(f"--scheduler {address!r}: unknown scheme {scheme!r} (one of "
+                         f"{', '.join(_SCHEMES)})")
+    if scheme in ("tls", "wss") and not dask.config.get("distributed.comm.tls.client.cert",
+                                                        None):
+        raise ValueError(f"--scheduler {address!r} needs TLS certificates, and none are set "
+                         f"(dask configuration distributed.comm.tls.client.cert/key, "
+                         f"ca-file)")
+    try:
+        socket.create_connection((host, port), timeout=timeout).close()
+    except OSError as exc:
+        raise ValueError(f"--scheduler {address!r}: no scheduler answers there within "
+                         f"{timeout:g} s ({exc.strerror or exc.__class__.__name__})") from None
+
+
+def _check_batch_args(args):
+    """Refuse batch options that contradict each other, before anything is read or run."""
+    from .io.publish import check_output_path
 
     if args.calibrate and args.lam is not None:
         raise ValueError("--calibrate and --lam exclude each other")
-    summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
-                        query=args.query, assimilate=args.assimilate, engine=args.engine,
-                        scheduler=args.scheduler, fmt=args.fmt, resume=args.resume,
-                        lam=args.lam, noise_sd=args.noise_sd, level=args.level,
-                        smoothness=args.smoothness, n_modes=args.n_modes, center=args.center,
-                        time_scale=args.time_scale, chunk_rows=args.chunk_rows,
-                        max_transient=args.max_transient or None,
-                        # exact mode on dask runs the parallel-in-time smoother
-                        parallel_in_time=args.engine == "dask" and not args.max_transient)
+    check_level(args.level, "level", "batch")
+    if args.log.is_dir():
+        raise InputError(str(args.log), "is a folder, not a log file (give LOG.csv or "
+                         "LOG.parquet)")
+    if not args.resume:
+        check_output_path(args.out, "batch")
+    check_scheduler(args.scheduler, args.engine)
+
+
+def _cmd_batch(args):
+    import dask
+
+    from .batch.runner import run_batch
+
+    _check_batch_args(args)
+    with dask.config.set({"distributed.comm.timeouts.connect": f"{SCHEDULER_TIMEOUT:g}s"}):
+        summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
+                            query=args.query, assimilate=args.assimilate, engine=args.engine,
+                            scheduler=args.scheduler, fmt=args.fmt, resume=args.resume,
+                            lam=args.lam, noise_sd=args.noise_sd, level=args.level,
+                            smoothness=args.smoothness, n_modes=args.n_modes,
+                            center=args.center, time_scale=args.time_scale,
+                            chunk_rows=args.chunk_rows, log_options=_dialect(args),
+                            max_transient=args.max_transient or None,
+                            # exact mode on dask runs the parallel-in-time smoother
+                            parallel_in_time=args.engine == "dask" and not args.max_transient)
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]
     print(f"batch ({summary['method']}, {summary['engine']}): {f['total']} frames, "
           f"{f.get('ok', 0)} ok, {f.get('no-data', 0)} no-data, {f.get('rejected', 0)} "
           f"rejected; written to {args.out}/")
+    _refuse_all_rejected(args, summary)
+
+
+def _refuse_all_rejected(args, summary):
+    """Refuse a log none of whose frames could be used: bad input (exit 2), not a result."""
+    f = summary["frames"]
+    if f["total"] and f.get("rejected", 0) == f["total"]:
+        reasons = summary.get("rejections") or {}
+        top = max(reasons, key=reasons.get) if reasons else "see frames"
+        raise InputError(str(args.log), f"all {f['total']} frames were rejected (most often: "
+                         f"{top}); the frames table in {args.out}/ lists each reason")
+
+
+def one_line(exc):
+    """Return the first non-blank line of a message (the class name when it has none)."""
+    lines = [ln.strip() for ln in str(exc).splitlines() if ln.strip()]
+    return lines[0] if lines else f"{exc.__class__.__name__} (no message)"
 
 
 def main(argv=None):
@@ -363,15 +540,12 @@ def main(argv=None):
     try:
         {"fit": _cmd_fit, "demo": _cmd_demo, "advise": _cmd_advise,
          "batch": _cmd_batch}[args.command](args)
-    except InputError as exc:
-        print(f"rim-invert: error: {exc}", file=sys.stderr)
-        return EXIT_BAD_INPUT
-    except ValueError as exc:
-        print(f"rim-invert: error: {str(exc).splitlines()[0]}", file=sys.stderr)
+    except ValueError as exc:  # InputError too: one line, never empty
+        print(f"rim-invert: error: {one_line(exc)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except OSError as exc:  # the system refused a read or write: one line, nothing half-written
         where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
-        print(f"rim-invert: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        print(f"rim-invert: error: {where}{exc.strerror or one_line(exc)}", file=sys.stderr)
         return EXIT_SYSTEM
     return 0
 

@@ -103,7 +103,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               scheduler=None, fmt="parquet", resume=False, lam=None, noise_sd=None,
               level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
               chunk_rows=65536, steady_tol=1e-10, max_transient=50, calibration_frames=2000,
-              ml_frames=20000, n_workers=2, parallel_in_time=None, on_chunk=None, say=print):
+              ml_frames=20000, n_workers=2, parallel_in_time=None, on_chunk=None, say=print,
+              log_options=None):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -152,6 +153,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         folder (progress, or a pause).
     say : callable, default=print
         Unused; kept for callers.
+    log_options : dict, optional
+        Passed to :func:`~invert.io.logs.open_log` (``sep``, ``decimal`` of a CSV log).
 
     Returns
     -------
@@ -175,7 +178,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           calibration_frames=calibration_frames, assimilate=assimilate,
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time)
-    source = open_log(log, job.sensors, chunk_rows=chunk_rows)
+    source = open_log(log, job.sensors, chunk_rows=chunk_rows, **(log_options or {}))
     # the folder is locked before the engine starts: a refused run starts no cluster
     with OutputLock(job.out) as lock, \
             make_engine(engine, scheduler=scheduler, n_workers=n_workers) as eng:

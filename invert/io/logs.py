@@ -8,7 +8,7 @@ from .wide import WideLogReader
 __all__ = ["open_log"]
 
 
-def open_log(path, sensors, *, chunk_rows=65536) -> LogSource:
+def open_log(path, sensors, *, chunk_rows=65536, **options) -> LogSource:
     """Open the log at ``path`` as a :class:`~invert.io.sources.LogSource`.
 
     Today every log is a wide CSV or Parquet file (:class:`~invert.io.wide.WideLogReader`);
@@ -21,9 +21,11 @@ def open_log(path, sensors, *, chunk_rows=65536) -> LogSource:
         Sensor ids of the layout, in layout order.
     chunk_rows : int, default=65536
         Frames per chunk, about.
+    **options
+        Passed to the source (a CSV log: ``sep``, ``decimal``; None detects them).
 
     Returns
     -------
     LogSource
     """
-    return WideLogReader(path, sensors, chunk_rows=chunk_rows)
+    return WideLogReader(path, sensors, chunk_rows=chunk_rows, **options)

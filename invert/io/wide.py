@@ -23,6 +23,7 @@ import numpy as np
 from ..errors import InputError
 from .arrow import float_values
 from .cells import NULLS, LineCounter, parse_cells, time_cells
+from .dialect import Dialect, sniff_file
 from .header import header_lines, header_pattern, parse_header
 from .sources import Chunk
 
@@ -63,9 +64,12 @@ class WideLogReader:
     sensors : sequence of str
         Sensor ids from the layout; the log's sensor columns must be among them.
     chunk_rows : int, default=65536
+    sep, decimal : str, optional
+        Delimiter and decimal mark of a CSV log; detected from its first lines when None
+        (:func:`~invert.io.dialect.sniff_file`; what was assumed goes into ``warnings``).
     """
 
-    def __init__(self, path, sensors, *, chunk_rows=65536):
+    def __init__(self, path, sensors, *, chunk_rows=65536, sep=None, decimal=None):
         self.path = Path(path)
         self.source = self.path.name
         self.sensors = [str(s) for s in sensors]
@@ -73,6 +77,9 @@ class WideLogReader:
         if not self.path.exists():
             raise InputError(self.source, "file not found")
         self.is_parquet = self.path.suffix.lower() in (".parquet", ".pq")
+        self.dialect = Dialect() if self.is_parquet else sniff_file(
+            self.path, self.source, sep=sep, decimal=decimal)
+        self.sep, self.decimal = self.dialect.sep, self.dialect.decimal
         names = self._names()
         self.header = parse_header(names, self.sensors, self.source,
                                    line=None if self.is_parquet else self.skip_rows + 1)
@@ -83,7 +90,7 @@ class WideLogReader:
         self.missing_sensors = [s for s in self.sensors if s not in seen]
         self.columns = list(self.header.columns)
         self.time_kind = None  # "number" or "datetime", fixed by the first parseable cell
-        self.warnings = []
+        self.warnings = list(self.dialect.notes)
         self._parsers = {}
 
     def signature(self):
@@ -112,7 +119,7 @@ class WideLogReader:
             raise InputError(self.source, "the file is empty (no header)")
         import csv
 
-        return next(csv.reader([first]))
+        return next(csv.reader([first], delimiter=self.sep))
 
     # --- raw batches ---------------------------------------------------------------------------
     def _batches(self):
@@ -154,7 +161,7 @@ class WideLogReader:
         table = parse_piece(piece, first_only=True)
         if table is None or bad:
             raw = bytes(piece)
-            found = header_lines(raw, self._header_re())
+            found = header_lines(raw, self._header_re(), sep=self.sep)
             if found:
                 return self._split_at_headers(raw, lines.before(pos), found, state)
         if table is None:
@@ -198,7 +205,7 @@ class WideLogReader:
 
     def _header_re(self):
         if getattr(self, "_hre", None) is None:
-            self._hre = header_pattern(self.raw_names, self.sensors)
+            self._hre = header_pattern(self.raw_names, self.sensors, sep=self.sep)
         return self._hre
 
     def _csv_parser(self, bad, header):
@@ -212,17 +219,19 @@ class WideLogReader:
 
         names = list(header.raw_names)
         opts = pcsv.ReadOptions(column_names=names, use_threads=True,
-                                block_size=1 << 20, encoding="utf8")
-        parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
+                                block_size=1 << 20, encoding=self.dialect.encoding)
+        parse = pcsv.ParseOptions(invalid_row_handler=on_invalid, delimiter=self.sep)
         # Without quoting: a stray quote in a cell would otherwise run on over the following
         # lines and swallow them into one field (used only when the rows do not add up).
-        unquoted = pcsv.ParseOptions(invalid_row_handler=on_invalid, quote_char=False)
+        unquoted = pcsv.ParseOptions(invalid_row_handler=on_invalid, quote_char=False,
+                                     delimiter=self.sep)
 
         def convert(time_type, sensor_type):
             types = {n: (time_type if i == header.time_index else sensor_type)
                      for i, n in enumerate(names)}
             return pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
-                                       null_values=NULLS, quoted_strings_can_be_null=True)
+                                       null_values=NULLS, quoted_strings_can_be_null=True,
+                                       decimal_point=self.decimal)
 
         # Fast path: every column float64 (numeric times). After a failure, the time column as
         # text (numbers or date-times) with float64 sensors, then everything as text (the
@@ -358,7 +367,8 @@ class WideLogReader:
             if not line:
                 continue
             text = line.decode("utf-8", errors="replace")
-            cells = next(csv.reader([text])) if quoted else text.split(",")
+            cells = next(csv.reader([text], delimiter=self.sep)) if quoted else \
+                text.split(self.sep)
             if len(cells) != width:
                 out.append((line0 + i + 1, text, rec))
             rec += 1
@@ -372,7 +382,7 @@ class WideLogReader:
                            for num, _, _ in rows], dtype=object)
         t = np.full(n, np.nan)
         for i, (_, text, _) in enumerate(rows):
-            cells = (text or "").split(",")
+            cells = (text or "").split(self.sep)
             cell = cells[h.time_index] if h.time_index < len(cells) else ""
             t[i] = self._time_cells(np.array([cell.strip()], dtype=object))[0][0]
         return Chunk(np.full(n, -1, np.int64), t, np.full((n, len(self.sensors)), np.nan), reason)
@@ -396,7 +406,7 @@ class WideLogReader:
                     vals = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
                     bad = np.zeros(L, bool)
                 except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-                    vals, bad = parse_cells(col)
+                    vals, bad = parse_cells(col, self.decimal)
             vals = np.asarray(vals, float)
             nonfinite = np.isinf(vals)
             if bad.any() or nonfinite.any():
@@ -452,7 +462,7 @@ class WideLogReader:
 
     def _time_cells(self, cells):
         """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
-        t, bad, self.time_kind = time_cells(cells, self.time_kind)
+        t, bad, self.time_kind = time_cells(cells, self.time_kind, self.decimal)
         return t, bad
 
 
