@@ -7,6 +7,7 @@ problem; outputs are staged and moved into place only when complete.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 import warnings
 from pathlib import Path
@@ -272,10 +273,12 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
     ``{"sep": ..., "decimal": ...}`` of the readings file (None values: detected).
     """
     from . import workflow
+    from .io.publish import check_output_path
     from .io.readings import check_inside, load_points, load_readings
     from .report.files import staged_output, write_fit_outputs
 
     level = check_level(level)
+    check_output_path(out, "fit")  # before any computation
     from .geometry import domain_class
 
     dim = domain_class(domain).dim
@@ -498,7 +501,9 @@ def _cmd_batch(args):
     from .batch.runner import run_batch
 
     _check_batch_args(args)
-    with dask.config.set({"distributed.comm.timeouts.connect": f"{SCHEDULER_TIMEOUT:g}s"}):
+    fresh = not args.out.exists()
+    with dask.config.set({"distributed.comm.timeouts.connect": f"{SCHEDULER_TIMEOUT:g}s"}), \
+            _no_work_left_on_bad_input(args, fresh):
         summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
                             query=args.query, assimilate=args.assimilate, engine=args.engine,
                             scheduler=args.scheduler, fmt=args.fmt, resume=args.resume,
@@ -518,6 +523,20 @@ def _cmd_batch(args):
     _refuse_all_rejected(args, summary)
 
 
+@contextlib.contextmanager
+def _no_work_left_on_bad_input(args, fresh):
+    """On bad input, remove the working folder the run made (a resumed run keeps its own)."""
+    try:
+        yield
+    except ValueError:
+        if not args.resume:
+            from .batch.checkpoint import WORK_DIR
+            from .io.publish import discard_work
+
+            discard_work(args.out, WORK_DIR, fresh=fresh)
+        raise
+
+
 def _refuse_all_rejected(args, summary):
     """Refuse a log none of whose frames could be used: bad input (exit 2), not a result."""
     f = summary["frames"]
@@ -530,7 +549,8 @@ def _refuse_all_rejected(args, summary):
 
 def one_line(exc):
     """Return the first non-blank line of a message (the class name when it has none)."""
-    lines = [ln.strip() for ln in str(exc).splitlines() if ln.strip()]
+    # lines without a letter or digit (a parser's "^" marker) say nothing on their own
+    lines = [ln.strip() for ln in str(exc).splitlines() if any(c.isalnum() for c in ln)]
     return lines[0] if lines else f"{exc.__class__.__name__} (no message)"
 
 

@@ -37,7 +37,7 @@ from pathlib import Path
 from ..errors import InputError
 
 __all__ = ["LOCK_NAME", "OWN_NAMES", "FIT_NAMES", "OutputLock", "staging_folder", "publish",
-           "clean_stale_staging", "check_own_folder", "check_output_path"]
+           "clean_stale_staging", "check_own_folder", "check_output_path", "discard_work"]
 
 #: Lock file inside the output folder.
 LOCK_NAME = ".rim-invert.lock"
@@ -344,3 +344,26 @@ def _cannot_write(folder):
     except OSError as exc:
         return exc.strerror or exc.__class__.__name__
     return None
+
+
+def discard_work(out, work_name, *, fresh=False):
+    """Remove the working folder a failed run left in ``out`` (under the lock).
+
+    For a run stopped by bad input: its partial chunks could not be resumed into anything
+    else, so nothing of it stays in ``out``. ``fresh``: ``out`` did not exist before the run,
+    so it is removed too when nothing else is left in it. Nothing is touched while another
+    run holds the folder.
+    """
+    out = Path(out)
+    if not out.is_dir():
+        return
+    try:
+        with OutputLock(out):
+            shutil.rmtree(out / work_name, ignore_errors=True)
+    except InputError:  # another run holds the folder now: leave it alone
+        return
+    if fresh:
+        try:
+            out.rmdir()  # only when empty
+        except OSError:
+            pass
