@@ -180,7 +180,7 @@ def build_parser():
     p.add_argument("--domain", default="disk", choices=_domains(),
                    help="region of the readings (default: disk); advice needs rim arcs, so a "
                         "ball is refused with one line")
-    p.add_argument("--count", type=_int_at_least("--count", 1), default=5,
+    p.add_argument("--count", type=int, default=5,
                    help="new sensors to choose (default: 5)")
     p.add_argument("--candidates", type=Path,
                    help="POINTS.csv of candidate positions (default: every degree on the rim "
@@ -375,6 +375,8 @@ def _cmd_advise(args):
         check_inside(domain, pts, rows, Path(path).name)
         return pts
 
+    if args.count < 1:
+        raise ValueError(f"--count must be >= 1, got {args.count}")
     check_output_path(args.out, "fit")
     dim = domain_class(args.domain).dim
     if args.center is not None and len(args.center) != dim:

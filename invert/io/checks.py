@@ -54,18 +54,19 @@ def check_sensor_ids(sensor, numbers, source):
         raise InputError(source, f"sensor id {sensor[i]!r} holds a line break (a quoted cell "
                          f"running over two lines); write each id on one line",
                          row=int(numbers[i]), column="sensor")
-    ids, inverse, counts = np.unique(sensor.astype(str), return_inverse=True,
-                                     return_counts=True)
-    rep = np.flatnonzero(counts > 1)
-    if not rep.size:
+    rows = {}
+    for sid, n in zip(sensor, numbers, strict=True):
+        rows.setdefault(str(sid), []).append(int(n))
+    rep = sorted((r for r in rows.items() if len(r[1]) > 1), key=lambda r: r[1][1])
+    if not rep:
         return
-    parts = []
-    for k in rep[:_SHOWN]:
-        rows = ", ".join(str(int(n)) for n in numbers[inverse == k])
-        parts.append(f"'{ids[k]}' (rows {rows})")
-    more = f" and {rep.size - _SHOWN} more" if rep.size > _SHOWN else ""
-    raise InputError(source, f"sensor id(s) given more than once: {'; '.join(parts)}{more}; "
-                     f"each sensor needs its own id", column="sensor")
+    (sid, where), others = rep[0], rep[1:]
+    also = "; ".join(f"'{k}' (rows {', '.join(map(str, v))})" for k, v in others[:_SHOWN])
+    more = f" and {len(others) - _SHOWN} more" if len(others) > _SHOWN else ""
+    raise InputError(source, f"sensor '{sid}' is given again (first at row {where[0]}); each "
+                     f"sensor needs its own id" + (f"; also repeated: {also}{more}" if also
+                                                   else ""),
+                     row=where[1], column="sensor")
 
 
 def coincident_notes(points, value, sensor, numbers, source):

@@ -92,10 +92,12 @@ def spreadsheet_safe(frame):
         carriage return and do not read as a number get a leading ``'``; numeric columns and
         numeric-looking text (``-3.2``) are unchanged.
     """
+    from pandas.api.types import is_object_dtype, is_string_dtype
+
     out = frame
     for name in frame.columns:
         col = frame[name]
-        if col.dtype.kind not in "OSU" and str(col.dtype) != "string":
+        if not (is_object_dtype(col.dtype) or is_string_dtype(col.dtype)):
             continue
         risky = col.map(lambda v: isinstance(v, str) and bool(_FORMULA_RE.match(v))
                         and not _NUMBER_RE.match(v))
