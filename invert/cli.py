@@ -418,12 +418,13 @@ def _write_advice(args, adv, estimate, problem):
     with staged_output(args.out) as stage:
         write_csv_frame(cframe, stage / "candidates.csv")
         write_csv_frame(rframe, stage / "repair.csv")
+        advice = {"target": adv.target, "target_before": adv.target_before,
+                  "noise_sd": adv.noise_sd, "min_spacing_deg": adv.min_spacing_deg,
+                  "method": estimate.method}
+        if notes:  # only then: the file of a plain run keeps its keys
+            advice.update(count=args.count, n_chosen=len(cframe), warnings=notes)
         with open(stage / "advice.json", "w") as fh:
-            json.dump(to_jsonable({"target": adv.target, "target_before": adv.target_before,
-                                   "noise_sd": adv.noise_sd,
-                                   "min_spacing_deg": adv.min_spacing_deg,
-                                   "method": estimate.method, "count": args.count,
-                                   "n_chosen": len(cframe), "warnings": notes}), fh, indent=2)
+            json.dump(to_jsonable(advice), fh, indent=2)
     for w in notes:
         print(f"warning: {w}")
     print(f"target: {adv.target}, now {adv.target_before:.4g}")

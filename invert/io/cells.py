@@ -87,8 +87,9 @@ def _points(text, decimal):
     """Cells as text with a decimal comma turned into a point (``decimal=","``)."""
     if decimal != ",":
         return text
-    one = (text.str.count(",").eq(1) & ~text.str.contains(".", regex=False).fillna(True))
-    return text.where(~one.fillna(False).astype(bool), text.str.replace(",", ".", regex=False))
+    one = text.str.count(",").eq(1).to_numpy(bool) & \
+        ~text.str.contains(".", regex=False).fillna(True).to_numpy(bool)
+    return text.where(~one, text.str.replace(",", ".", regex=False))
 
 
 def parse_cells(col, decimal="."):
