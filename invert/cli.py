@@ -15,6 +15,16 @@ from pathlib import Path
 import numpy as np
 
 from ._validation import check_level
+from .cli_checks import (
+    SCHEDULER_TIMEOUT,
+    SEED,
+    check_batch_args,
+    finite,
+    int_at_least,
+    no_work_left_on_bad_input,
+    one_line,
+    refuse_all_rejected,
+)
 from .errors import InputError
 
 EXIT_BAD_INPUT = 2
@@ -42,38 +52,6 @@ def _positive(name):
     return conv
 
 
-def _int_at_least(name, low):
-    """Argparse type: an integer >= ``low``, the message naming the option."""
-    def conv(text):
-        try:
-            v = int(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{name} must be an integer, got {text!r}") from None
-        if v < low:
-            raise argparse.ArgumentTypeError(f"{name} must be >= {low}, got {text!r}")
-        return v
-
-    return conv
-
-
-def _finite(name):
-    """Argparse type: a finite number (no nan or inf), the message naming the option."""
-    def conv(text):
-        try:
-            v = float(text)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{name} must be a number, got {text!r}") from None
-        if not np.isfinite(v):
-            raise argparse.ArgumentTypeError(f"{name} must be a finite number, got {text!r}")
-        return v
-
-    return conv
-
-
-#: Seeds are what numpy.random.default_rng takes: non-negative integers, for every method.
-_SEED = _int_at_least("--seed", 0)
-
-
 def _add_dialect_options(p):
     p.add_argument("--sep", default=None, metavar="SEP",
                    help="delimiter of the CSV input: ',', ';' or 'tab' (default: detected from "
@@ -99,18 +77,18 @@ def _add_fit_options(p):
     p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] to report")
     p.add_argument("--level", type=float, default=0.9,
                    help="probability of the central intervals (default: 0.9)")
-    p.add_argument("--seed", type=_SEED, default=0,
+    p.add_argument("--seed", type=SEED, default=0,
                    help="random seed, an integer >= 0 (default: 0)")
     p.add_argument("--smoothness", type=float, default=2.0,
                    help="smoothness order s of the prior (default: 2)")
-    p.add_argument("--n-modes", type=_int_at_least("--n-modes", 1), default=None,
+    p.add_argument("--n-modes", type=int_at_least("--n-modes", 1), default=None,
                    help="truncation degree, >= 1 (default: chosen from the smoothness)")
     p.add_argument("--lam", type=_positive("--lam"), default=None,
                    help="fix the regularisation parameter (with --noise-sd when readings "
                         "carry no sigma), e.g. from an earlier summary.json")
     p.add_argument("--noise-sd", type=_positive("--noise-sd"), default=None,
                    help="fix the common noise sd instead of estimating it (with --lam)")
-    p.add_argument("--grid", type=_int_at_least("--grid", 3), default=81,
+    p.add_argument("--grid", type=int_at_least("--grid", 3), default=81,
                    help="interior grid: points per side of the square around the region, "
                         ">= 3 (default: 81)")
     p.add_argument("--fix-smoothness", action="store_true",
@@ -119,14 +97,14 @@ def _add_fit_options(p):
                    help="mcmc: model each reading as good or faulty; report fault probabilities")
     p.add_argument("--angle-sd", type=_positive("--angle-sd"), default=None, metavar="DEG",
                    help="mcmc: sd (degrees) of each sensor's angle error, integrated over")
-    p.add_argument("--max-steps", type=_int_at_least("--max-steps", 1), default=20000,
+    p.add_argument("--max-steps", type=int_at_least("--max-steps", 1), default=20000,
                    help="mcmc: step cap per ensemble (default: 20000)")
     _add_report_options(p)
     _add_dialect_options(p)
 
 
 def _add_report_options(p, threshold=None, unit="", length_unit=""):
-    p.add_argument("--threshold", type=_finite("--threshold"), default=threshold,
+    p.add_argument("--threshold", type=finite("--threshold"), default=threshold,
                    help="report the probability that the value exceeds this, as a map and "
                         f"anywhere in the region (default: {threshold})")
     p.add_argument("--unit", default=unit, help=f"unit of the values (default: {unit!r})")
@@ -167,7 +145,7 @@ def build_parser():
     p = sub.add_parser("demo", help="run the main job on the bundled synthetic demo data")
     p.add_argument("--out", type=Path, default=Path("demo-output"))
     p.add_argument("--method", default="tikhonov", choices=_methods())
-    p.add_argument("--seed", type=_SEED, default=0,
+    p.add_argument("--seed", type=SEED, default=0,
                    help="random seed, an integer >= 0 (default: 0)")
     _add_report_options(p, threshold=95.0, unit="°C", length_unit="m")
 
@@ -192,7 +170,7 @@ def build_parser():
                         "spacing)")
     p.add_argument("--method", default="tikhonov", choices=_methods())
     p.add_argument("--smoothness", type=float, default=2.0)
-    p.add_argument("--seed", type=_SEED, default=0,
+    p.add_argument("--seed", type=SEED, default=0,
                    help="random seed, an integer >= 0 (default: 0)")
     _add_dialect_options(p)
 
@@ -225,11 +203,11 @@ def _add_batch_parser(sub):
     p.add_argument("--level", type=float, default=0.9,
                    help="probability of the central intervals (default: 0.9)")
     p.add_argument("--smoothness", type=float, default=2.0)
-    p.add_argument("--n-modes", type=_int_at_least("--n-modes", 1), default=None)
-    p.add_argument("--chunk-rows", type=_int_at_least("--chunk-rows", 1), default=65536,
+    p.add_argument("--n-modes", type=int_at_least("--n-modes", 1), default=None)
+    p.add_argument("--chunk-rows", type=int_at_least("--chunk-rows", 1), default=65536,
                    help="frames per chunk, >= 1 (default: 65536)")
     _add_dialect_options(p)
-    p.add_argument("--max-transient", type=_int_at_least("--max-transient", 0), default=50,
+    p.add_argument("--max-transient", type=int_at_least("--max-transient", 0), default=50,
                    help="assimilation: exact Kalman steps after a change of drop-out pattern or "
                         "time step before the steady-state gain is used; 0 = exact throughout "
                         "(default: 50)")
@@ -437,76 +415,21 @@ def _write_advice(args, adv, estimate, problem):
     print(f"written to {args.out}/ (candidates.csv, repair.csv, advice.json)")
 
 
-#: Seconds to wait for a --scheduler to answer (dask's own default is 30 s).
-SCHEDULER_TIMEOUT = 5.0
-#: Address schemes a dask client can connect to from another process.
-_SCHEMES = ("tcp", "tls", "ws", "wss", "ucx")
-
-
-def check_scheduler(address, engine="dask", timeout=SCHEDULER_TIMEOUT):
-    """Check a ``--scheduler`` address before the run: well formed, secured, reachable.
-
-    Raises
-    ------
-    ValueError
-        One line naming the address: with another engine than dask, a malformed address or
-        unknown scheme, ``tls://``/``wss://`` without certificates in the dask configuration
-        (``distributed.comm.tls.client.cert``), or nothing answering within ``timeout`` s.
-    """
-    if address is None:
-        return
-    if engine != "dask":
-        raise ValueError(f"--scheduler {address!r} belongs to --engine dask")
-    import socket
-
+def _scheduler_timeout(args):
+    """Dask's connect timeout cut to SCHEDULER_TIMEOUT for a run on an existing scheduler."""
+    if args.scheduler is None:
+        return contextlib.nullcontext()
     import dask
-    from distributed.comm.addressing import parse_address, parse_host_port
 
-    try:
-        scheme, loc = parse_address(address)
-        host, port = parse_host_port(loc)
-    except ValueError as exc:
-        raise ValueError(f"--scheduler {address!r} is not an address like "
-                         f"tcp://HOST:PORT ({exc})") from None
-    if scheme not in _SCHEMES:
-        raise ValueError(f"--scheduler {address!r}: unknown scheme {scheme!r} (one of "
-                         f"{', '.join(_SCHEMES)})")
-    if scheme in ("tls", "wss") and not dask.config.get("distributed.comm.tls.client.cert",
-                                                        None):
-        raise ValueError(f"--scheduler {address!r} needs TLS certificates, and none are set "
-                         f"(dask configuration distributed.comm.tls.client.cert/key, "
-                         f"ca-file)")
-    try:
-        socket.create_connection((host, port), timeout=timeout).close()
-    except OSError as exc:
-        raise ValueError(f"--scheduler {address!r}: no scheduler answers there within "
-                         f"{timeout:g} s ({exc.strerror or exc.__class__.__name__})") from None
-
-
-def _check_batch_args(args):
-    """Refuse batch options that contradict each other, before anything is read or run."""
-    from .io.publish import check_output_path
-
-    if args.calibrate and args.lam is not None:
-        raise ValueError("--calibrate and --lam exclude each other")
-    check_level(args.level, "level", "batch")
-    if args.log.is_dir():
-        raise InputError(str(args.log), "is a folder, not a log file (give LOG.csv or "
-                         "LOG.parquet)")
-    if not args.resume:
-        check_output_path(args.out, "batch")
-    check_scheduler(args.scheduler, args.engine)
+    return dask.config.set({"distributed.comm.timeouts.connect": f"{SCHEDULER_TIMEOUT:g}s"})
 
 
 def _cmd_batch(args):
-    import dask
-
     from .batch.runner import run_batch
 
-    _check_batch_args(args)
+    check_batch_args(args)
     fresh = not args.out.exists()
-    with dask.config.set({"distributed.comm.timeouts.connect": f"{SCHEDULER_TIMEOUT:g}s"}), \
-            _no_work_left_on_bad_input(args, fresh):
+    with _scheduler_timeout(args), no_work_left_on_bad_input(args, fresh):
         summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
                             query=args.query, assimilate=args.assimilate, engine=args.engine,
                             scheduler=args.scheduler, fmt=args.fmt, resume=args.resume,
@@ -523,38 +446,7 @@ def _cmd_batch(args):
     print(f"batch ({summary['method']}, {summary['engine']}): {f['total']} frames, "
           f"{f.get('ok', 0)} ok, {f.get('no-data', 0)} no-data, {f.get('rejected', 0)} "
           f"rejected; written to {args.out}/")
-    _refuse_all_rejected(args, summary)
-
-
-@contextlib.contextmanager
-def _no_work_left_on_bad_input(args, fresh):
-    """On bad input, remove the working folder the run made (a resumed run keeps its own)."""
-    try:
-        yield
-    except ValueError:
-        if not args.resume:
-            from .batch.checkpoint import WORK_DIR
-            from .io.publish import discard_work
-
-            discard_work(args.out, WORK_DIR, fresh=fresh)
-        raise
-
-
-def _refuse_all_rejected(args, summary):
-    """Refuse a log none of whose frames could be used: bad input (exit 2), not a result."""
-    f = summary["frames"]
-    if f["total"] and f.get("rejected", 0) == f["total"]:
-        reasons = summary.get("rejections") or {}
-        top = max(reasons, key=reasons.get) if reasons else "see frames"
-        raise InputError(str(args.log), f"all {f['total']} frames were rejected (most often: "
-                         f"{top}); the frames table in {args.out}/ lists each reason")
-
-
-def one_line(exc):
-    """Return the first non-blank line of a message (the class name when it has none)."""
-    # lines without a letter or digit (a parser's "^" marker) say nothing on their own
-    lines = [ln.strip() for ln in str(exc).splitlines() if any(c.isalnum() for c in ln)]
-    return lines[0] if lines else f"{exc.__class__.__name__} (no message)"
+    refuse_all_rejected(args, summary)
 
 
 def main(argv=None):

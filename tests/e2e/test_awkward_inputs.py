@@ -10,7 +10,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from invert.cli import main, one_line
+from invert.cli import main
+from invert.cli_checks import one_line
 
 ROOT = Path(__file__).resolve().parents[2]
 DATA = ROOT / "invert" / "data"
