@@ -135,7 +135,7 @@ def build_parser():
     p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=float, nargs="+", metavar="C", default=None,
+    p.add_argument("--center", type=finite("--center"), nargs="+", metavar="C", default=None,
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
     p.add_argument("--domain", default="disk", choices=_domains(),
                    help="region: disk (readings x,y) or ball (readings x,y,z; boundary.csv on "
@@ -153,7 +153,7 @@ def build_parser():
     p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=float, nargs="+", metavar="C", default=None,
+    p.add_argument("--center", type=finite("--center"), nargs="+", metavar="C", default=None,
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
     p.add_argument("--domain", default="disk", choices=_domains(),
                    help="region of the readings (default: disk); advice needs rim arcs, so a "
@@ -165,7 +165,7 @@ def build_parser():
                         "and rings at 1/4, 1/2, 3/4 of the radius)")
     p.add_argument("--query", type=Path,
                    help="POINTS.csv: reduce the variance at these points instead of over the disk")
-    p.add_argument("--min-spacing", type=float, default=None,
+    p.add_argument("--min-spacing", type=finite("--min-spacing", 0.0), default=None,
                    help="minimum angle between new sensors, degrees (default: half the sensor "
                         "spacing)")
     p.add_argument("--method", default="tikhonov", choices=_methods())
@@ -184,7 +184,7 @@ def _add_batch_parser(sub):
     p.add_argument("--layout", type=Path, required=True, help="LAYOUT.csv: sensor,x,y[,sigma]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=float, nargs=2, metavar=("X", "Y"), default=None)
+    p.add_argument("--center", type=finite("--center"), nargs=2, metavar=("X", "Y"), default=None)
     p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] (default: the centre)")
     p.add_argument("--assimilate", action="store_true",
                    help="Kalman filter + RTS smoother over time instead of per-frame fits")

@@ -33,8 +33,8 @@ def int_at_least(name, low):
     return conv
 
 
-def finite(name):
-    """Argparse type: a finite number (no nan or inf), the message naming the option."""
+def finite(name, low=None):
+    """Argparse type: a finite number (no nan or inf), ``>= low`` when given, naming the option."""
     def conv(text):
         try:
             v = float(text)
@@ -42,6 +42,8 @@ def finite(name):
             raise argparse.ArgumentTypeError(f"{name} must be a number, got {text!r}") from None
         if not np.isfinite(v):
             raise argparse.ArgumentTypeError(f"{name} must be a finite number, got {text!r}")
+        if low is not None and v < low:
+            raise argparse.ArgumentTypeError(f"{name} must be >= {low:g}, got {text!r}")
         return v
 
     return conv

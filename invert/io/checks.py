@@ -70,23 +70,24 @@ def check_sensor_ids(sensor, numbers, source):
 
 
 def coincident_notes(points, value, sensor, numbers, source):
-    """Return notes on readings at one position (1e-9 of the layout's size apart at most).
+    """Return notes on readings at exactly one position (a copied row or position).
 
     Two sensors at one position with different values contradict each other (a copied
     position, a swapped channel): a note naming them and their values. The same value: a
-    note that the reading seems to be given twice. Both readings are used.
+    note that the reading seems to be given twice. Both readings are used. Positions must be
+    equal as numbers: distinct sensors of a dense line may lie closer than any tolerance.
     """
     obs = np.isfinite(value)
     if obs.sum() < 2:
         return []
     idx = np.flatnonzero(obs)
-    scale = 1e-9 * (1.0 + np.abs(points[idx]).max())
-    key = np.round(points[idx] / scale).astype(np.int64)
-    _, inverse, counts = np.unique(key, axis=0, return_inverse=True, return_counts=True)
+    _, inverse, counts = np.unique(points[idx], axis=0, return_inverse=True,
+                                   return_counts=True)
     notes = []
-    for g in np.flatnonzero(counts > 1)[:_SHOWN]:
+    groups = np.flatnonzero(counts > 1)
+    for g in groups[:_SHOWN]:
         members = idx[inverse.ravel() == g]
-        names = ", ".join(f"'{sensor[i]}' (row {int(numbers[i])}, {value[i]:g})"
+        names = ", ".join(f"'{sensor[i]}' (row {int(numbers[i])}, {value[i]:.10g})"
                           for i in members)
         if np.ptp(value[members]) == 0:
             notes.append(f"{source}: readings {names} are at one position with the same value "
@@ -94,6 +95,9 @@ def coincident_notes(points, value, sensor, numbers, source):
         else:
             notes.append(f"{source}: readings {names} are at one position but disagree; both "
                          f"are used (check the positions and channels)")
+    if groups.size > _SHOWN:
+        notes.append(f"{source}: {groups.size - _SHOWN} more position(s) hold more than one "
+                     f"reading")
     return notes
 
 

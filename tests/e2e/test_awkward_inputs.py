@@ -170,6 +170,13 @@ def test_xy_and_polar_together(tmp_path, capsys):
     assert not (tmp_path / "o2").exists()
 
 
+def test_negative_min_spacing(tmp_path, capsys):
+    code, _, err = run(["advise", readings(tmp_path), "--radius", 1, "--out", tmp_path / "a",
+                        "--min-spacing", "-5"], capsys)
+    assert code == 2 and "--min-spacing must be >= 0, got '-5'" in one_error(err)
+    assert not (tmp_path / "a").exists()
+
+
 def test_count_larger_than_the_candidates_is_said(tmp_path, capsys):
     code, out, err = run(["advise", readings(tmp_path), "--radius", 1, "--out", tmp_path / "a",
                           "--count", 1000], capsys)
@@ -218,6 +225,7 @@ def test_readings_at_one_position(tmp_path, capsys):
     (["--n-modes", "0"], "--n-modes must be >= 1, got '0'"),
     (["--seed", "-1"], "--seed must be >= 0, got '-1'"),
     (["--seed", "-1", "--method", "mcmc"], "--seed must be >= 0, got '-1'"),
+    (["--center", "nan", "0"], "--center must be a finite number, got 'nan'"),
 ])
 def test_option_values_refused(tmp_path, capsys, opts, message):
     code, _, err = run(["fit", readings(tmp_path), "--radius", 1, "--out", tmp_path / "o",
