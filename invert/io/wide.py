@@ -110,7 +110,7 @@ class WideLogReader:
                 raise InputError(self.source, f"cannot be read as Parquet ({exc})") from None
         # leading lines starting with '#' are comments (e.g. a SYNTHETIC label)
         self.skip_rows = 0
-        with open(self.path, encoding="utf-8-sig", errors="replace") as fh:
+        with open(self.path, encoding=_text_encoding(self.dialect), errors="replace") as fh:
             first = fh.readline()
             while first.lstrip().startswith("#"):
                 self.skip_rows += 1
@@ -464,6 +464,11 @@ class WideLogReader:
         """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
         t, bad, self.time_kind = time_cells(cells, self.time_kind, self.decimal)
         return t, bad
+
+
+def _text_encoding(dialect):
+    """Python codec name for reading the header line (a UTF-8 BOM dropped)."""
+    return "utf-8-sig" if dialect.encoding == "utf-8" else dialect.encoding
 
 
 def _concat(*parts):

@@ -373,3 +373,37 @@ def test_formula_cells_quoted_in_batch_and_advise_csv(tmp_path, capsys):
                         tmp_path / "a"], capsys)
     assert code == 0, err
     assert pd.read_csv(tmp_path / "a" / "repair.csv")["sensor"][0] == "'=cmd()"
+
+
+def test_latin1_log_and_layout(tmp_path, capsys):
+    lines = LOG.read_text().splitlines()[:60]
+    lines[0] = "# SYNTHETIC log, values in \u00b0C"
+    lines[1] = lines[1].replace("tc00", "tc\u00e900")
+    log = tmp_path / "log.csv"
+    log.write_bytes(("\n".join(lines) + "\n").encode("latin-1"))
+    layout = tmp_path / "layout.csv"
+    layout.write_bytes(LAYOUT.read_text().replace("tc00", "tc\u00e900").encode("latin-1"))
+    code, _, err = run(["batch", log, "--layout", layout, "--radius", 0.25, "--out",
+                        tmp_path / "o", "--format", "csv"], capsys)
+    assert code == 0, err
+    assert "log.csv: not valid UTF-8 (first at line 1, byte 0xb0); read as Latin-1" in err
+    frames = pd.read_csv(tmp_path / "o" / "frames.csv")
+    assert len(frames) == 58 and set(frames["status"]) == {"ok"}
+
+
+def test_out_as_a_mount_point_is_refused_before_computing(tmp_path, capsys):
+    import subprocess
+
+    mnt = tmp_path / "mnt"
+    mnt.mkdir()
+    if subprocess.run(["mount", "-t", "tmpfs", "tmpfs", str(mnt)],
+                      capture_output=True).returncode != 0:
+        pytest.skip("cannot mount a tmpfs here")
+    try:
+        code, _, err = run(["fit", readings(tmp_path), "--radius", 1, "--out", mnt], capsys)
+        assert code == 2 and "is a mount point (another file system than its parent)" in \
+            one_error(err)
+        assert not any(mnt.iterdir()) and not any(p.name.startswith(".mnt.") for p in
+                                                  tmp_path.iterdir())
+    finally:
+        subprocess.run(["umount", str(mnt)], capture_output=True)
