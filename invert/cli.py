@@ -71,7 +71,7 @@ def _dialect(args):
 def _add_fit_options(p):
     p.add_argument("--method", default="tikhonov", choices=_methods(),
                    help="inference stage (default: tikhonov)")
-    p.add_argument("--rule", default="evidence",
+    p.add_argument("--rule", default=None,
                    help="tikhonov parameter choice: evidence, gcv, loo, lcurve, discrepancy, "
                         "upre (default: evidence)")
     p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] to report")
@@ -97,7 +97,7 @@ def _add_fit_options(p):
                    help="mcmc: model each reading as good or faulty; report fault probabilities")
     p.add_argument("--angle-sd", type=_positive("--angle-sd"), default=None, metavar="DEG",
                    help="mcmc: sd (degrees) of each sensor's angle error, integrated over")
-    p.add_argument("--max-steps", type=int_at_least("--max-steps", 1), default=20000,
+    p.add_argument("--max-steps", type=int_at_least("--max-steps", 1), default=None,
                    help="mcmc: step cap per ensemble (default: 20000)")
     _add_report_options(p)
     _add_dialect_options(p)
@@ -213,30 +213,35 @@ def _add_batch_parser(sub):
                         "(default: 50)")
 
 
+#: Default of --max-steps (mcmc only; None on the parser so that a stray one is seen).
+MAX_STEPS = 20000
+
+
 def _fit_options(args):
-    opts = {}
-    if getattr(args, "method", "tikhonov") in ("gaussian", "mcmc"):
-        if args.lam is not None or args.noise_sd is not None:
-            raise ValueError("--lam and --noise-sd belong to --method tikhonov")
-        if args.fix_smoothness:
-            opts["fix_s"] = True
-        if args.method == "mcmc":
-            if args.max_steps < 1:
-                raise ValueError(f"--max-steps must be >= 1, got {args.max_steps}")
+    """Stage options from the fit options; an option the chosen method would ignore is an error."""
+    method = getattr(args, "method", "tikhonov")
+    if method != "mcmc" and (args.faulty or args.angle_sd is not None
+                             or args.max_steps is not None):
+        raise ValueError(f"--faulty, --angle-sd and --max-steps belong to --method mcmc; the "
+                         f"{method} fit would ignore them")
+    if method in ("gaussian", "mcmc"):
+        if args.lam is not None or args.noise_sd is not None or args.rule is not None:
+            raise ValueError("--lam, --noise-sd and --rule belong to --method tikhonov")
+        opts = {"fix_s": True} if args.fix_smoothness else {}
+        if method == "mcmc":
             opts.update(faulty=args.faulty, angle_sd_deg=args.angle_sd,
-                        max_steps=args.max_steps)
-        elif args.faulty or args.angle_sd is not None:
-            raise ValueError("--faulty and --angle-sd belong to --method mcmc")
+                        max_steps=MAX_STEPS if args.max_steps is None else args.max_steps)
         return opts
-    if args.faulty or args.angle_sd is not None:
-        raise ValueError("--faulty and --angle-sd belong to --method mcmc; the tikhonov fit "
-                         "would ignore them")
+    opts = {}
     if args.lam is not None:
+        if args.rule is not None:
+            raise ValueError("--rule and --lam exclude each other (--lam fixes the parameter "
+                             "the rule would choose)")
         opts.update(rule="fixed", lam=args.lam, noise_sd=args.noise_sd)
     elif args.noise_sd is not None:
         raise ValueError("--noise-sd goes with --lam (both fixed, e.g. from a batch summary)")
     else:
-        opts.update(rule=args.rule)
+        opts.update(rule=args.rule or "evidence")
     return opts
 
 

@@ -131,10 +131,18 @@ def test_batch_on_a_european_log_equals_the_comma_log(tmp_path, capsys):
 
 
 # --- silently ignored or changed inputs -------------------------------------------------------
-def test_faulty_without_mcmc(tmp_path, capsys):
+@pytest.mark.parametrize("opts,message", [
+    (["--faulty"], "--faulty, --angle-sd and --max-steps belong to --method mcmc; the "
+                   "tikhonov fit would ignore them"),
+    (["--angle-sd", "2", "--method", "gaussian"], "the gaussian fit would ignore them"),
+    (["--max-steps", "100"], "--max-steps belong to --method mcmc"),
+    (["--rule", "gcv", "--method", "gaussian"], "--rule belong to --method tikhonov"),
+    (["--rule", "gcv", "--lam", "0.1", "--noise-sd", "0.1"], "--rule and --lam exclude"),
+])
+def test_options_the_method_would_ignore(tmp_path, capsys, opts, message):
     code, _, err = run(["fit", readings(tmp_path), "--radius", 1, "--out", tmp_path / "o",
-                        "--faulty"], capsys)
-    assert code == 2 and "--faulty and --angle-sd belong to --method mcmc" in one_error(err)
+                        *opts], capsys)
+    assert code == 2 and message in one_error(err)
     assert not (tmp_path / "o").exists()
 
 
