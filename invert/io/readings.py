@@ -28,7 +28,7 @@ def row_of(rows, index):
     ----------
     rows : ndarray of int
         Row of each record in its file (1-based, header = row 1, comment and blank lines
-        counted), as :func:`~invert._validation.read_table` and the loaders here return them.
+        counted), as :func:`~invert.io.dialect.read_table` and the loaders here return them.
     index : int or None
         0-based record index (e.g. :attr:`~invert.errors.DomainError.index`).
 
