@@ -97,6 +97,37 @@ def check_scheduler(address, engine="dask", timeout=SCHEDULER_TIMEOUT):
     except OSError as exc:
         raise ValueError(f"--scheduler {address!r}: no scheduler answers there within "
                          f"{timeout:g} s ({exc.strerror or exc.__class__.__name__})") from None
+    _handshake(address, timeout)
+
+
+def _handshake(address, timeout):
+    """Ask the address who it is (dask's ``identity``), the whole exchange within ``timeout``.
+
+    Something that listens but is no scheduler would otherwise hold the run until the peer
+    gives up (a dask client's own timeout does not bound the handshake).
+    """
+    import asyncio
+
+    from distributed.comm import connect
+
+    async def identity():
+        comm = await connect(address, timeout=timeout)
+        try:
+            await comm.write({"op": "identity", "reply": True})
+            return await comm.read()
+        finally:
+            comm.abort()
+
+    try:
+        info = asyncio.run(asyncio.wait_for(identity(), timeout))
+    except Exception as exc:  # any failure to talk to it: no scheduler there
+        why = one_line(exc) if str(exc).strip() else exc.__class__.__name__
+        raise ValueError(f"--scheduler {address!r}: no dask scheduler answered there within "
+                         f"{timeout:g} s ({why})") from None
+    if not isinstance(info, dict) or info.get("type") != "Scheduler":
+        what = info.get("type") if isinstance(info, dict) else info
+        raise ValueError(f"--scheduler {address!r}: the process there is not a dask scheduler "
+                         f"(it says it is {what!r})")
 
 
 def check_batch_args(args):

@@ -364,6 +364,25 @@ def test_scheduler_checked_before_the_run(tmp_path, capsys, address, engine, mes
     assert time.monotonic() - t0 < 25
 
 
+@pytest.mark.timeout(60)
+def test_scheduler_that_listens_but_never_answers(tmp_path, capsys):
+    s = socket.socket()
+    s.bind(("127.0.0.1", 0))
+    s.listen(4)  # connections are accepted by the kernel, nothing ever answers
+    address = f"tcp://127.0.0.1:{s.getsockname()[1]}"
+    try:
+        t0 = time.monotonic()
+        code, _, err = run(["batch", LOG, "--layout", LAYOUT, "--radius", 0.25, "--out",
+                            tmp_path / "o", "--engine", "dask", "--scheduler", address], capsys)
+        line = one_error(err)
+        assert code == 2 and f"--scheduler '{address}': no dask scheduler answered there " \
+            "within 5 s" in line
+        assert time.monotonic() - t0 < 25  # bounded by the 5 s check (generous: shared host)
+        assert not (tmp_path / "o").exists()
+    finally:
+        s.close()
+
+
 def test_formula_cells_quoted_in_batch_and_advise_csv(tmp_path, capsys):
     q = tmp_path / "q.csv"
     q.write_text('label,x,y\n"=HYPERLINK(""http://x"")",0,0\n-3.2,0.1,0\n@SUM(1),0,0.1\n')
