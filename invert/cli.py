@@ -7,6 +7,7 @@ problem; outputs are staged and moved into place only when complete.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
 import warnings
 from pathlib import Path
@@ -14,6 +15,16 @@ from pathlib import Path
 import numpy as np
 
 from ._validation import check_level
+from .cli_checks import (
+    SCHEDULER_TIMEOUT,
+    SEED,
+    check_batch_args,
+    finite,
+    int_at_least,
+    no_work_left_on_bad_input,
+    one_line,
+    refuse_all_rejected,
+)
 from .errors import InputError
 
 EXIT_BAD_INPUT = 2
@@ -41,39 +52,59 @@ def _positive(name):
     return conv
 
 
+def _add_dialect_options(p):
+    p.add_argument("--sep", default=None, metavar="SEP",
+                   help="delimiter of the CSV input: ',', ';' or 'tab' (default: detected from "
+                        "the first lines)")
+    p.add_argument("--decimal", default=None, metavar="MARK",
+                   help="decimal mark of numbers in the CSV input: '.' or ',' (default: "
+                        "detected; a comma with semicolon- or tab-separated files)")
+
+
+def _dialect(args):
+    """``{"sep": ..., "decimal": ...}`` from --sep/--decimal (None: detect)."""
+    from .io.dialect import parse_decimal, parse_sep
+
+    return {"sep": parse_sep(args.sep), "decimal": parse_decimal(args.decimal)}
+
+
 def _add_fit_options(p):
     p.add_argument("--method", default="tikhonov", choices=_methods(),
                    help="inference stage (default: tikhonov)")
-    p.add_argument("--rule", default="evidence",
+    p.add_argument("--rule", default=None,
                    help="tikhonov parameter choice: evidence, gcv, loo, lcurve, discrepancy, "
                         "upre (default: evidence)")
     p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] to report")
     p.add_argument("--level", type=float, default=0.9,
                    help="probability of the central intervals (default: 0.9)")
-    p.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
+    p.add_argument("--seed", type=SEED, default=0,
+                   help="random seed, an integer >= 0 (default: 0)")
     p.add_argument("--smoothness", type=float, default=2.0,
                    help="smoothness order s of the prior (default: 2)")
-    p.add_argument("--n-modes", type=int, default=None,
-                   help="truncation degree (default: chosen from the smoothness)")
+    p.add_argument("--n-modes", type=int_at_least("--n-modes", 1), default=None,
+                   help="truncation degree, >= 1 (default: chosen from the smoothness)")
     p.add_argument("--lam", type=_positive("--lam"), default=None,
                    help="fix the regularisation parameter (with --noise-sd when readings "
                         "carry no sigma), e.g. from an earlier summary.json")
     p.add_argument("--noise-sd", type=_positive("--noise-sd"), default=None,
                    help="fix the common noise sd instead of estimating it (with --lam)")
-    p.add_argument("--grid", type=int, default=81, help="interior grid size (default: 81)")
+    p.add_argument("--grid", type=int_at_least("--grid", 3), default=81,
+                   help="interior grid: points per side of the square around the region, "
+                        ">= 3 (default: 81)")
     p.add_argument("--fix-smoothness", action="store_true",
                    help="gaussian/mcmc: hold s at --smoothness instead of estimating it")
     p.add_argument("--faulty", action="store_true",
                    help="mcmc: model each reading as good or faulty; report fault probabilities")
     p.add_argument("--angle-sd", type=_positive("--angle-sd"), default=None, metavar="DEG",
                    help="mcmc: sd (degrees) of each sensor's angle error, integrated over")
-    p.add_argument("--max-steps", type=int, default=20000,
+    p.add_argument("--max-steps", type=int_at_least("--max-steps", 1), default=None,
                    help="mcmc: step cap per ensemble (default: 20000)")
     _add_report_options(p)
+    _add_dialect_options(p)
 
 
 def _add_report_options(p, threshold=None, unit="", length_unit=""):
-    p.add_argument("--threshold", type=float, default=threshold,
+    p.add_argument("--threshold", type=finite("--threshold"), default=threshold,
                    help="report the probability that the value exceeds this, as a map and "
                         f"anywhere in the region (default: {threshold})")
     p.add_argument("--unit", default=unit, help=f"unit of the values (default: {unit!r})")
@@ -108,7 +139,7 @@ def build_parser():
     p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=float, nargs="+", metavar="C", default=None,
+    p.add_argument("--center", type=finite("--center"), nargs="+", metavar="C", default=None,
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
     p.add_argument("--domain", default="disk", choices=_domains(),
                    help="region: disk (readings x,y) or ball (readings x,y,z; boundary.csv on "
@@ -118,26 +149,34 @@ def build_parser():
     p = sub.add_parser("demo", help="run the main job on the bundled synthetic demo data")
     p.add_argument("--out", type=Path, default=Path("demo-output"))
     p.add_argument("--method", default="tikhonov", choices=_methods())
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--seed", type=SEED, default=0,
+                   help="random seed, an integer >= 0 (default: 0)")
     _add_report_options(p, threshold=95.0, unit="°C", length_unit="m")
 
     p = sub.add_parser("advise", help="rank new sensor positions and failed sensors to repair")
     p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=float, nargs=2, metavar=("X", "Y"), default=None)
-    p.add_argument("--count", type=int, default=5, help="new sensors to choose (default: 5)")
+    p.add_argument("--center", type=finite("--center"), nargs="+", metavar="C", default=None,
+                   help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
+    p.add_argument("--domain", default="disk", choices=_domains(),
+                   help="region of the readings (default: disk); advice needs rim arcs, so a "
+                        "ball is refused with one line")
+    p.add_argument("--count", type=int, default=5,
+                   help="new sensors to choose (default: 5)")
     p.add_argument("--candidates", type=Path,
                    help="POINTS.csv of candidate positions (default: every degree on the rim "
                         "and rings at 1/4, 1/2, 3/4 of the radius)")
     p.add_argument("--query", type=Path,
                    help="POINTS.csv: reduce the variance at these points instead of over the disk")
-    p.add_argument("--min-spacing", type=float, default=None,
+    p.add_argument("--min-spacing", type=finite("--min-spacing", 0.0), default=None,
                    help="minimum angle between new sensors, degrees (default: half the sensor "
                         "spacing)")
     p.add_argument("--method", default="tikhonov", choices=_methods())
     p.add_argument("--smoothness", type=float, default=2.0)
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--seed", type=SEED, default=0,
+                   help="random seed, an integer >= 0 (default: 0)")
+    _add_dialect_options(p)
 
     _add_batch_parser(sub)
     return parser
@@ -159,7 +198,7 @@ def _add_batch_parser(sub):
     p.add_argument("--layout", type=Path, required=True, help="LAYOUT.csv: sensor,x,y[,sigma]")
     p.add_argument("--radius", type=_positive("--radius"), required=True)
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=float, nargs=2, metavar=("X", "Y"), default=None)
+    p.add_argument("--center", type=finite("--center"), nargs=2, metavar=("X", "Y"), default=None)
     p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] (default: the centre)")
     p.add_argument("--assimilate", action="store_true",
                    help="Kalman filter + RTS smoother over time instead of per-frame fits")
@@ -178,69 +217,82 @@ def _add_batch_parser(sub):
                    help="estimate lam (and the noise sd) once on the log (default without --lam)")
     p.add_argument("--time-scale", type=_positive("--time-scale"), default=None,
                    help="fix the time scale of the dynamics (default: maximum likelihood)")
-    p.add_argument("--level", type=float, default=0.9)
+    p.add_argument("--level", type=float, default=0.9,
+                   help="probability of the central intervals (default: 0.9)")
     p.add_argument("--smoothness", type=float, default=2.0)
-    p.add_argument("--n-modes", type=int, default=None)
-    p.add_argument("--chunk-rows", type=int, default=65536, help="frames per chunk")
+    p.add_argument("--n-modes", type=int_at_least("--n-modes", 1), default=None)
+    p.add_argument("--chunk-rows", type=int_at_least("--chunk-rows", 1), default=65536,
+                   help="frames per chunk, >= 1 (default: 65536)")
+    _add_dialect_options(p)
     p.add_argument("--time-format", default=None, metavar="FORMAT",
                    help="how the log writes its times when they are not numbers (kept as "
                         "written) or ISO 8601 date-times: epoch-s, epoch-ms, epoch-us, epoch-ns "
                         "(Unix epoch numbers) or a strptime pattern such as '%%d/%%m/%%Y "
                         "%%H:%%M:%%S' (day-first dates); without a zone times are read as UTC")
-    p.add_argument("--max-transient", type=int, default=0,
+    p.add_argument("--max-transient", type=int_at_least("--max-transient", 0), default=0,
                    help="assimilation: 0 (default) = exact Kalman filter and smoother at every "
                         "frame (compiled); N > 0 = the steady-state shortcut: exact steps for up "
                         "to N frames after a change of drop-out pattern or time step, then the "
                         "cached steady-state gain")
 
 
+#: Default of --max-steps (mcmc only; None on the parser so that a stray one is seen).
+MAX_STEPS = 20000
+
+
 def _fit_options(args):
-    opts = {}
-    if getattr(args, "method", "tikhonov") in ("gaussian", "mcmc"):
-        if args.lam is not None or args.noise_sd is not None:
-            raise ValueError("--lam and --noise-sd belong to --method tikhonov")
-        if args.fix_smoothness:
-            opts["fix_s"] = True
-        if args.method == "mcmc":
-            if args.max_steps < 1:
-                raise ValueError(f"--max-steps must be >= 1, got {args.max_steps}")
+    """Stage options from the fit options; an option the chosen method would ignore is an error."""
+    method = getattr(args, "method", "tikhonov")
+    if method != "mcmc" and (args.faulty or args.angle_sd is not None
+                             or args.max_steps is not None):
+        raise ValueError(f"--faulty, --angle-sd and --max-steps belong to --method mcmc; the "
+                         f"{method} fit would ignore them")
+    if method in ("gaussian", "mcmc"):
+        if args.lam is not None or args.noise_sd is not None or args.rule is not None:
+            raise ValueError("--lam, --noise-sd and --rule belong to --method tikhonov")
+        opts = {"fix_s": True} if args.fix_smoothness else {}
+        if method == "mcmc":
             opts.update(faulty=args.faulty, angle_sd_deg=args.angle_sd,
-                        max_steps=args.max_steps)
-        elif args.faulty or args.angle_sd is not None:
-            raise ValueError("--faulty and --angle-sd belong to --method mcmc")
+                        max_steps=MAX_STEPS if args.max_steps is None else args.max_steps)
         return opts
+    opts = {}
     if args.lam is not None:
+        if args.rule is not None:
+            raise ValueError("--rule and --lam exclude each other (--lam fixes the parameter "
+                             "the rule would choose)")
         opts.update(rule="fixed", lam=args.lam, noise_sd=args.noise_sd)
     elif args.noise_sd is not None:
         raise ValueError("--noise-sd goes with --lam (both fixed, e.g. from a batch summary)")
     else:
-        opts.update(rule=args.rule)
+        opts.update(rule=args.rule or "evidence")
     return opts
 
 
 def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query=None,
             level=0.9, seed=0, smoothness=2.0, n_modes=None, grid=81, figures=False,
             stage_options=None, say=print, threshold=None, unit="", length_unit="",
-            domain="disk"):
+            domain="disk", dialect=None):
     """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict.
 
     ``domain`` is a name in :data:`invert.geometry.DOMAINS`; readings, ``center`` and query
-    points have that domain's ``dim`` coordinates (``"ball"``: x, y, z).
+    points have that domain's ``dim`` coordinates (``"ball"``: x, y, z). ``dialect``:
+    ``{"sep": ..., "decimal": ...}`` of the readings file (None values: detected).
     """
     from . import workflow
+    from .io.publish import check_output_path
     from .io.readings import check_inside, load_points, load_readings
-    from .problem import LinearProblem
     from .report.files import staged_output, write_fit_outputs
 
     level = check_level(level)
+    check_output_path(out, "fit")  # before any computation
     from .geometry import domain_class
 
     dim = domain_class(domain).dim
     if center is not None and len(center) != dim:
         raise ValueError(f"--center needs {dim} numbers for a {domain}, got {len(center)}")
-    readings = load_readings(readings_path, dim=dim, center=center)
+    readings = load_readings(readings_path, dim=dim, center=center, **(dialect or {}))
     domain = workflow.make_domain(radius, center, kind=domain, s=smoothness, n_modes=n_modes)
-    problem = LinearProblem.from_readings(readings, domain)
+    problem = workflow.problem_from_readings(readings, domain)
     q = None
     if query is not None:
         pts, labels, rows = load_points(query, dim=dim)
@@ -292,7 +344,8 @@ def _cmd_fit(args):
                       method=args.method, query=args.query, level=args.level, seed=args.seed,
                       smoothness=args.smoothness, n_modes=args.n_modes, grid=args.grid,
                       figures=True, stage_options=_fit_options(args), threshold=args.threshold,
-                      unit=args.unit, length_unit=args.length_unit, domain=args.domain)
+                      unit=args.unit, length_unit=args.length_unit, domain=args.domain,
+                      dialect=_dialect(args))
     print(f"fit ({summary['method']}) written to {args.out}/ (report: {args.out}/report.html)")
 
 
@@ -319,39 +372,69 @@ def _cmd_demo(args):
 def _cmd_advise(args):
     from . import workflow
     from .diagnostics.advise import advise
+    from .geometry import domain_class
+    from .io.publish import check_output_path
     from .io.readings import check_inside, load_points, load_readings
-    from .problem import LinearProblem
-    from .report.files import staged_output, to_jsonable
 
     def points(path):
         if path is None:
             return None
-        pts, _, rows = load_points(path)
+        pts, _, rows = load_points(path, dim=dim)
         check_inside(domain, pts, rows, Path(path).name)
         return pts
 
     if args.count < 1:
         raise ValueError(f"--count must be >= 1, got {args.count}")
-    readings = load_readings(args.readings, center=args.center)
-    domain = workflow.make_domain(args.radius, args.center, s=args.smoothness)
-    problem = LinearProblem.from_readings(readings, domain)
+    check_output_path(args.out, "fit")
+    dim = domain_class(args.domain).dim
+    if args.center is not None and len(args.center) != dim:
+        raise ValueError(f"--center needs {dim} numbers for a {args.domain}, got "
+                         f"{len(args.center)}")
+    readings = load_readings(args.readings, dim=dim, center=args.center, **_dialect(args))
+    domain = workflow.make_domain(args.radius, args.center, kind=args.domain,
+                                  s=args.smoothness)
+    if getattr(domain, "rim_arcs", None) is None:
+        raise ValueError(f"advise needs a region with a rim circle (a disk); the {args.domain} "
+                         f"has none, so no sensor advice can be given")
+    problem = workflow.problem_from_readings(readings, domain)
     cand, query = points(args.candidates), points(args.query)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         estimate = workflow.run_stage(problem, args.method, s=args.smoothness, seed=args.seed)
     adv = advise(estimate, problem, count=args.count, candidates=cand, query=query,
                  min_spacing_deg=args.min_spacing)
-    cframe, rframe = adv.to_frames()
+    _write_advice(args, adv, estimate, problem)
+
+
+def _advice_warnings(args, adv, cframe, problem):
+    notes = list(problem.notes)
+    if len(cframe) < args.count:
+        notes.append(f"--count {args.count}: only {len(cframe)} new sensor(s) could be placed "
+                     f"(candidates at least {adv.min_spacing_deg:.3g} deg apart; give "
+                     f"--min-spacing or --candidates for more)")
+    return notes
+
+
+def _write_advice(args, adv, estimate, problem):
     import json
 
+    from .io.writers import write_csv_frame
+    from .report.files import staged_output, to_jsonable
+
+    cframe, rframe = adv.to_frames()
+    notes = _advice_warnings(args, adv, cframe, problem)
     with staged_output(args.out) as stage:
-        cframe.to_csv(stage / "candidates.csv", index=False, float_format="%.10g")
-        rframe.to_csv(stage / "repair.csv", index=False, float_format="%.10g")
+        write_csv_frame(cframe, stage / "candidates.csv")
+        write_csv_frame(rframe, stage / "repair.csv")
+        advice = {"target": adv.target, "target_before": adv.target_before,
+                  "noise_sd": adv.noise_sd, "min_spacing_deg": adv.min_spacing_deg,
+                  "method": estimate.method}
+        if notes:  # only then: the file of a plain run keeps its keys
+            advice.update(count=args.count, n_chosen=len(cframe), warnings=notes)
         with open(stage / "advice.json", "w") as fh:
-            json.dump(to_jsonable({"target": adv.target, "target_before": adv.target_before,
-                                   "noise_sd": adv.noise_sd,
-                                   "min_spacing_deg": adv.min_spacing_deg,
-                                   "method": estimate.method}), fh, indent=2)
+            json.dump(to_jsonable(advice), fh, indent=2)
+    for w in notes:
+        print(f"warning: {w}")
     print(f"target: {adv.target}, now {adv.target_before:.4g}")
     if len(rframe):
         print(f"repair first: {rframe['sensor'][0]} (cuts it by {rframe['reduction'][0]:.3g})")
@@ -362,36 +445,39 @@ def _cmd_advise(args):
     print(f"written to {args.out}/ (candidates.csv, repair.csv, advice.json)")
 
 
+def _scheduler_timeout(args):
+    """Dask's connect timeout cut to SCHEDULER_TIMEOUT for a run on an existing scheduler."""
+    if args.scheduler is None:
+        return contextlib.nullcontext()
+    import dask
+
+    return dask.config.set({"distributed.comm.timeouts.connect": f"{SCHEDULER_TIMEOUT:g}s"})
+
+
 def _cmd_batch(args):
     from .batch.runner import run_batch
 
-    if args.calibrate and args.lam is not None:
-        raise ValueError("--calibrate and --lam exclude each other")
-    summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
-                        query=args.query, assimilate=args.assimilate, engine=args.engine,
-                        scheduler=args.scheduler, fmt=args.fmt, resume=args.resume,
-                        lam=args.lam, noise_sd=args.noise_sd, level=args.level,
-                        smoothness=args.smoothness, n_modes=args.n_modes, center=args.center,
-                        time_scale=args.time_scale, chunk_rows=args.chunk_rows,
-                        max_transient=args.max_transient or None,
-                        time_format=args.time_format, table=args.table,
-                        out_table=args.out_table,
-                        time_from=args.time_from, time_to=args.time_to, unit=args.unit)
+    check_batch_args(args)
+    fresh = not args.out.exists()
+    with _scheduler_timeout(args), no_work_left_on_bad_input(args, fresh):
+        summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
+                            query=args.query, assimilate=args.assimilate, engine=args.engine,
+                            scheduler=args.scheduler, fmt=args.fmt, resume=args.resume,
+                            lam=args.lam, noise_sd=args.noise_sd, level=args.level,
+                            smoothness=args.smoothness, n_modes=args.n_modes,
+                            center=args.center, time_scale=args.time_scale,
+                            chunk_rows=args.chunk_rows, log_options=_dialect(args),
+                            max_transient=args.max_transient or None,
+                            time_format=args.time_format, table=args.table,
+                            out_table=args.out_table, time_from=args.time_from,
+                            time_to=args.time_to, unit=args.unit)
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]
     print(f"batch ({summary['method']}, {summary['engine']}): {f['total']} frames, "
           f"{f.get('ok', 0)} ok, {f.get('no-data', 0)} no-data, {f.get('rejected', 0)} "
           f"rejected; written to {args.out}/")
-
-
-def error_line(exc):
-    """Return the one line printed for ``exc``: its first non-blank line, never empty.
-
-    An exception without text is named by its class and repr (``ValueError()``).
-    """
-    line = next((ln.strip() for ln in str(exc).splitlines() if ln.strip()), "")
-    return line or f"{type(exc).__name__} without a message ({exc!r})"
+    refuse_all_rejected(args, summary)
 
 
 def main(argv=None):
@@ -400,12 +486,12 @@ def main(argv=None):
     try:
         {"fit": _cmd_fit, "demo": _cmd_demo, "advise": _cmd_advise,
          "batch": _cmd_batch}[args.command](args)
-    except (InputError, ValueError) as exc:
-        print(f"rim-invert: error: {error_line(exc)}", file=sys.stderr)
+    except ValueError as exc:  # InputError too: one line, never empty
+        print(f"rim-invert: error: {one_line(exc)}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except OSError as exc:  # the system refused a read or write: one line, nothing half-written
         where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
-        print(f"rim-invert: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        print(f"rim-invert: error: {where}{exc.strerror or one_line(exc)}", file=sys.stderr)
         return EXIT_SYSTEM
     return 0
 

@@ -20,8 +20,8 @@ from .problem import LinearProblem
 from .stages._truncation import truncation_for
 from .stages.registry import STAGES, stage_names
 
-__all__ = ["fit", "make_domain", "as_readings", "run_stage", "make_stage",
-           "problem_for_stage", "fit_stage", "residual_dof_warning", "METHODS",
+__all__ = ["fit", "make_domain", "as_readings", "problem_from_readings", "run_stage",
+           "make_stage", "problem_for_stage", "fit_stage", "residual_dof_warning", "METHODS",
            "MIN_RESIDUAL_DOF"]
 
 #: The method names of the stage registry (:data:`invert.stages.registry.STAGES`).
@@ -60,6 +60,20 @@ def as_readings(data, *, dim=2) -> Readings:
     if isinstance(data, (str, Path)):
         return load_readings(data, dim=dim)
     return Readings.from_frame(data, dim=dim)
+
+
+def problem_from_readings(readings, domain):
+    """Build the linear problem; what was assumed reading the file becomes its notes.
+
+    :meth:`LinearProblem.from_readings <invert.problem.LinearProblem.from_readings>` with
+    ``readings.notes`` (delimiter, decimal mark, encoding, readings repeated at one position)
+    put first in the problem's notes, which every stage passes on as warnings (summary.json).
+    """
+    problem = LinearProblem.from_readings(readings, domain)
+    notes = tuple(getattr(readings, "notes", ()))
+    if notes:
+        problem = dataclasses.replace(problem, notes=notes + tuple(problem.notes))
+    return problem
 
 
 def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.0,
@@ -118,7 +132,7 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.
                          f"method={method!r} chooses its hyperparameters itself.")
     r = as_readings(readings, dim=domain_class(kind).dim)
     domain = make_domain(radius, center, kind=kind, s=s, n_modes=n_modes)
-    problem = LinearProblem.from_readings(r, domain)
+    problem = problem_from_readings(r, domain)
     if method == "tikhonov":
         options = {"rule": rule or "evidence", **options}
     return run_stage(problem, method, s=s, **options)

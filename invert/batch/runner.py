@@ -111,7 +111,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
               ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
               table=None, time_from=None, time_to=None, unit=None, out_table=None,
-              on_chunk=None, say=print):
+              on_chunk=None, say=print, log_options=None):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -174,6 +174,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         folder (progress, or a pause).
     say : callable, default=print
         Unused; kept for callers.
+    log_options : dict, optional
+        Passed to :func:`~invert.io.logs.open_log` (``sep``, ``decimal`` of a CSV log).
 
     Returns
     -------
@@ -200,7 +202,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         raise InputError(str(log), "--out-table writes into the log's database: give a "
                                    "database log (sqlite:///FILE or postgresql://...)")
     source = open_log(log, job.sensors, chunk_rows=chunk_rows, time_format=job.time_format,
-                      table=table, time_from=time_from, time_to=time_to)
+                      table=table, time_from=time_from, time_to=time_to,
+                      **(log_options or {}))
     # the folder is locked before the engine starts: a refused run starts no cluster
     with OutputLock(job.out) as lock, \
             make_engine(engine, scheduler=scheduler, n_workers=n_workers) as eng:

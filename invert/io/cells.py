@@ -16,7 +16,7 @@ __all__ = ["NULLS", "time_cells", "parse_cells", "LineCounter"]
 NULLS = ["", "NaN", "nan", "NA", "N/A", "null", "NULL", "None", "-nan", "#N/A"]
 
 
-def time_cells(cells, kind):
+def time_cells(cells, kind, decimal="."):
     """Parse time cells one by one (slow path): numbers, or ISO 8601 date-times.
 
     Parameters
@@ -25,6 +25,8 @@ def time_cells(cells, kind):
         The cells as text (None for a null).
     kind : {"number", "datetime"} or None
         The log's time kind so far; None: fixed here by the first non-blank cell.
+    decimal : {".", ","}, default="."
+        Decimal mark of numeric times (:mod:`invert.io.dialect`).
 
     Returns
     -------
@@ -43,7 +45,7 @@ def time_cells(cells, kind):
     text = np.array(["" if c is None else str(c).strip() for c in cells], dtype=object)
     blank = np.array([x == "" or x in NULLS for x in text])
     bad[blank] = 2
-    num = pd.to_numeric(pd.Series(text), errors="coerce").to_numpy(float)
+    num = pd.to_numeric(_points(pd.Series(text), decimal), errors="coerce").to_numpy(float)
     if kind is None:
         first = next((i for i in range(n) if not blank[i]), None)
         if first is not None:
@@ -84,13 +86,25 @@ class LineCounter:
         return self.lines
 
 
-def parse_cells(col):
-    """Numbers from a string column cell by cell; ``bad`` marks non-blank non-numbers."""
+def _points(text, decimal):
+    """Cells as text with a decimal comma turned into a point (``decimal=","``)."""
+    if decimal != ",":
+        return text
+    one = text.str.count(",").eq(1).to_numpy(bool) & \
+        ~text.str.contains(".", regex=False).fillna(True).to_numpy(bool)
+    return text.where(~one, text.str.replace(",", ".", regex=False))
+
+
+def parse_cells(col, decimal="."):
+    """Numbers from a string column cell by cell; ``bad`` marks non-blank non-numbers.
+
+    ``decimal`` is the log's decimal mark (a comma: ``"80,3"`` reads as 80.3).
+    """
     import pandas as pd
 
     s = pd.Series(col.to_pylist(), dtype=object)
     blank = s.isna().to_numpy()
-    vals = pd.to_numeric(s.str.strip(), errors="coerce").to_numpy(float)
+    vals = pd.to_numeric(_points(s.str.strip(), decimal), errors="coerce").to_numpy(float)
     bad = np.isnan(vals) & ~blank
     # literal NaN spellings are missing readings, not bad cells
     low = s.str.strip().str.lower()

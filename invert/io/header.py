@@ -104,19 +104,28 @@ def parse_header(names, sensors, source, *, line=None):
             raise InputError(source, f"sensor column '{c}' appears twice", row=line, column=c)
         seen.add(c)
         columns.append((str(names[i]), pos[c]))
+    if not columns:
+        raise InputError(source, f"no column of the log is a sensor of the layout (the "
+                         f"header holds only '{clean[time_index]}'); the layout lists "
+                         f"{', '.join(repr(s) for s in list(sensors)[:_SHOWN])}"
+                         f"{', ...' if len(sensors) > _SHOWN else ''}", row=line)
     return Header(tuple(str(n) for n in names), time_index, tuple(columns), line)
 
 
-def header_pattern(names, sensors):
-    """Return a regex (bytes) for lines whose first cell is ``time`` or a column/sensor name."""
+def header_pattern(names, sensors, *, sep=","):
+    """Return a regex (bytes) for lines whose first cell is ``time`` or a column/sensor name.
+
+    ``sep`` is the log's delimiter (:mod:`invert.io.dialect`).
+    """
     # names that read as numbers cannot tell a header from a data row: left out
     words = sorted({w for w in ("time", *(str(n).strip() for n in names), *map(str, sensors))
                     if w and not _is_number(w)}, key=len, reverse=True)
     alt = b"|".join(re.escape(w.encode()) for w in words)
-    return re.compile(rb'(?mi)^[ \t]*"?(?:' + alt + rb')"?[ \t]*(?:,|\r?$)')
+    end = re.escape(sep.encode())
+    return re.compile(rb'(?mi)^[ \t]*"?(?:' + alt + rb')"?[ \t]*(?:' + end + rb'|\r?$)')
 
 
-def header_lines(piece, pattern):
+def header_lines(piece, pattern, *, sep=","):
     """Header lines inside a piece of a CSV log.
 
     Parameters
@@ -124,6 +133,8 @@ def header_lines(piece, pattern):
     piece : bytes
     pattern : re.Pattern
         From :func:`header_pattern`.
+    sep : str, default=","
+        The log's delimiter.
 
     Returns
     -------
@@ -136,7 +147,7 @@ def header_lines(piece, pattern):
         end = piece.find(b"\n", start)
         end = len(piece) if end < 0 else end + 1
         text = bytes(piece[start:end]).decode("utf-8", errors="replace").rstrip("\r\n")
-        cells = next(csv.reader([text]))
+        cells = next(csv.reader([text], delimiter=sep))
         if any(_is_number(c) for c in cells):  # a data row (a header holds names only)
             continue
         out.append((piece.count(b"\n", 0, start), start, end, cells))

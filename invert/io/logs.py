@@ -14,7 +14,7 @@ __all__ = ["open_log"]
 
 
 def open_log(path, sensors, *, chunk_rows=65536, time_format=None, table=None,
-             time_from=None, time_to=None) -> LogSource:
+             time_from=None, time_to=None, **options) -> LogSource:
     """Open the log at ``path`` as a :class:`~invert.io.sources.LogSource`.
 
     A CSV or Parquet file whose columns are exactly ``time, sensor, value[, flag]`` is a long
@@ -36,6 +36,8 @@ def open_log(path, sensors, *, chunk_rows=65536, time_format=None, table=None,
         The table, when ``path`` is a database URL.
     time_from, time_to : str, optional
         Window of a database log: ``time >= time_from`` and ``time < time_to``.
+    **options
+        Passed to a wide CSV log's reader (``sep``, ``decimal``; None detects them).
 
     Returns
     -------
@@ -55,7 +57,8 @@ def open_log(path, sensors, *, chunk_rows=65536, time_format=None, table=None,
     if names is not None and is_long(names):
         return LongLogReader(path, sensors, names, chunk_rows=chunk_rows,
                              time_format=time_format, skip_rows=skip)
-    return WideLogReader(path, sensors, chunk_rows=chunk_rows, time_format=time_format)
+    return WideLogReader(path, sensors, chunk_rows=chunk_rows, time_format=time_format,
+                         **options)
 
 
 def _header(path):

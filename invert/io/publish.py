@@ -37,7 +37,7 @@ from pathlib import Path
 from ..errors import InputError
 
 __all__ = ["LOCK_NAME", "OWN_NAMES", "FIT_NAMES", "OutputLock", "staging_folder", "publish",
-           "clean_stale_staging", "check_own_folder"]
+           "clean_stale_staging", "check_own_folder", "check_output_path", "discard_work"]
 
 #: Lock file inside the output folder.
 LOCK_NAME = ".rim-invert.lock"
@@ -291,3 +291,79 @@ def clean_stale_staging(out, command="batch"):
     for p in sorted(out.parent.iterdir()):
         if p.name.startswith(tuple(prefixes)) and p.is_dir() and not p.is_symlink():
             shutil.rmtree(p, ignore_errors=True)
+
+
+def _nearest_existing(path):
+    p = Path(os.path.abspath(path))
+    while not p.exists():
+        if p.parent == p:
+            break
+        p = p.parent
+    return p
+
+
+def check_output_path(out, command="batch"):
+    """Check before any computation that ``out`` can be written, as :func:`publish` will.
+
+    The outputs are staged beside ``out`` (in its parent, the same file system) and swapped
+    in, so the parent must be a folder this process can write in (tried by making and
+    removing a folder there), and ``out``, when it exists, a writable folder on the parent's
+    file system holding only what ``command`` writes (:func:`check_own_folder`).
+
+    Raises
+    ------
+    InputError
+        One line naming the path: under a file, not writable (permissions, an immutable
+        folder, a read-only file system), a mount point, or a folder holding foreign files.
+    """
+    out = Path(out)
+    check_own_folder(out, command)
+    base = _nearest_existing(out.parent)
+    if not base.is_dir():
+        raise InputError(str(out), f"cannot be created: '{base}' is a file, not a folder")
+    why = _cannot_write(base)
+    if why:
+        raise InputError(str(out), f"cannot be written: nothing can be created in '{base}' "
+                         f"({why}); choose another --out")
+    if out.exists():
+        why = _cannot_write(out)
+        if why:
+            raise InputError(str(out), f"cannot be written ({why}); choose another --out")
+        if os.stat(out).st_dev != os.stat(out.parent).st_dev:
+            raise InputError(str(out), "is a mount point (another file system than its "
+                             "parent); the outputs replace the folder as a whole: give a "
+                             "folder inside it")
+
+
+def _cannot_write(folder):
+    """Why nothing can be created in ``folder`` (None when a trial folder could be)."""
+    import tempfile
+
+    try:
+        os.rmdir(tempfile.mkdtemp(prefix=".rim-invert-probe-", dir=folder))
+    except OSError as exc:
+        return exc.strerror or exc.__class__.__name__
+    return None
+
+
+def discard_work(out, work_name, *, fresh=False):
+    """Remove the working folder a failed run left in ``out`` (under the lock).
+
+    For a run stopped by bad input: its partial chunks could not be resumed into anything
+    else, so nothing of it stays in ``out``. ``fresh``: ``out`` did not exist before the run,
+    so it is removed too when nothing else is left in it. Nothing is touched while another
+    run holds the folder.
+    """
+    out = Path(out)
+    if not out.is_dir():
+        return
+    try:
+        with OutputLock(out):
+            shutil.rmtree(out / work_name, ignore_errors=True)
+    except InputError:  # another run holds the folder now: leave it alone
+        return
+    if fresh:
+        try:
+            out.rmdir()  # only when empty
+        except OSError:
+            pass

@@ -13,8 +13,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .._validation import parse_number, read_table
+from .._validation import parse_number
 from ..errors import DomainError, InputError
+from .checks import check_magnitudes, check_polar_agrees, check_sensor_ids, coincident_notes
+from .dialect import read_table, to_number_text
 
 __all__ = ["Readings", "load_readings", "load_points", "load_layout", "row_of", "check_inside"]
 
@@ -26,7 +28,7 @@ def row_of(rows, index):
     ----------
     rows : ndarray of int
         Row of each record in its file (1-based, header = row 1, comment and blank lines
-        counted), as :func:`~invert._validation.read_table` and the loaders here return them.
+        counted), as :func:`~invert.io.dialect.read_table` and the loaders here return them.
     index : int or None
         0-based record index (e.g. :attr:`~invert.errors.DomainError.index`).
 
@@ -83,6 +85,10 @@ class Readings:
         Where the readings came from, for messages.
     rows : ndarray of int, shape (n_sensors,)
         Row of each reading in the source (1-based, header = row 1).
+    notes : tuple of str
+        What was assumed while reading (the file's delimiter, decimal mark or encoding,
+        readings repeated at one position); the fit passes them on as warnings into
+        summary.json.
     """
 
     points: np.ndarray
@@ -91,6 +97,7 @@ class Readings:
     sensor: np.ndarray
     source: str = "<readings>"
     rows: np.ndarray = field(default=None)
+    notes: tuple = ()
 
     def __post_init__(self):
         if self.rows is None:
@@ -129,110 +136,129 @@ def _isblank(v):
         return False
 
 
-def load_readings(path, *, dim=2, center=None) -> Readings:
+def load_readings(path, *, dim=2, center=None, sep=None, decimal=None) -> Readings:
     """Load READINGS.csv.
 
     Columns: ``x,y`` (and ``z`` when ``dim=3``) or ``r,theta_deg`` (disk only), ``value``;
     optional ``sigma`` and ``sensor``. A blank ``value`` is a gap. Lines starting with ``#`` are
     comments. ``r,theta_deg`` are relative to ``center`` (default the origin); ``x,y`` are in
-    the frame in which ``center`` is given.
+    the frame in which ``center`` is given. The delimiter (comma, semicolon, tab), decimal
+    mark and encoding are detected unless ``sep``/``decimal`` are given
+    (:func:`~invert.io.dialect.read_table`); what was assumed is in ``Readings.notes``.
 
     Raises
     ------
     InputError
-        Missing columns, text in numbers, NaN or infinite values, non-positive sigma, duplicate
-        sensor ids with different positions, no usable reading, or an empty file.
+        Missing columns, text in numbers, NaN, infinite or overflowing values, non-positive
+        sigma, a repeated sensor id, a ``z`` column for a disk, ``x,y`` and ``r,theta_deg``
+        that disagree, no usable reading, or an empty file.
     """
     source = Path(path).name
-    header, rows, numbers = read_table(path, source=source)
-    return _from_cells(header, rows, numbers, source, dim, center)
+    header, rows, numbers, dialect = read_table(path, source=source, sep=sep, decimal=decimal)
+    return _from_cells(header, rows, numbers, source, dim, center, decimal=dialect.decimal,
+                       notes=dialect.notes)
 
 
-def _column(header, rows, numbers, source, name, *, allow_blank=False):
-    j = header.index(name)
-    return np.array(
-        [parse_number(r[j], source, n, name, allow_blank=allow_blank)
-         for r, n in zip(rows, numbers, strict=True)]
-    )
+class _Cells:
+    """The parsed cells of a table, with the file's decimal mark, read column by column."""
+
+    def __init__(self, header, rows, numbers, source, decimal="."):
+        self.header, self.rows, self.numbers = header, rows, numbers
+        self.source, self.decimal = source, decimal
+
+    def __contains__(self, name):
+        return name in self.header
+
+    def column(self, name, *, allow_blank=False):
+        j = self.header.index(name)
+        return np.array(
+            [parse_number(to_number_text(r[j], self.decimal), self.source, n, name,
+                          allow_blank=allow_blank)
+             for r, n in zip(self.rows, self.numbers, strict=True)]
+        )
+
+    def text(self, name):
+        j = self.header.index(name)
+        return np.array([r[j] for r in self.rows], dtype=object)
 
 
-def _positions(header, rows, numbers, source, dim, center=None):
+def _polar(t, center):
+    r = t.column("r")
+    theta = np.deg2rad(t.column("theta_deg"))
+    bad = np.flatnonzero(r < 0)
+    if bad.size:
+        raise InputError(t.source, f"must be >= 0, got {r[bad[0]]:g}",
+                         row=int(t.numbers[bad[0]]), column="r")
+    c = (0.0, 0.0) if center is None else center
+    return np.column_stack([c[0] + r * np.cos(theta), c[1] + r * np.sin(theta)])
+
+
+def _positions(t, dim, center=None):
+    """Positions and notes; a ``z`` column for a disk and disagreeing x,y / r,theta are errors."""
     axes = ["x", "y", "z"][:dim]
-    if all(a in header for a in axes):
-        return np.column_stack([_column(header, rows, numbers, source, a) for a in axes])
-    if dim == 2 and "r" in header and "theta_deg" in header:
-        r = _column(header, rows, numbers, source, "r")
-        t = np.deg2rad(_column(header, rows, numbers, source, "theta_deg"))
-        bad = np.flatnonzero(r < 0)
-        if bad.size:
-            raise InputError(source, f"must be >= 0, got {r[bad[0]]:g}", row=int(numbers[bad[0]]),
-                             column="r")
-        c = (0.0, 0.0) if center is None else center
-        return np.column_stack([c[0] + r * np.cos(t), c[1] + r * np.sin(t)])
-    missing = [a for a in axes if a not in header]
+    if dim == 2 and "z" in t:
+        raise InputError(t.source, "readings with a 'z' column are in a ball, but the region "
+                         "is a disk (x, y): give --domain ball (kind='ball' in invert.fit), "
+                         "or drop the column", column="z")
+    polar = dim == 2 and "r" in t and "theta_deg" in t
+    if all(a in t for a in axes):
+        xy = np.column_stack([t.column(a) for a in axes])
+        if polar:
+            return xy, [check_polar_agrees(xy, _polar(t, center), t.numbers, t.source)]
+        return xy, []
+    if polar:
+        return _polar(t, center), []
+    missing = [a for a in axes if a not in t]
     alt = " (or r,theta_deg)" if dim == 2 else ""
-    raise InputError(source, f"missing required column(s) {', '.join(missing)}{alt}; "
-                     f"found {', '.join(header) or 'none'}")
+    raise InputError(t.source, f"missing required column(s) {', '.join(missing)}{alt}; "
+                     f"found {', '.join(t.header) or 'none'}")
 
 
-def _from_cells(header, rows, numbers, source, dim, center=None):
+def _sigma(t, value):
+    if "sigma" not in t:
+        return None
+    sigma = t.column("sigma", allow_blank=True)
+    blank = np.isnan(sigma)
+    if blank.all():
+        return None
+    bad = np.flatnonzero(blank & np.isfinite(value))
+    if bad.size:
+        raise InputError(t.source, "is blank; give sigma for every reading or for none",
+                         row=int(t.numbers[bad[0]]), column="sigma")
+    bad = np.flatnonzero(~blank & ~(sigma > 0))
+    if bad.size:
+        raise InputError(t.source, f"must be > 0, got {sigma[bad[0]]:g}",
+                         row=int(t.numbers[bad[0]]), column="sigma")
+    return np.where(blank, 1.0, sigma)
+
+
+def _from_cells(header, rows, numbers, source, dim, center=None, *, decimal=".", notes=()):
     if not rows:
         raise InputError(source, "has a header but no rows")
-    points = _positions(header, rows, numbers, source, dim, center)
-    if "value" not in header:
+    t = _Cells(header, rows, numbers, source, decimal)
+    points, pos_notes = _positions(t, dim, center)
+    if "value" not in t:
         raise InputError(source, f"missing required column 'value'; found {', '.join(header)}")
-    value = _column(header, rows, numbers, source, "value", allow_blank=True)
-    sigma = None
-    if "sigma" in header:
-        sigma = _column(header, rows, numbers, source, "sigma", allow_blank=True)
-        blank = np.isnan(sigma)
-        if blank.all():
-            sigma = None
-        else:
-            bad = np.flatnonzero(blank & np.isfinite(value))
-            if bad.size:
-                raise InputError(source, "is blank; give sigma for every reading or for none",
-                                 row=int(numbers[bad[0]]), column="sigma")
-            bad = np.flatnonzero(~blank & ~(sigma > 0))
-            if bad.size:
-                raise InputError(source, f"must be > 0, got {sigma[bad[0]]:g}",
-                                 row=int(numbers[bad[0]]), column="sigma")
-            sigma = np.where(blank, 1.0, sigma)
-    if "sensor" in header:
-        j = header.index("sensor")
-        sensor = np.array([r[j] for r in rows], dtype=object)
+    value = t.column("value", allow_blank=True)
+    sigma = _sigma(t, value)
+    check_magnitudes(value, sigma, numbers, source)
+    if "sensor" in t:
+        sensor = t.text("sensor")
         for i in np.flatnonzero(sensor == ""):
             sensor[i] = f"row{numbers[i]}"
-        _check_duplicate_ids(sensor, points, numbers, source)
+        check_sensor_ids(sensor, numbers, source)
     else:
         sensor = np.array([f"row{n}" for n in numbers], dtype=object)
     if not np.isfinite(value).any():
         raise InputError(source, "no usable reading: every 'value' is blank", column="value")
-    return Readings(points, value, sigma, sensor.astype(str), source, numbers)
+    notes = (*notes, *pos_notes, *coincident_notes(points, value, sensor, numbers, source))
+    return Readings(points, value, sigma, sensor.astype(str), source, numbers, tuple(notes))
 
 
-def _check_duplicate_ids(sensor, points, numbers, source):
-    first = {}
-    for i, sid in enumerate(sensor):
-        if sid in first:
-            k = first[sid]
-            atol = 1e-9 * (1 + np.abs(points[k]).max())
-            if not np.allclose(points[i], points[k], rtol=0, atol=atol):
-                raise InputError(
-                    source,
-                    f"sensor '{sid}' appears again at a different position (first at row "
-                    f"{numbers[k]})",
-                    row=int(numbers[i]),
-                    column="sensor",
-                )
-        else:
-            first[sid] = i
-
-
-def _read_with_columns(path, required, dim):
+def _read_with_columns(path, required, dim, sep=None, decimal=None):
     """Read a table that must have rows and the columns ``required`` plus the axes."""
     source = Path(path).name
-    header, rows, numbers = read_table(path, source=source)
+    header, rows, numbers, dialect = read_table(path, source=source, sep=sep, decimal=decimal)
     if not rows:
         raise InputError(source, "has a header but no rows")
     axes = ["x", "y", "z"][:dim]
@@ -240,10 +266,10 @@ def _read_with_columns(path, required, dim):
     if missing:
         raise InputError(source, f"missing required column(s) {', '.join(missing)}; "
                          f"found {', '.join(header)}")
-    return source, header, rows, numbers, axes
+    return _Cells(header, rows, numbers, source, dialect.decimal), axes
 
 
-def load_points(path, *, dim=2):
+def load_points(path, *, dim=2, sep=None, decimal=None):
     """Load POINTS.csv: ``x,y[,z]`` and optional ``label``.
 
     Returns
@@ -252,17 +278,17 @@ def load_points(path, *, dim=2):
     labels : ndarray of str
     rows : ndarray of int
     """
-    source, header, rows, numbers, axes = _read_with_columns(path, [], dim)
-    pts = np.column_stack([_column(header, rows, numbers, source, a) for a in axes])
-    if "label" in header:
-        j = header.index("label")
-        labels = np.array([r[j] or f"p{k + 1}" for k, r in enumerate(rows)], dtype=str)
+    t, axes = _read_with_columns(path, [], dim, sep, decimal)
+    pts = np.column_stack([t.column(a) for a in axes])
+    n = len(t.rows)
+    if "label" in t:
+        labels = np.array([c or f"p{k + 1}" for k, c in enumerate(t.text("label"))], dtype=str)
     else:
-        labels = np.array([f"p{k + 1}" for k in range(len(rows))], dtype=str)
-    return pts, labels, numbers
+        labels = np.array([f"p{k + 1}" for k in range(n)], dtype=str)
+    return pts, labels, t.numbers
 
 
-def load_layout(path, *, dim=2):
+def load_layout(path, *, dim=2, sep=None, decimal=None):
     """Load LAYOUT.csv: ``sensor,x,y[,z][,sigma]``.
 
     Returns
@@ -272,9 +298,9 @@ def load_layout(path, *, dim=2):
     sigma : ndarray or None
     rows : ndarray of int
     """
-    source, header, rows, numbers, axes = _read_with_columns(path, ["sensor"], dim)
-    j = header.index("sensor")
-    sensor = np.array([r[j] for r in rows], dtype=object)
+    t, axes = _read_with_columns(path, ["sensor"], dim, sep, decimal)
+    source, numbers = t.source, t.numbers
+    sensor = t.text("sensor")
     blank = np.flatnonzero(sensor == "")
     if blank.size:
         raise InputError(source, "sensor id is blank", row=int(numbers[blank[0]]), column="sensor")
@@ -284,10 +310,10 @@ def load_layout(path, *, dim=2):
             raise InputError(source, f"sensor '{sid}' is listed twice (first at row {seen[sid]})",
                              row=int(numbers[i]), column="sensor")
         seen[sid] = int(numbers[i])
-    pts = np.column_stack([_column(header, rows, numbers, source, a) for a in axes])
+    pts = np.column_stack([t.column(a) for a in axes])
     sigma = None
-    if "sigma" in header:
-        sigma = _column(header, rows, numbers, source, "sigma")
+    if "sigma" in t:
+        sigma = t.column("sigma")
         bad = np.flatnonzero(~(sigma > 0))
         if bad.size:
             raise InputError(source, f"must be > 0, got {sigma[bad[0]]:g}",

@@ -106,6 +106,8 @@ class TimeReader:
         The log's warnings (appended to: times read as UTC).
     fmt : str, optional
         A named form (:func:`check_time_format`); None: numbers, or ISO 8601 date-times.
+    decimal : str, default="."
+        Decimal mark of numeric times in text cells.
 
     Attributes
     ----------
@@ -113,8 +115,8 @@ class TimeReader:
         Fixed by the first parseable time (``"datetime"`` from the start with ``fmt``).
     """
 
-    def __init__(self, source, warnings, fmt=None):
-        self.source, self.warnings = source, warnings
+    def __init__(self, source, warnings, fmt=None, *, decimal="."):
+        self.source, self.warnings, self.decimal = source, warnings, decimal
         self.fmt = check_time_format(fmt)
         self.time_kind = None if fmt is None else "datetime"
 
@@ -164,7 +166,7 @@ class TimeReader:
         """Per-cell time parsing (slow path): numbers, or ISO 8601 date-times."""
         if self.fmt is not None:
             return parse_times(cells, self.fmt)
-        t, bad, self.time_kind = time_cells(cells, self.time_kind)
+        t, bad, self.time_kind = time_cells(cells, self.time_kind, self.decimal)
         if self.time_kind == "datetime" and _NAIVE.search(str(next(
                 (c for c, b in zip(cells, bad, strict=True) if b == 0), "")) or "~"):
             self.note_naive()

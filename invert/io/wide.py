@@ -23,6 +23,7 @@ import numpy as np
 from ..errors import InputError
 from .arrow import float_values
 from .cells import NULLS, LineCounter, parse_cells
+from .dialect import Dialect, sniff_file
 from .header import header_lines, header_pattern, parse_header
 from .sources import NO_TIME, Chunk, exact_times
 from .times import TimeReader
@@ -67,9 +68,15 @@ class WideLogReader:
     time_format : str, optional
         Read every time cell as a date-time in this form (:mod:`invert.io.times`: an epoch
         unit or a strptime pattern); default: numbers as written, or ISO 8601 date-times.
+    table : SqlTable, optional
+        Read this database table (Arrow record batches) instead of a file.
+    sep, decimal : str, optional
+        Delimiter and decimal mark of a CSV log; detected from its first lines when None
+        (:func:`~invert.io.dialect.sniff_file`; what was assumed goes into ``warnings``).
     """
 
-    def __init__(self, path, sensors, *, chunk_rows=65536, time_format=None, table=None):
+    def __init__(self, path, sensors, *, chunk_rows=65536, time_format=None, table=None,
+                 sep=None, decimal=None):
         self.table = table
         self.path = None if table is not None else Path(path)
         self.source = table.source if table is not None else self.path.name
@@ -79,6 +86,9 @@ class WideLogReader:
             raise InputError(self.source, "file not found")
         # Arrow record batches: a Parquet file, or a table of a database
         self.is_parquet = table is not None or self.path.suffix.lower() in (".parquet", ".pq")
+        self.dialect = Dialect() if self.is_parquet else sniff_file(
+            self.path, self.source, sep=sep, decimal=decimal)
+        self.sep, self.decimal = self.dialect.sep, self.dialect.decimal
         names = self._names()
         self.header = parse_header(names, self.sensors, self.source,
                                    line=None if self.is_parquet else self.skip_rows + 1)
@@ -88,8 +98,8 @@ class WideLogReader:
         seen = {self.sensors[j] for _, j in self.header.columns}
         self.missing_sensors = [s for s in self.sensors if s not in seen]
         self.columns = list(self.header.columns)
-        self.warnings = []
-        self.times = TimeReader(self.source, self.warnings, time_format)
+        self.warnings = list(self.dialect.notes)
+        self.times = TimeReader(self.source, self.warnings, time_format, decimal=self.decimal)
         self._parsers = {}
 
     @property
@@ -116,7 +126,7 @@ class WideLogReader:
                 raise InputError(self.source, f"cannot be read as Parquet ({exc})") from None
         # leading lines starting with '#' are comments (e.g. a SYNTHETIC label)
         self.skip_rows = 0
-        with open(self.path, encoding="utf-8-sig", errors="replace") as fh:
+        with open(self.path, encoding=_text_encoding(self.dialect), errors="replace") as fh:
             first = fh.readline()
             while first.lstrip().startswith("#"):
                 self.skip_rows += 1
@@ -125,7 +135,7 @@ class WideLogReader:
             raise InputError(self.source, "the file is empty (no header)")
         import csv
 
-        return next(csv.reader([first]))
+        return next(csv.reader([first], delimiter=self.sep))
 
     # --- raw batches ---------------------------------------------------------------------------
     def _batches(self):
@@ -168,7 +178,7 @@ class WideLogReader:
         table = parse_piece(piece, first_only=True)
         if table is None or bad:
             raw = bytes(piece)
-            found = header_lines(raw, self._header_re())
+            found = header_lines(raw, self._header_re(), sep=self.sep)
             if found:
                 return self._split_at_headers(raw, lines.before(pos), found, state)
         if table is None:
@@ -212,7 +222,7 @@ class WideLogReader:
 
     def _header_re(self):
         if getattr(self, "_hre", None) is None:
-            self._hre = header_pattern(self.raw_names, self.sensors)
+            self._hre = header_pattern(self.raw_names, self.sensors, sep=self.sep)
         return self._hre
 
     def _csv_parser(self, bad, header):
@@ -226,17 +236,19 @@ class WideLogReader:
 
         names = list(header.raw_names)
         opts = pcsv.ReadOptions(column_names=names, use_threads=True,
-                                block_size=1 << 20, encoding="utf8")
-        parse = pcsv.ParseOptions(invalid_row_handler=on_invalid)
+                                block_size=1 << 20, encoding=self.dialect.encoding)
+        parse = pcsv.ParseOptions(invalid_row_handler=on_invalid, delimiter=self.sep)
         # Without quoting: a stray quote in a cell would otherwise run on over the following
         # lines and swallow them into one field (used only when the rows do not add up).
-        unquoted = pcsv.ParseOptions(invalid_row_handler=on_invalid, quote_char=False)
+        unquoted = pcsv.ParseOptions(invalid_row_handler=on_invalid, quote_char=False,
+                                     delimiter=self.sep)
 
         def convert(time_type, sensor_type):
             types = {n: (time_type if i == header.time_index else sensor_type)
                      for i, n in enumerate(names)}
             return pcsv.ConvertOptions(column_types=types, strings_can_be_null=True,
-                                       null_values=NULLS, quoted_strings_can_be_null=True)
+                                       null_values=NULLS, quoted_strings_can_be_null=True,
+                                       decimal_point=self.decimal)
 
         # Fast path: every column float64 (numeric times). After a failure, the time column as
         # text (numbers or date-times) with float64 sensors, then everything as text (the
@@ -372,7 +384,8 @@ class WideLogReader:
             if not line:
                 continue
             text = line.decode("utf-8", errors="replace")
-            cells = next(csv.reader([text])) if quoted else text.split(",")
+            cells = next(csv.reader([text], delimiter=self.sep)) if quoted else \
+                text.split(self.sep)
             if len(cells) != width:
                 out.append((line0 + i + 1, text, rec))
             rec += 1
@@ -386,7 +399,7 @@ class WideLogReader:
                            for num, _, _ in rows], dtype=object)
         cells = []
         for _, text, _ in rows:
-            parts = (text or "").split(",")
+            parts = (text or "").split(self.sep)
             cells.append(parts[h.time_index].strip() if h.time_index < len(parts) else "")
         t = self.times.cells(np.array(cells, dtype=object))[0]
         return Chunk(np.full(n, -1, np.int64), t, np.full((n, len(self.sensors)), np.nan), reason)
@@ -410,7 +423,7 @@ class WideLogReader:
                     vals = pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False)
                     bad = np.zeros(L, bool)
                 except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
-                    vals, bad = parse_cells(col)
+                    vals, bad = parse_cells(col, self.decimal)
             vals = np.asarray(vals, float)
             nonfinite = np.isinf(vals)
             if bad.any() or nonfinite.any():
@@ -430,6 +443,11 @@ class WideLogReader:
                     reason[i] = (f"unparseable time {str(text[i]).strip()!r}" if tbad[i] == 1
                                  else "missing time")
         return Chunk(np.arange(start, start + L, dtype=np.int64), t, Y, reason)
+
+def _text_encoding(dialect):
+    """Python codec name for reading the header line (a UTF-8 BOM dropped)."""
+    return "utf-8-sig" if dialect.encoding == "utf-8" else dialect.encoding
+
 
 def _concat(*parts):
     ts = [c.t for c in parts]
