@@ -125,7 +125,9 @@ def describe_choice(summary):
 
 
 def _write_csv(frame, path):
-    frame.to_csv(path, index=False, float_format="%.10g")
+    from ..io.writers import write_csv_frame  # text cells made spreadsheet-safe
+
+    write_csv_frame(frame, path)
 
 
 def write_fit_outputs(stage_dir, estimate, problem, readings, *, level=0.9, query=None,

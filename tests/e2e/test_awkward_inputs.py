@@ -434,3 +434,14 @@ def test_out_as_a_mount_point_is_refused_before_computing(tmp_path, capsys):
                                                   tmp_path.iterdir())
     finally:
         subprocess.run(["umount", str(mnt)], capture_output=True)
+
+
+def test_fit_query_labels_are_spreadsheet_safe(tmp_path):
+    # OWASP "CSV Injection": a text cell starting with = + - @ is written with a leading quote
+    q = tmp_path / "q.csv"
+    q.write_text('label,x,y\n"=HYPERLINK(""x"")",0.0,0.0\n-3.2,0.1,0.0\n')
+    out = tmp_path / "o"
+    assert main(["fit", str(DATA / "demo_readings.csv"), "--radius", "0.25", "--out", str(out),
+                 "--query", str(q)]) == 0
+    text = (out / "query.csv").read_text()
+    assert "'=HYPERLINK" in text and "\n=HYPERLINK" not in text
