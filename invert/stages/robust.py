@@ -20,10 +20,11 @@ faulty sensors (:func:`mixture_em`)
     :math:`\sigma_{bad} = \max(\operatorname{sd}(y), 10\,\sigma)`). The E-step gives each
     reading's fault probability from its exact leave-one-out predictive density
     :math:`N(y_i\mid\mu_{-i}, v_{-i} + \cdot)` (Sundararajan & Keerthi 2001 [2]_); the M-step
-    refits the stage (hyperparameters re-chosen) on the readings more likely good than faulty
+    refits the stage (hyperparameters re-chosen) on the readings not flagged as faulty
     (classification EM, Celeux & Govaert 1992 [3]_; a faulty reading's soft weight
     :math:`\sigma^2/\sigma_{bad}^2 \le 1/100` is nearly zero anyway). When no reading has a
-    fault probability above :data:`FLAG_PROBABILITY` the ordinary fit is returned unchanged.
+    fault probability above :data:`FLAG_PROBABILITY` (0.9) the ordinary fit is returned
+    unchanged.
 
 References
 ----------
@@ -60,11 +61,13 @@ RANGE_LIMIT = 50.0
 #: Prior probability that a reading is faulty: the prior mean of the fault rate of
 #: ``--method mcmc --faulty`` (Beta(20 r, 20 (1 - r)), r = 0.05).
 FAULT_RATE = 0.05
-#: Fault probability above which a reading is named and left out of the refit: the Bayes rule
-#: between good and faulty under 0-1 loss, and the level at which the MCMC stage names a
-#: sensor. With sigma_bad = 10 sigma it is crossed at |z| = 3.26, i.e. by 3 % of clean rings of
-#: 28 sensors (measured in tests/statistical/test_robust_calibration.py).
-FLAG_PROBABILITY = 0.5
+#: Fault probability above which a reading is named and left out of the refit (posterior odds
+#: 9 : 1 for faulty). With sigma_bad = 10 sigma and the prior 0.05 it is crossed at a
+#: leave-one-out |z| of 3.9: by chance for 1e-4 of clean readings, i.e. about 0.3 % of clean
+#: rings of 28 sensors and 1 % of 100 (the MCMC stage's naming level 0.5, |z| = 3.26, would
+#: name a sensor in 3 % of clean rings of 28; measured in
+#: tests/statistical/test_robust_calibration.py). Below it the ordinary fit is returned as is.
+FLAG_PROBABILITY = 0.9
 #: Iterations of the classification EM (it stops as soon as the flagged set repeats).
 MAX_EM_ITER = 10
 #: Refits per gross-error round are limited to this many candidates (large problems).
@@ -133,7 +136,7 @@ def fault_probabilities(y, mean, var_signal, var_noise, sigma_bad, rate=FAULT_RA
 
 
 def without(problem, drop):
-    """The problem without the readings ``drop`` (bool mask); they become gaps on record."""
+    """Return the problem without the readings ``drop`` (bool mask), kept on record as gaps."""
     drop = np.asarray(drop, bool)
     sub = problem.subset(~drop)
     if not drop.any():
@@ -217,7 +220,7 @@ def screen_gross(problem, fit_fn, *, z_limit=Z_GROSS, max_fraction=0.25):
 
 
 def sigma_bad_for(estimate, problem):
-    """sd of a faulty reading: the larger of the readings' sd and 10 times the typical noise.
+    """Return the sd of a faulty reading: the larger of sd(y) and 10 times the typical noise.
 
     As ``--method mcmc --faulty`` sets it (:mod:`invert.stages.mcmc.augmented`).
     """
