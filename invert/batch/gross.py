@@ -5,8 +5,8 @@ A cell whose whitened residual from its frame's fit exceeds
 a spike). The residual is smaller than the leave-one-out error (it is :math:`(1-h_i)` times
 it), so the test is conservative: under the model a clean cell passes it with probability
 below 1.5e-23. The frame is solved again without the cell (a new drop-out pattern), stays
-``ok`` and names the cell in its ``reason``. The test is repeated once, in case a second gross
-cell was hidden by the first.
+``ok`` and names the cell in its ``reason``. One cell per frame is dropped at a time (the worst),
+up to :data:`ROUNDS` times.
 """
 
 from __future__ import annotations
@@ -15,15 +15,32 @@ import numpy as np
 
 from ..stages.robust import Z_GROSS
 
-__all__ = ["drop_gross_cells", "gross_mask"]
+__all__ = ["drop_gross_cells", "gross_mask", "by_sensor"]
 
-#: Rounds of drop-and-resolve per chunk.
-ROUNDS = 2
+#: Rounds of drop-and-resolve per chunk (at most this many gross cells per frame).
+ROUNDS = 3
 
 
 def gross_mask(residual, noise_var, observed, z_limit=Z_GROSS):
-    """Cells whose whitened residual is beyond ``z_limit`` noise sd (observed cells only)."""
-    return observed & (np.abs(residual) > z_limit * np.sqrt(noise_var))
+    """The worst cell of each frame, where its whitened residual is beyond ``z_limit`` noise sd.
+
+    One cell per frame and round: a -9999 sentinel drags the fit so far that every residual of
+    its frame is large; the sentinel's is the largest.
+    """
+    a = np.where(observed, np.abs(residual), -np.inf)
+    worst = np.argmax(a, axis=1) if a.size else np.zeros(len(a), int)
+    bad = np.zeros(a.shape, bool)
+    rows = np.arange(len(a))
+    bad[rows, worst] = a[rows, worst] > z_limit * np.sqrt(noise_var)
+    return bad
+
+
+def by_sensor(residual, observed):
+    """Residuals in sensor columns: the solver lists a frame's observed sensors first, in order."""
+    order = np.argsort(~observed, axis=1, kind="stable")
+    out = np.zeros(residual.shape)
+    out[np.arange(len(residual))[:, None], order] = residual
+    return np.where(observed, out, 0.0)
 
 
 def _names(inverter, n):
@@ -53,11 +70,12 @@ def drop_gross_cells(inverter, Y, reason):
     Y = np.array(Y, float)
     reason = np.array(reason, dtype=object)
     res, n_new, resid = inverter._solve(Y, residuals=True)
+    resid = by_sensor(resid, np.isfinite(Y))
     names = _names(inverter, Y.shape[1])
     for _ in range(ROUNDS):
         bad = gross_mask(resid, inverter.noise_var, np.isfinite(Y))
-        rows = np.flatnonzero(bad.any(axis=1) & (np.isfinite(Y).sum(axis=1)
-                                                  - bad.sum(axis=1) >= 2))
+        left = np.isfinite(Y).sum(axis=1) - bad.sum(axis=1)
+        rows = np.flatnonzero(bad.any(axis=1) & (left >= 2))
         if not rows.size:
             break
         w = np.sqrt(inverter.noise_var)
@@ -73,5 +91,5 @@ def drop_gross_cells(inverter, Y, reason):
         n_new += k
         for a, b in zip(res, part, strict=True):
             a[rows] = b
-        resid[rows] = r2
+        resid[rows] = by_sensor(r2, np.isfinite(sub))
     return res, n_new, reason, np.isfinite(Y).sum(axis=1)
