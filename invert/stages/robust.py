@@ -1,30 +1,32 @@
 r"""Gross-error screening and the good/faulty sensor mixture for the default fit.
 
-Two steps wrap any stage fit ``fit_fn(problem) -> Estimate`` (the assembly layer passes the
-default Tikhonov stage):
+Both treatments wrap any stage fit ``fit_fn(problem) -> Estimate`` (the assembly layer passes
+the default Tikhonov stage) and share one step (:func:`screen`): every reading is predicted
+from the *other* readings by refitting the stage without it, hyperparameters re-chosen (exact
+leave-one-out refits). Re-choosing matters: one -9999 sentinel among rim readings makes the
+evidence prefer an interpolating fit with a huge prior scale, under which the sentinel looks
+plausible (and a faulty sensor inflates the prior scale so that it hides itself); without it
+the rest predicts it sharply.
 
-gross errors (:func:`screen_gross`)
-    A reading is a gross error when it lies more than :data:`Z_GROSS` predictive sd from what
-    the *other* readings predict, with the hyperparameters re-chosen on those others (exact
-    leave-one-out refits). Re-choosing matters: one -9999 sentinel among rim readings makes the
-    evidence prefer an interpolating fit with a huge prior scale, under which the sentinel
-    looks plausible; without it the rest predicts it sharply. The worst reading is excluded and
-    the search repeated (backward deletion). Values far outside the spread of the rest (more
-    than :data:`RANGE_LIMIT` robust sd from the median) are first tested together, so that two
-    sentinels do not hide each other.
-faulty sensors (:func:`mixture_em`)
+gross errors
+    A reading more than :data:`Z_GROSS` predictive sd from that prediction. Values far outside
+    the spread of the rest (more than :data:`RANGE_LIMIT` robust sd from the median) are first
+    tested together, so that two sentinels do not hide each other.
+faulty sensors
     Each reading is good, :math:`N(y_i\mid g_i^\top c, \sigma_i^2)`, or faulty,
     :math:`N(y_i\mid g_i^\top c, \sigma_{bad}^2)`, with prior fault probability
     :data:`FAULT_RATE` — the model of ``--method mcmc --faulty`` (Hogg, Bovy & Lang 2010 [1]_,
     :mod:`invert.stages.mcmc.augmented`: the prior mean of its fault rate and the same
     :math:`\sigma_{bad} = \max(\operatorname{sd}(y), 10\,\sigma)`). The E-step gives each
-    reading's fault probability from its exact leave-one-out predictive density
-    :math:`N(y_i\mid\mu_{-i}, v_{-i} + \cdot)` (Sundararajan & Keerthi 2001 [2]_); the M-step
-    refits the stage (hyperparameters re-chosen) on the readings not flagged as faulty
-    (classification EM, Celeux & Govaert 1992 [3]_; a faulty reading's soft weight
-    :math:`\sigma^2/\sigma_{bad}^2 \le 1/100` is nearly zero anyway). When no reading has a
-    fault probability above :data:`FLAG_PROBABILITY` (0.9) the ordinary fit is returned
-    unchanged.
+    reading's fault probability from its leave-one-out predictive density
+    :math:`N(y_i\mid\mu_{-i}, v_{-i} + \sigma_i^2)` against :math:`N(y_i\mid\mu_{-i}, v_{-i} +
+    \sigma_{bad}^2)` (Sundararajan & Keerthi 2001 [2]_ for the predictive); the M-step refits
+    the stage on the readings not flagged (classification EM, Celeux & Govaert 1992 [3]_; the
+    soft weight of a faulty reading, :math:`\sigma^2/\sigma_{bad}^2 \le 1/100`, is nearly zero
+    anyway), one reading at a time (the worst, backward deletion).
+
+When no reading is a gross error and none has a fault probability above
+:data:`FLAG_PROBABILITY` the ordinary fit is returned unchanged.
 
 References
 ----------
@@ -46,7 +48,7 @@ import numpy as np
 from ..errors import FitWarning
 
 __all__ = ["Z_GROSS", "RANGE_LIMIT", "FAULT_RATE", "FLAG_PROBABILITY", "loo_predictive",
-           "predictive", "fault_probabilities", "without", "screen_gross", "mixture_em",
+           "predictive", "fault_probabilities", "without", "screen", "sigma_bad_for",
            "robust_fit"]
 
 #: Predictive sd beyond which a reading is a gross error. Under the model the leave-one-out
@@ -68,8 +70,6 @@ FAULT_RATE = 0.05
 #: name a sensor in 3 % of clean rings of 28; measured in
 #: tests/statistical/test_robust_calibration.py). Below it the ordinary fit is returned as is.
 FLAG_PROBABILITY = 0.9
-#: Iterations of the classification EM (it stops as soon as the flagged set repeats).
-MAX_EM_ITER = 10
 #: Refits per gross-error round are limited to this many candidates (large problems).
 MAX_CANDIDATES = 64
 
@@ -156,14 +156,13 @@ def _quiet(fit_fn, problem):
         return fit_fn(problem)
 
 
-def _z_from_rest(fit_fn, problem, keep, i):
-    """Standardised error of reading i predicted by the kept readings other than i."""
+def _from_rest(fit_fn, problem, keep, i):
+    """Predictive mean, signal and noise variance of reading i from the kept others (a refit)."""
     rest = keep.copy()
     rest[i] = False
     est = _quiet(fit_fn, problem.subset(rest))
-    one = problem.subset(np.array([i]))
-    mu, var, nv = predictive(est, one)
-    return float((problem.y[i] - mu[0]) / np.sqrt(var[0] + nv[0]))
+    mu, var, nv = predictive(est, problem.subset(np.array([i])))
+    return est, float(mu[0]), float(var[0]), float(nv[0])
 
 
 def _range_candidates(problem, keep):
@@ -176,27 +175,9 @@ def _range_candidates(problem, keep):
     return keep & (np.abs(y - med) > RANGE_LIMIT * scale)
 
 
-def screen_gross(problem, fit_fn, *, z_limit=Z_GROSS, max_fraction=0.25):
-    """Find gross errors by leave-one-out refits (module Notes).
-
-    Parameters
-    ----------
-    problem : LinearProblem
-    fit_fn : callable
-        ``fit_fn(problem) -> Estimate`` (the stage, hyperparameters chosen on each call).
-    z_limit : float, default=Z_GROSS
-    max_fraction : float, default=0.25
-        At most this share of the readings is excluded (and always 4 readings are kept).
-
-    Returns
-    -------
-    dict
-        Index of each excluded reading -> its standardised error from the rest.
-    """
-    m = problem.n_readings
-    keep = np.ones(m, bool)
+def _range_screen(problem, fit_fn, keep, limit, z_limit):
+    """Values far outside the spread of the rest, tested together against the others' fit."""
     found = {}
-    limit = min(int(max_fraction * m), m - 4)
     cand = _range_candidates(problem, keep)
     if 0 < cand.sum() <= limit:
         est = _quiet(fit_fn, problem.subset(~cand))
@@ -205,18 +186,77 @@ def screen_gross(problem, fit_fn, *, z_limit=Z_GROSS, max_fraction=0.25):
         for i in np.flatnonzero(cand & (np.abs(z) > z_limit)):
             found[int(i)] = float(z[i])
             keep[i] = False
-    while len(found) < limit:
-        idx = np.flatnonzero(keep)
-        if idx.size > MAX_CANDIDATES:  # large problems: the most extreme values only
-            dev = np.abs(problem.y[idx] - np.median(problem.y[idx]))
-            idx = idx[np.argsort(-dev)[:MAX_CANDIDATES]]
-        z = np.array([_z_from_rest(fit_fn, problem, keep, i) for i in idx])
-        j = int(np.argmax(np.abs(z)))
-        if not abs(z[j]) > z_limit:
-            break
-        found[int(idx[j])] = float(z[j])
-        keep[idx[j]] = False
     return found
+
+
+def _candidates(problem, keep):
+    idx = np.flatnonzero(keep)
+    if idx.size > MAX_CANDIDATES:  # large problems: the most extreme values only
+        dev = np.abs(problem.y[idx] - np.median(problem.y[idx]))
+        idx = idx[np.argsort(-dev)[:MAX_CANDIDATES]]
+    return idx
+
+
+def screen(problem, fit_fn, *, z_limit=Z_GROSS, threshold=FLAG_PROBABILITY, rate=FAULT_RATE,
+           max_fraction=0.25):
+    """Gross errors and faulty readings by leave-one-out refits (module Notes).
+
+    Each round refits the stage without each kept reading in turn (hyperparameters re-chosen
+    on the others) and takes the reading's predictive density from that fit; the worst reading
+    is excluded if it is a gross error (``|z| > z_limit``) or else probably faulty (fault
+    probability above ``threshold``), and the round repeated (backward deletion, one reading
+    at a time, so that one bad reading does not drag others out with it).
+
+    Parameters
+    ----------
+    problem : LinearProblem
+    fit_fn : callable
+        ``fit_fn(problem) -> Estimate`` (the stage, hyperparameters chosen on each call).
+    z_limit : float, default=Z_GROSS
+    threshold : float, default=FLAG_PROBABILITY
+    rate : float, default=FAULT_RATE
+    max_fraction : float, default=0.25
+        At most this share of the readings is excluded (and always 4 readings are kept).
+
+    Returns
+    -------
+    gross : dict
+        Index of each gross error -> its standardised error from the rest.
+    faulty : list of int
+        Indices of the readings excluded as probably faulty, in the order found.
+    probability : ndarray of shape (m,)
+        Fault probability of each kept reading from the last round (NaN for excluded ones).
+    """
+    m = problem.n_readings
+    keep = np.ones(m, bool)
+    limit = max(min(int(max_fraction * m), m - 4), 0)
+    gross = _range_screen(problem, fit_fn, keep, limit, z_limit)
+    faulty = []
+    prob = np.full(m, np.nan)
+    while True:
+        idx = _candidates(problem, keep)
+        rows = [_from_rest(fit_fn, problem, keep, i) for i in idx]
+        if not rows:
+            break
+        mu, var, nv = (np.array([r[k] for r in rows]) for k in (1, 2, 3))
+        y = problem.y[idx]
+        z = (y - mu) / np.sqrt(var + nv)
+        # the typical noise level from the refit without the worst reading (the cleanest)
+        sigma_bad = sigma_bad_for(rows[int(np.argmax(np.abs(z)))][0], problem.subset(keep))
+        prob[:] = np.nan
+        prob[idx] = fault_probabilities(y, mu, var, nv, sigma_bad, rate)
+        if len(gross) + len(faulty) >= limit:
+            break
+        j = int(np.argmax(np.abs(z)))
+        if abs(z[j]) > z_limit:
+            gross[int(idx[j])] = float(z[j])
+        elif prob[idx].max() > threshold:
+            j = int(np.argmax(prob[idx]))
+            faulty.append(int(idx[j]))
+        else:
+            break
+        keep[idx[j]] = False
+    return gross, faulty, prob
 
 
 def sigma_bad_for(estimate, problem):
@@ -229,106 +269,46 @@ def sigma_bad_for(estimate, problem):
     return max(float(np.std(problem.y)), 10.0 * typical)
 
 
-def _responsibilities(estimate, problem, flagged, sigma_bad, rate):
-    """Fault probabilities: kept readings by leave-one-out, left-out ones by prediction."""
-    kept = problem.subset(~flagged)
-    out = np.empty(problem.n_readings)
-    mu, v, nv = loo_predictive(estimate, kept)
-    out[~flagged] = fault_probabilities(kept.y, mu, v, nv, sigma_bad, rate)
-    if flagged.any():
-        left = problem.subset(flagged)
-        mu, v, nv = predictive(estimate, left)
-        out[flagged] = fault_probabilities(left.y, mu, v, nv, sigma_bad, rate)
-    return out
-
-
-def mixture_em(problem, fit_fn, estimate=None, *, rate=FAULT_RATE,
-               threshold=FLAG_PROBABILITY, max_iter=MAX_EM_ITER):
-    """Classification EM for the good/faulty mixture (module Notes).
-
-    Parameters
-    ----------
-    problem : LinearProblem
-    fit_fn : callable
-        ``fit_fn(problem) -> Estimate``.
-    estimate : Estimate, optional
-        The ordinary fit of ``problem`` (computed when omitted).
-    rate : float, default=FAULT_RATE
-    threshold : float, default=FLAG_PROBABILITY
-    max_iter : int, default=MAX_EM_ITER
-
-    Returns
-    -------
-    estimate : Estimate
-        The ordinary fit (the very object) when nothing is flagged, else the refit without the
-        flagged readings.
-    probability : ndarray of shape (m,)
-        Fault probability of every reading.
-    flagged : ndarray of bool
-    """
-    est = estimate if estimate is not None else _quiet(fit_fn, problem)
-    sigma_bad = sigma_bad_for(est, problem)
-    flagged = np.zeros(problem.n_readings, bool)
-    prob = _responsibilities(est, problem, flagged, sigma_bad, rate)
-    if not (prob > threshold).any():
-        return est, prob, flagged
-    seen = set()
-    most = max(problem.n_readings - 4, 0)
-    for _ in range(max_iter):
-        new = prob > threshold
-        if new.sum() > most:  # keep the readings most likely good
-            new = np.zeros_like(new)
-            new[np.argsort(-prob)[:most]] = True
-        key = new.tobytes()
-        if key in seen:
-            break
-        seen.add(key)
-        flagged = new
-        est = _quiet(fit_fn, problem.subset(~flagged))
-        prob = _responsibilities(est, problem, flagged, sigma_bad, rate)
-    return est, prob, flagged
-
-
 def robust_fit(problem, fit_fn):
-    """Gross-error screening, then the faulty-sensor mixture, around ``fit_fn``.
+    """Gross-error and faulty-reading screening around ``fit_fn`` (module Notes).
 
     Returns
     -------
     estimate : Estimate
         With warnings naming each excluded reading and ``info["robust"]`` (what was done).
-        The ordinary estimate, unchanged, when nothing is excluded.
+        The ordinary estimate ``fit_fn(problem)``, unchanged, when nothing is excluded.
     problem : LinearProblem
         The problem the estimate was fitted to (excluded readings moved to the gaps).
     """
-    gross = screen_gross(problem, fit_fn) if problem.n_readings >= 6 else {}
+    if problem.n_readings < 6:
+        return fit_fn(problem), problem
+    gross, faulty, prob = screen(problem, fit_fn)
+    if not gross and not faulty:
+        return fit_fn(problem), problem
     drop = np.zeros(problem.n_readings, bool)
-    drop[list(gross)] = True
-    base = without(problem, drop)
-    first = fit_fn(base)
-    est, prob, flagged = mixture_em(base, fit_fn, first)
-    if not gross and not flagged.any():
-        return first, problem
+    drop[list(gross) + faulty] = True
+    final = without(problem, drop)
+    est = fit_fn(final)  # with its own warnings, as an ordinary fit
     sensors = np.asarray(problem.sensor).astype(str)
+    if faulty:  # the probability of each excluded faulty reading given the final fit
+        mu, var, nv = predictive(est, problem.subset(np.array(faulty)))
+        prob[faulty] = fault_probabilities(problem.y[faulty], mu, var, nv,
+                                           sigma_bad_for(est, final), FAULT_RATE)
     notes = [f"reading of sensor {sensors[i]} ({problem.y[i]:.6g}) lies {abs(z):.3g} "
              f"predictive sd from what the other readings allow: excluded as a gross error "
              f"(a sentinel value, a unit slip or a spike?)" for i, z in sorted(gross.items())]
-    names = np.asarray(base.sensor).astype(str)
-    notes += [f"sensor {names[i]} is probably faulty (fault probability {prob[i]:.3g} under "
-              f"the good/faulty mixture): its reading ({base.y[i]:.6g}) was left out of the fit"
-              for i in np.flatnonzero(flagged)]
-    final = without(base, flagged)
-    if flagged.any():
-        est = fit_fn(final)  # with its own warnings, as an ordinary fit
+    notes += [f"sensor {sensors[i]} is probably faulty (fault probability {prob[i]:.3g} under "
+              f"the good/faulty mixture): its reading ({problem.y[i]:.6g}) was left out of "
+              f"the fit" for i in faulty]
     for n in notes:
         warnings.warn(n, FitWarning, stacklevel=2)
     info = dict(est.info)
     info["robust"] = {
         "gross_errors": {sensors[i]: float(z) for i, z in sorted(gross.items())},
-        "faulty": {names[i]: float(prob[i]) for i in np.flatnonzero(flagged)},
-        "fault_probability_max": float(prob.max()) if prob.size else 0.0,
-        "method": "gross errors by leave-one-out refits (|z| > 10); good/faulty mixture by "
-                  "classification EM (fault prior 0.05, sd of a faulty reading "
-                  "max(sd(y), 10 noise sd))",
+        "faulty": {sensors[i]: float(prob[i]) for i in faulty},
+        "method": f"leave-one-out refits: gross error if |z| > {Z_GROSS:g}; good/faulty "
+                  f"mixture (fault prior {FAULT_RATE:g}, sd of a faulty reading max(sd(y), "
+                  f"10 noise sd)), faulty if its probability > {FLAG_PROBABILITY:g}",
     }
     est = dataclasses.replace(est, info=info, warnings=tuple(est.warnings) + tuple(notes))
     return est, final
