@@ -44,6 +44,7 @@ import dataclasses
 import warnings
 
 import numpy as np
+from scipy import stats
 
 from ..errors import FitWarning
 
@@ -121,17 +122,25 @@ def loo_predictive(estimate, problem):
         return problem.y - r / (1 - h), nv * h / (1 - h), nv
 
 
-def fault_probabilities(y, mean, var_signal, var_noise, sigma_bad, rate=FAULT_RATE):
+def fault_probabilities(y, mean, var_signal, var_noise, sigma_bad, rate=FAULT_RATE, df=None):
     """Posterior probability that each reading is faulty (Hogg, Bovy & Lang 2010, eq. 17).
 
     ``rate N(y | mean, v + sigma_bad^2) / [rate N(. | ., v + sigma_bad^2)
-    + (1 - rate) N(y | mean, v + var_noise)]``, computed in logs.
+    + (1 - rate) N(y | mean, v + var_noise)]``, computed in logs. With ``df`` (the noise level
+    estimated from the readings on ``df`` residual dof) the good component is the Student-t
+    predictive of that plug-in (Gelman et al., *Bayesian Data Analysis*, 3rd ed., §3.2): the
+    Gaussian one names a clean sensor in about 10 % of rings of 28 (measured).
     """
-    d2 = (np.asarray(y) - mean) ** 2
+    d = np.asarray(y, float) - mean
     vg = var_signal + var_noise
     vb = var_signal + sigma_bad**2
-    lg = np.log1p(-rate) - 0.5 * (np.log(vg) + d2 / vg)
-    lb = np.log(rate) - 0.5 * (np.log(vb) + d2 / vb)
+    if df is None:
+        lg = -0.5 * (np.log(vg) + d**2 / vg)
+    else:
+        sd = np.sqrt(vg)
+        lg = stats.t.logpdf(d / sd, df) - np.log(sd) + 0.5 * np.log(2 * np.pi)
+    lg = lg + np.log1p(-rate)
+    lb = np.log(rate) - 0.5 * (np.log(vb) + d**2 / vb)
     return np.exp(lb - np.logaddexp(lg, lb))
 
 
@@ -162,7 +171,7 @@ def _from_rest(fit_fn, problem, keep, i):
     rest[i] = False
     est = _quiet(fit_fn, problem.subset(rest))
     mu, var, nv = predictive(est, problem.subset(np.array([i])))
-    return est, float(mu[0]), float(var[0]), float(nv[0])
+    return est, float(mu[0]), float(var[0]), float(nv[0]), est.df
 
 
 def _range_candidates(problem, keep):
@@ -244,7 +253,8 @@ def screen(problem, fit_fn, *, z_limit=Z_GROSS, threshold=FLAG_PROBABILITY, rate
         # the typical noise level from the refit without the worst reading (the cleanest)
         sigma_bad = sigma_bad_for(rows[int(np.argmax(np.abs(z)))][0], problem.subset(keep))
         prob[:] = np.nan
-        prob[idx] = fault_probabilities(y, mu, var, nv, sigma_bad, rate)
+        df = None if problem.sigma is not None else np.array([r[4] or np.inf for r in rows])
+        prob[idx] = fault_probabilities(y, mu, var, nv, sigma_bad, rate, df)
         if len(gross) + len(faulty) >= limit:
             break
         j = int(np.argmax(np.abs(z)))
@@ -293,7 +303,7 @@ def robust_fit(problem, fit_fn):
     if faulty:  # the probability of each excluded faulty reading given the final fit
         mu, var, nv = predictive(est, problem.subset(np.array(faulty)))
         prob[faulty] = fault_probabilities(problem.y[faulty], mu, var, nv,
-                                           sigma_bad_for(est, final), FAULT_RATE)
+                                           sigma_bad_for(est, final), FAULT_RATE, est.df)
     notes = [f"reading of sensor {sensors[i]} ({problem.y[i]:.6g}) lies {abs(z):.3g} "
              f"predictive sd from what the other readings allow: excluded as a gross error "
              f"(a sentinel value, a unit slip or a spike?)" for i, z in sorted(gross.items())]
