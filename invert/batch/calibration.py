@@ -52,9 +52,13 @@ class _Pooled:
         """Maximise the pooled evidence over the frames ``rows`` (bool mask)."""
         n, m, known = int(rows.sum()), self.m, self.known
 
+        B2, rsum = self.B[:, rows] ** 2, self.rperp[rows].sum()
+
         def score(alpha):
-            q, logdet = self.quads(alpha, rows)
-            quad = q.sum(axis=1)
+            alpha = np.atleast_1d(alpha)
+            g = 1 + self.spec.s[:, None] ** 2 / alpha[None, :]
+            quad = np.einsum("kn,ka->a", B2, 1 / g) + rsum
+            logdet = np.sum(np.log(g), axis=0)
             if known:
                 return -0.5 * (quad + n * logdet)
             return -0.5 * (n * m * np.log(quad / (n * m)) + n * logdet)
@@ -64,7 +68,9 @@ class _Pooled:
         alpha = float(np.exp(la))
         if known:
             return alpha, None
-        return alpha, float(np.sqrt(self.quads(alpha, rows)[0].sum() / (n * m)))
+        g = 1 + self.spec.s**2 / alpha
+        quad = float(np.sum(B2 / g[:, None]) + rsum)
+        return alpha, float(np.sqrt(quad / (n * m)))
 
 
 def pooled_evidence_fit(G, Y, sigma, prior_sd, *, n_grid=200):

@@ -35,7 +35,8 @@ def test_fit_names_the_sentinel_and_keeps_the_rim_sane(tmp_path):
     s = json.loads((tmp_path / "b" / "summary.json").read_text())
     assert any("sensor T03 (-9999)" in w and "gross error" in w for w in s["warnings"])
     assert s["robust"]["gross_errors"].keys() == {"T03"}
-    assert "Excluded before the check: T03" in s["diagnostics"]["model_check"]["verdict"]
+    assert "Excluded before the check (gross errors): T03." in \
+        s["diagnostics"]["model_check"]["verdict"]
     assert s["residual_dof"] > 3  # not an interpolating fit
     b = pd.read_csv(tmp_path / "b" / "boundary.csv")
     c = pd.read_csv(tmp_path / "c" / "boundary.csv")

@@ -95,7 +95,7 @@ def test_a_sentinel_is_excluded_and_named(ring, known):
     assert "r5" in used.gap_sensor and used.n_readings == 27
     # the check says what it left out
     check = model_check(est, used)
-    assert "Excluded before the check: r5 (gross error)" in check.verdict
+    assert "Excluded before the check (gross errors): r5." in check.verdict
 
 
 def test_two_sentinels_do_not_hide_each_other(ring):
@@ -119,10 +119,14 @@ def test_faulty_sensor_probability_is_the_mixture_given_the_others(ring):
     y[9] += 15 * 0.05
     bad = dataclasses.replace(pb, y=y)
     with pytest.warns(UserWarning, match="sensor r9 is probably faulty"):
-        est, _ = robust_stage(bad, "tikhonov", rule="evidence")
+        est, used = robust_stage(bad, "tikhonov", rule="evidence")
     keep = np.arange(28) != 9
     ref = _ordinary(bad.subset(keep))
     np.testing.assert_allclose(est.mean, ref.mean, rtol=1e-12, atol=1e-12)
+    # the check still sees the faulty reading (only gross errors leave it)
+    assert used.n_readings == 28
+    assert "Left out of the fit as probably faulty (kept in this check): r9" in \
+        model_check(est, used).verdict
     g = bad.G[9]
     m, v = g @ ref.mean, g @ ref.cov @ g
     sb = max(np.std(bad.y[keep]), 10 * 0.05)
