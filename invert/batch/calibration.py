@@ -51,8 +51,9 @@ class _Pooled:
     def fit(self, rows, n_grid):
         """Maximise the pooled evidence over the frames ``rows`` (bool mask)."""
         n, m, known = int(rows.sum()), self.m, self.known
-
-        B2, rsum = self.B[:, rows] ** 2, self.rperp[rows].sum()
+        # all frames: the arrays as they are (a gathered copy sums in another order)
+        B, rperp = (self.B, self.rperp) if rows.all() else (self.B[:, rows], self.rperp[rows])
+        B2, rsum = B**2, rperp.sum()
 
         def score(alpha):
             alpha = np.atleast_1d(alpha)

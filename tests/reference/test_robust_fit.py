@@ -175,9 +175,10 @@ def _frames(rng, d, pts, n, sigma):
 @pytest.mark.parametrize("known", [True, False])
 def test_pooled_hyperparameters_ignore_a_frame_with_a_sentinel(ring, known):
     # One -9999 cell among 200 x 28: the robust pooled fit must equal the plain pooled fit on
-    # the 199 clean frames (the same search on the same data: 1e-12), and on clean frames the
-    # plain fit on all of them (a frame is wrongly left out with probability 1e-3 by
-    # construction of the Bonferroni level).
+    # the 199 clean frames (the same search on the same numbers gathered in another memory
+    # order: the evidence maximum is flat, so summation-order rounding moves the refined
+    # lam by ~1e-7 relative; 1e-6), and on clean frames the plain fit on all of them exactly
+    # (a frame is wrongly left out with probability 1e-3 by the Bonferroni level).
     d, pts, _, rng = ring
     Y, prior_sd = _frames(rng, d, pts, 200, 0.05)
     G = d.design(pts)
@@ -185,15 +186,14 @@ def test_pooled_hyperparameters_ignore_a_frame_with_a_sentinel(ring, known):
     clean = pooled_evidence_fit(G, Y, sigma, prior_sd)
     got = robust_pooled_fit(G, Y, sigma, prior_sd)
     assert got[2].all()
-    np.testing.assert_allclose(got[:2] if not known else got[:1], clean if not known
-                               else clean[:1], rtol=1e-12)
+    assert got[:2] == clean
     Y[40, 6] = -9999.0
     lam, nsd, kept = robust_pooled_fit(G, Y, sigma, prior_sd)
     assert np.flatnonzero(~kept).tolist() == [40]
     ref = pooled_evidence_fit(G, np.delete(Y, 40, axis=0), sigma, prior_sd)
-    assert lam == pytest.approx(ref[0], rel=1e-12)
+    assert lam == pytest.approx(ref[0], rel=1e-6)
     if not known:
-        assert nsd == pytest.approx(ref[1], rel=1e-12)
+        assert nsd == pytest.approx(ref[1], rel=1e-6)
 
 
 def test_batch_residuals_by_sensor_and_gross_cell_dropped(ring):
