@@ -9,9 +9,12 @@ plausible (and a faulty sensor inflates the prior scale so that it hides itself)
 the rest predicts it sharply.
 
 gross errors
-    A reading more than :data:`Z_GROSS` predictive sd from that prediction. Values far outside
-    the spread of the rest (more than :data:`RANGE_LIMIT` robust sd from the median) are first
-    tested together, so that two sentinels do not hide each other.
+    A reading more than :data:`Z_GROSS` predictive sd from that prediction whose value also
+    lies more than :data:`RANGE_LIMIT` robust sd from the median of the readings (the two
+    conditions batch applies per frame, :mod:`invert.batch.gross`). A feature of the field (a
+    line source just outside the rim, a step) can put one sensor 10 predictive sd out, but
+    not outside the span of the ring; such a reading is judged by the mixture instead. Values
+    that far out are first tested together, so that two sentinels do not hide each other.
 faulty sensors
     Each reading is good, :math:`N(y_i\mid g_i^\top c, \sigma_i^2)`, or faulty,
     :math:`N(y_i\mid g_i^\top c, \sigma_{bad}^2)`, with prior fault probability
@@ -257,8 +260,10 @@ def screen(problem, fit_fn, *, z_limit=Z_GROSS, threshold=FLAG_PROBABILITY, rate
         prob[idx] = fault_probabilities(y, mu, var, nv, sigma_bad, rate, df)
         if len(gross) + len(faulty) >= limit:
             break
-        j = int(np.argmax(np.abs(z)))
-        if abs(z[j]) > z_limit:
+        far = _range_candidates(problem, keep)[idx]
+        zg = np.where(far, np.abs(z), 0.0)
+        j = int(np.argmax(zg))
+        if zg[j] > z_limit:
             gross[int(idx[j])] = float(z[j])
         elif prob[idx].max() > threshold:
             j = int(np.argmax(prob[idx]))
