@@ -301,8 +301,8 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:
-            estimate = workflow.run_stage(problem, method, s=smoothness, seed=seed,
-                                          **(stage_options or {}))
+            estimate, problem = workflow.robust_stage(problem, method, s=smoothness,
+                                                      seed=seed, **(stage_options or {}))
         except ValueError as exc:  # e.g. too few readings: name the file they came from
             raise InputError(readings.source, str(exc).splitlines()[0]) from None
     estimate, diag = _diagnose(estimate, problem, level, threshold, seed, q)

@@ -19,10 +19,11 @@ from .io.readings import Readings, load_readings
 from .problem import LinearProblem
 from .stages._truncation import truncation_for
 from .stages.registry import STAGES, stage_names
+from .stages.robust import robust_fit
 
 __all__ = ["fit", "make_domain", "as_readings", "problem_from_readings", "run_stage",
            "make_stage", "problem_for_stage", "fit_stage", "residual_dof_warning", "METHODS",
-           "MIN_RESIDUAL_DOF"]
+           "MIN_RESIDUAL_DOF", "robust_stage", "ROBUST_METHODS"]
 
 #: The method names of the stage registry (:data:`invert.stages.registry.STAGES`).
 METHODS = stage_names()
@@ -135,7 +136,26 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.
     problem = problem_from_readings(r, domain)
     if method == "tikhonov":
         options = {"rule": rule or "evidence", **options}
-    return run_stage(problem, method, s=s, **options)
+    return robust_stage(problem, method, s=s, **options)[0]
+
+
+#: Methods whose fit is wrapped by :func:`invert.stages.robust.robust_fit` (the default).
+ROBUST_METHODS = ("tikhonov",)
+
+
+def robust_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
+    """:func:`run_stage`, with gross errors and faulty sensors treated for the default method.
+
+    Returns
+    -------
+    estimate : Estimate
+    problem : LinearProblem
+        The problem the estimate was fitted to: the given one, or without the readings the
+        robust step excluded (they are moved to the gaps and named in the warnings).
+    """
+    if method not in ROBUST_METHODS:
+        return run_stage(problem, method, s=s, seed=seed, **options), problem
+    return robust_fit(problem, lambda p: run_stage(p, method, s=s, seed=seed, **options))
 
 
 def make_stage(method="tikhonov", *, s=2.0, seed=None, **options):

@@ -22,6 +22,7 @@ from ..prior import SmoothnessPrior
 from ..problem import LinearProblem, interval_z
 from ..stages._spectrum import rank_mask, standard_form
 from .checkpoint import ChunkDone
+from .gross import drop_gross_cells
 from .statuses import count_statuses, frame_statuses
 from .tables import empty_query, frames_table, query_table, release_memory
 
@@ -65,8 +66,9 @@ class StaticInverter:
     """
 
     def __init__(self, domain, points, sigma, lam, noise_sd, query, *, s=2.0, level=0.9,
-                 max_patterns=50000, cache_bytes=256 * 2**20):
+                 max_patterns=50000, cache_bytes=256 * 2**20, sensors=None):
         self.domain = domain
+        self.sensors = None if sensors is None else np.asarray(sensors).astype(str)
         self.points = np.asarray(points, float)
         self.sigma = None if sigma is None else np.asarray(sigma, float)
         self.lam = float(lam)
@@ -190,8 +192,12 @@ class StaticInverter:
         """
         return self._solve(Y)[0]
 
-    def _solve(self, Y):
-        """:meth:`solve`'s results and the number of patterns factorised for them."""
+    def _solve(self, Y, residuals=False):
+        """:meth:`solve`'s results and the number of patterns factorised for them.
+
+        With ``residuals=True`` the whitened residuals (zeros at missing sensors, shape
+        ``(n_frames, n_sensors)``) follow as a third item.
+        """
         Y = np.asarray(Y, float)
         L, n = Y.shape
         nq = len(self.query)
@@ -225,7 +231,8 @@ class StaticInverter:
             out[order] = res
         sds = np.array([e[1] for e in entries]).reshape(len(entries), nq + 1)[inverse]
         chi2 = np.einsum("ij,ij->i", out[:, nq + 1:], out[:, nq + 1:]) / self.noise_var
-        return (out[:, :nq], sds[:, :nq], out[:, nq], sds[:, nq], chi2), n_new
+        res = (out[:, :nq], sds[:, :nq], out[:, nq], sds[:, nq], chi2)
+        return (res, n_new, out[:, nq + 1:]) if residuals else (res, n_new)
 
 
 def _pattern_codes(packed):
@@ -306,12 +313,14 @@ def static_chunk(inverter, chunk, status, reason, labels, kind):
         Patterns factorised for this chunk.
     """
     n_used = np.isfinite(chunk.Y).sum(axis=1)
+    reason = reason.copy()  # gross cells are named here, in this task's copy
     L = len(chunk)
     cmean, csd, chi2 = np.full(L, np.nan), np.full(L, np.nan), np.full(L, np.nan)
     ok = status == "ok"
     n_new = 0
     if ok.any():
-        (qm, qs, cm, cs, c2), n_new = inverter._solve(chunk.Y if ok.all() else chunk.Y[ok])
+        (qm, qs, cm, cs, c2), n_new, reason[ok], n_used[ok] = drop_gross_cells(
+            inverter, chunk.Y if ok.all() else chunk.Y[ok], reason[ok])
         cmean[ok], csd[ok], chi2[ok] = cm, cs, c2
         qtab = query_table(chunk.t[ok], labels, qm, qs, inverter.z, kind)
     else:
@@ -347,7 +356,8 @@ def static_chunks(job, source, engine, work, hyper):
         Summary entries (``patterns_factorised``).
     """
     inverter = StaticInverter(job.domain, job.points, job.sigma, hyper["lam"],
-                              hyper["noise_sd"], job.query_points, s=job.s, level=job.level)
+                              hyper["noise_sd"], job.query_points, s=job.s, level=job.level,
+                              sensors=job.sensors)
     man = work.manifest
     done = man["done"].get("static", 0)
     last_time = man.get("last_time", -np.inf)

@@ -328,6 +328,16 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA, refit=True) -> ModelChe
         notes.append("no interior reading: a uniform heat source inside cannot be told from a "
                      "harmonic field by rim readings alone")
     flagged, verdict = _verdict(chi2, chi2_p, dof, excess, se, src_p, alpha)
+    robust = (estimate.info or {}).get("robust") or {}
+    gross = ", ".join(robust.get("gross_errors", {}))
+    faulty = ", ".join(f"{k} (fault probability {v:.3g})"
+                       for k, v in robust.get("faulty", {}).items())
+    if gross:
+        notes.append(f"checked without the gross errors the fit excluded: {gross}")
+        verdict += f" Excluded before the check (gross errors): {gross}."
+    if faulty:
+        notes.append(f"left out of the fit as probably faulty but kept in this check: {faulty}")
+        verdict += f" Left out of the fit as probably faulty (kept in this check): {faulty}."
     # Bonferroni bound on |loo_z| for a single faulty sensor among m.
     bound = stats.norm.isf(alpha / (2 * m))
     suspect = [str(sn) for sn in np.asarray(problem.sensor)[np.abs(loo_z) > bound]]
