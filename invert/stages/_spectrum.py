@@ -28,7 +28,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-__all__ = ["Spectrum", "standard_form", "rank_mask", "triangular_factor", "RANK_RTOL", "ROW_BLOCK"]
+__all__ = ["Spectrum", "standard_form", "rank_mask", "triangular_factor",
+           "unit_factor", "RANK_RTOL", "ROW_BLOCK"]
 
 #: Singular values below this fraction of the largest are treated as zero (the numerical rank
 #: of the standard-form matrix; about 1e3 times the double-precision rounding level, common
@@ -111,6 +112,19 @@ def triangular_factor(G, weights, prior_sd, y, *, block=ROW_BLOCK):
     return Raug[:p, :p], Raug[:p, p], float(Raug[p, p] ** 2)
 
 
+def unit_factor(problem, *, block=ROW_BLOCK):
+    """Return :func:`triangular_factor` of the problem with unit prior sd, or None if ``m <= p``.
+
+    The factor for any prior sd pattern ``d`` is ``(R * d, z, rho2)``: scaling the columns of
+    :math:`WG` by ``d`` keeps :math:`Q` and scales the columns of the triangular :math:`R`.
+    One pass over the readings then serves every smoothness order a stage tries.
+    """
+    if problem.n_readings <= problem.n_coef:
+        return None
+    return triangular_factor(problem.G, problem.weights, np.ones(problem.n_coef), problem.y,
+                             block=block)
+
+
 class Spectrum:
     r"""Standard-form SVD of a :class:`~invert.problem.LinearProblem` for a given prior shape.
 
@@ -121,6 +135,9 @@ class Spectrum:
         Prior sd pattern :math:`d_j` with ``tau = 1``.
     block : int, default=ROW_BLOCK
         Readings per row block on the economy route.
+    factor : tuple, optional
+        :func:`unit_factor` of the same problem, reused instead of a new pass over the
+        readings.
 
     Notes
     -----
@@ -132,7 +149,7 @@ class Spectrum:
     ``m <= p`` the full SVD of :math:`\tilde A` is taken (it is small).
     """
 
-    def __init__(self, problem, prior_sd, *, block=ROW_BLOCK):
+    def __init__(self, problem, prior_sd, *, block=ROW_BLOCK, factor=None):
         w = problem.weights
         self.d = np.asarray(prior_sd, dtype=float)
         self.m = problem.n_readings
@@ -143,7 +160,10 @@ class Spectrum:
         self.ytilde = yt
         self.log_w = float(np.sum(np.log(w)))
         if self.m > problem.n_coef:
-            R, z, rho2 = triangular_factor(problem.G, w, self.d, problem.y, block=block)
+            if factor is None:
+                R, z, rho2 = triangular_factor(problem.G, w, self.d, problem.y, block=block)
+            else:
+                R, z, rho2 = factor[0] * self.d, factor[1], factor[2]
             Ur, s, Vt = linalg.svd(R, lapack_driver="gesdd")
             k = int(np.sum(rank_mask(s)))
             zr = Ur.T @ z

@@ -60,6 +60,10 @@ from .hyper import Hyper, laplace
 __all__ = ["MCMCSampler", "mcmc"]
 
 _LOG2PI = float(np.log(2 * np.pi))
+#: Most readings for which PSIS-LOO gets the integrated leave-one-out likelihood (its cost is
+#: draws x readings x coefficients^2; beyond this the pointwise likelihood given the
+#: coefficients is used, as is common practice).
+LOO_MAX_READINGS = 256
 
 
 
@@ -363,7 +367,10 @@ class MCMCSampler:
             # Pointwise log p(y_i | y_-i, theta), coefficients integrated out: the factor
             # PSIS-LOO needs for a Gaussian latent model (Vehtari et al. 2016, JMLR 17(103)).
             # Computed with the diagnostics (in _finish).
-            extra = {"log_lik": lambda: cm.loo_loglik(tau, s, (nu**2)[:, None]).reshape(C, D, -1)}
+            extra = {"log_lik": lambda: cm.loo_loglik(tau, s, (nu**2)[:, None]).reshape(C, D, -1)} \
+                if cm.m <= LOO_MAX_READINGS else {"info_note": (
+                    f"PSIS-LOO uses the pointwise likelihood given the coefficients (more than "
+                    f"{LOO_MAX_READINGS} readings)")}
         else:
             coef = kept[:, :, dh:]
             coef_mean = coef
@@ -416,6 +423,8 @@ class MCMCSampler:
             notes.append(f"the chains reached the step cap ({res['run']['n_steps']} steps) "
                          f"before 50 autocorrelation times (tau = {res['run']['tau_int']:.3g}); "
                          f"try a larger max_steps (--max-steps)")
+        info_notes = list(info_notes) + ([res["extra"]["info_note"]]
+                                         if "info_note" in res["extra"] else [])
         loo, k = diag.psis_loo(dt)
         w = diag.pareto_warning(problem, k)
         if w:
