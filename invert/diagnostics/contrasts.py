@@ -34,7 +34,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-from ..stages._spectrum import ROW_BLOCK, triangular_factor
+from ..stages._spectrum import ROW_BLOCK, economy_route, triangular_factor
 
 __all__ = ["Contrasts"]
 
@@ -81,7 +81,7 @@ class Contrasts:
         m, p = G.shape
         self.p0 = int(self.fixed.sum())
         self.n = m - self.p0
-        if m > p:
+        if economy_route(m, p):
             self._economy()
         else:
             self._dense()

@@ -29,7 +29,7 @@ import numpy as np
 from scipy import linalg
 
 __all__ = ["Spectrum", "standard_form", "rank_mask", "triangular_factor",
-           "unit_factor", "RANK_RTOL", "ROW_BLOCK"]
+           "unit_factor", "economy_route", "RANK_RTOL", "ROW_BLOCK"]
 
 #: Singular values below this fraction of the largest are treated as zero (the numerical rank
 #: of the standard-form matrix; about 1e3 times the double-precision rounding level, common
@@ -112,6 +112,11 @@ def triangular_factor(G, weights, prior_sd, y, *, block=ROW_BLOCK):
     return Raug[:p, :p], Raug[:p, p], float(Raug[p, p] ** 2)
 
 
+def economy_route(m, p) -> bool:
+    """Whether ``m`` readings and ``p`` coefficients take the economy route (``m > p``)."""
+    return m > p
+
+
 def unit_factor(problem, *, block=ROW_BLOCK):
     """Return :func:`triangular_factor` of the problem with unit prior sd, or None if ``m <= p``.
 
@@ -119,7 +124,7 @@ def unit_factor(problem, *, block=ROW_BLOCK):
     :math:`WG` by ``d`` keeps :math:`Q` and scales the columns of the triangular :math:`R`.
     One pass over the readings then serves every smoothness order a stage tries.
     """
-    if problem.n_readings <= problem.n_coef:
+    if not economy_route(problem.n_readings, problem.n_coef):
         return None
     return triangular_factor(problem.G, problem.weights, np.ones(problem.n_coef), problem.y,
                              block=block)
@@ -159,7 +164,7 @@ class Spectrum:
         yt = w * problem.y
         self.ytilde = yt
         self.log_w = float(np.sum(np.log(w)))
-        if self.m > problem.n_coef:
+        if economy_route(self.m, problem.n_coef):
             if factor is None:
                 R, z, rho2 = triangular_factor(problem.G, w, self.d, problem.y, block=block)
             else:
