@@ -370,7 +370,7 @@ class CollapsedModel:
         red = None if sp is not None else self._reduce(design, noise_var)
         if red is not None:
             # Same Gaussian conditional on the p pseudo-readings (draws from rng's stream).
-            return red.conditional(tau, s, noise_var[:, :1], rng=rng, chunk=chunk)
+            return red.conditional(tau, s, noise_var[:, :1], rng=rng, chunk=min(chunk, 64))
         if sp is not None:
             # Standard form x = c / (tau d): A = (tau/nu) U S V^T, singular values sv.
             sv = sp["S"][None, :] * (tau / np.sqrt(noise_var[:, 0]))[:, None]

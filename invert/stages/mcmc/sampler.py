@@ -64,6 +64,14 @@ _LOG2PI = float(np.log(2 * np.pi))
 #: draws x readings x coefficients^2; beyond this the pointwise likelihood given the
 #: coefficients is used, as is common practice).
 LOO_MAX_READINGS = 256
+#: Most draws x readings kept in the per-reading groups of the posterior (log-likelihood,
+#: predictive readings): 32 MB per array; beyond it every t-th draw is kept there.
+PER_READING_CELLS = 4_000_000
+
+
+def per_reading_step(n_chains, n_draws, n_readings) -> int:
+    """Step ``t`` between the draws kept in the per-reading groups (1: all)."""
+    return max(1, -(-n_chains * n_draws * n_readings // PER_READING_CELLS))
 
 
 
@@ -390,19 +398,19 @@ class MCMCSampler:
         tau, s, nu = (v.reshape(C, D) for v in (tau, s, nu))
         post = {"tau": tau, "s": s, hyper.noise_name: nu, "coef": coef}
         post.update(res["extra"].get("posterior", {}))
-        sd_rows = (1.0 / cm.w)[None, None, :] * nu[:, :, None]
+        sel = slice(None, None, per_reading_step(C, D, cm.m))  # bounds draws x readings
+        sd_rows = (1.0 / cm.w)[None, None, :] * nu[:, sel, None]
         mu = res["extra"].get("mu")
-        if mu is None:
-            mu = np.einsum("cdp,mp->cdm", coef, problem.G)
+        mu = np.einsum("cdp,mp->cdm", coef[:, sel], problem.G) if mu is None else mu[:, sel]
         r = problem.y[None, None, :] - mu
         if "log_lik" in res["extra"]:
             ll = res["extra"]["log_lik"]
-            ll = ll() if callable(ll) else ll
+            ll = (ll() if callable(ll) else ll)[:, sel]
         else:
             ll = -0.5 * _LOG2PI - np.log(sd_rows) - 0.5 * (r / sd_rows) ** 2
         y_rep = mu + sd_rows * rng.standard_normal(mu.shape)
         if "y_rep_noise" in res["extra"]:
-            y_rep = mu + res["extra"]["y_rep_noise"]
+            y_rep = mu + res["extra"]["y_rep_noise"][:, sel]
         sampled = ["tau", "s", hyper.noise_name]
         sampled = [v for v, n in zip(sampled, ["log_tau", "s", "log_noise"], strict=True)
                    if n in hyper.names] + res["extra"].get("diag_vars", [])
@@ -425,6 +433,10 @@ class MCMCSampler:
                          f"try a larger max_steps (--max-steps)")
         info_notes = list(info_notes) + ([res["extra"]["info_note"]]
                                          if "info_note" in res["extra"] else [])
+        if per_reading_step(C, D, cm.m) > 1:
+            info_notes.append(f"the per-reading groups of the posterior (log-likelihood, "
+                              f"predictive readings; PSIS-LOO) keep every "
+                              f"{per_reading_step(C, D, cm.m)}-th draw")
         loo, k = diag.psis_loo(dt)
         w = diag.pareto_warning(problem, k)
         if w:
