@@ -72,7 +72,7 @@ class LinearProblem:
     assembly_notes: tuple = ()
 
     def __post_init__(self):
-        G = np.asarray(self.G, dtype=float)
+        G = np.ascontiguousarray(self.G, dtype=float)  # row blocks contiguous
         y = np.asarray(self.y, dtype=float)
         if G.ndim != 2 or y.shape != (G.shape[0],):
             raise ValueError(f"G and y do not match: G has shape {G.shape}, y has shape {y.shape}.")
