@@ -56,22 +56,11 @@ from . import diagnostics as diag
 from .collapsed import CollapsedModel
 from .ensemble import moves_for, run_emcee, thin_chains
 from .hyper import Hyper, laplace
+from .limits import LOO_MAX_READINGS, loo_note, per_reading_step
 
 __all__ = ["MCMCSampler", "mcmc"]
 
 _LOG2PI = float(np.log(2 * np.pi))
-#: Most readings for which PSIS-LOO gets the integrated leave-one-out likelihood (its cost is
-#: draws x readings x coefficients^2; beyond this the pointwise likelihood given the
-#: coefficients is used, as is common practice).
-LOO_MAX_READINGS = 256
-#: Most draws x readings kept in the per-reading groups of the posterior (log-likelihood,
-#: predictive readings): 32 MB per array; beyond it every t-th draw is kept there.
-PER_READING_CELLS = 4_000_000
-
-
-def per_reading_step(n_chains, n_draws, n_readings) -> int:
-    """Step ``t`` between the draws kept in the per-reading groups (1: all)."""
-    return max(1, -(-n_chains * n_draws * n_readings // PER_READING_CELLS))
 
 
 
@@ -376,9 +365,7 @@ class MCMCSampler:
             # PSIS-LOO needs for a Gaussian latent model (Vehtari et al. 2016, JMLR 17(103)).
             # Computed with the diagnostics (in _finish).
             extra = {"log_lik": lambda: cm.loo_loglik(tau, s, (nu**2)[:, None]).reshape(C, D, -1)} \
-                if cm.m <= LOO_MAX_READINGS else {"info_note": (
-                    f"PSIS-LOO uses the pointwise likelihood given the coefficients (more than "
-                    f"{LOO_MAX_READINGS} readings)")}
+                if cm.m <= LOO_MAX_READINGS else {}
         else:
             coef = kept[:, :, dh:]
             coef_mean = coef
@@ -431,12 +418,7 @@ class MCMCSampler:
             notes.append(f"the chains reached the step cap ({res['run']['n_steps']} steps) "
                          f"before 50 autocorrelation times (tau = {res['run']['tau_int']:.3g}); "
                          f"try a larger max_steps (--max-steps)")
-        info_notes = list(info_notes) + ([res["extra"]["info_note"]]
-                                         if "info_note" in res["extra"] else [])
-        if per_reading_step(C, D, cm.m) > 1:
-            info_notes.append(f"the per-reading groups of the posterior (log-likelihood, "
-                              f"predictive readings; PSIS-LOO) keep every "
-                              f"{per_reading_step(C, D, cm.m)}-th draw")
+        info_notes = list(info_notes) + loo_note(C, D, cm.m, "log_lik" in res["extra"])
         loo, k = diag.psis_loo(dt)
         w = diag.pareto_warning(problem, k)
         if w:
