@@ -292,6 +292,8 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
         raise ValueError(f"--center needs {dim} numbers for a {domain}, got {len(center)}")
     readings = load_readings(readings_path, dim=dim, center=center, **(dialect or {}))
     domain = workflow.make_domain(radius, center, kind=domain, s=smoothness, n_modes=n_modes)
+    workflow.check_memory(domain, grid=grid, n_readings=readings.observed.sum(),
+                          given_modes=n_modes is not None)
     problem = workflow.problem_from_readings(readings, domain)
     q = None
     if query is not None:

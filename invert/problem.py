@@ -72,7 +72,7 @@ class LinearProblem:
     assembly_notes: tuple = ()
 
     def __post_init__(self):
-        G = np.asarray(self.G, dtype=float)
+        G = np.ascontiguousarray(self.G, dtype=float)  # row blocks contiguous
         y = np.asarray(self.y, dtype=float)
         if G.ndim != 2 or y.shape != (G.shape[0],):
             raise ValueError(f"G and y do not match: G has shape {G.shape}, y has shape {y.shape}.")
@@ -415,11 +415,34 @@ class Estimate:
                 lower[sl], upper[sl] = lo, hi
             else:
                 m = H @ self.mean
-                scale = np.sqrt(np.sum((H @ self._root) ** 2, axis=1) + noise**2)
+                # Row sums of (H R)^2 with cov = R R^T: one product of the mean's size times p.
+                A = H @ self._root
+                scale = np.sqrt(np.einsum("ij,ij->i", A, A) + noise**2)
                 z = interval_z(level, self.df)
                 mean[sl], sd[sl] = m, scale * np.sqrt(self._var_factor)
                 lower[sl], upper[sl] = m - z * scale, m + z * scale
         return PointSummary(mean, sd, lower, upper, level)
+
+    def polar_map(self, rho, n_angles, level=0.9) -> PointSummary:
+        """Mean, sd and interval on rings at relative radii ``rho`` and equally spaced angles.
+
+        Points are ``domain.polar_grid(rho, n_angles)`` (ring by ring). For a Gaussian result on
+        a domain with ``ring_variance`` the exact variance costs one short FFT per ring
+        (:mod:`invert.geometry.polar`); otherwise this is :meth:`at` on those points.
+        """
+        level = check_level(level, where="Estimate.polar_map")
+        grid = getattr(self.domain, "polar_grid", None)
+        if grid is None:
+            raise ValueError(f"The domain {type(self.domain).__name__} has no polar grid.")
+        pts = grid(rho, n_angles)
+        ring = getattr(self.domain, "ring_variance", None)
+        if self.draws is not None or ring is None:
+            return self.at(pts, level)
+        m = self.domain.field(self.mean, pts)
+        scale = np.sqrt(np.clip(ring(self.cov, rho, n_angles), 0.0, None))
+        z = interval_z(level, self.df)
+        return PointSummary(m, scale * np.sqrt(self._var_factor), m - z * scale, m + z * scale,
+                            level)
 
     def cov_at(self, points) -> np.ndarray:
         """Posterior covariance of the field between ``points``."""

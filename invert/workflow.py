@@ -23,7 +23,8 @@ from .stages.robust import robust_fit
 
 __all__ = ["fit", "make_domain", "as_readings", "problem_from_readings", "run_stage",
            "make_stage", "problem_for_stage", "fit_stage", "residual_dof_warning", "METHODS",
-           "MIN_RESIDUAL_DOF", "robust_stage", "ROBUST_METHODS"]
+           "MIN_RESIDUAL_DOF", "robust_stage", "ROBUST_METHODS", "available_memory",
+           "check_memory"]
 
 #: The method names of the stage registry (:data:`invert.stages.registry.STAGES`).
 METHODS = stage_names()
@@ -251,3 +252,81 @@ def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
     truncation it needs (:func:`problem_for_stage`).
     """
     return fit_stage(make_stage(method, s=s, seed=seed, **options), problem)
+
+
+#: Bytes per field-map point: coordinates, the inside mask, mean, sd and interval, the
+#: field.csv table and its text (measured: ``--grid 1000`` and ``2000`` on the demo data took
+#: 73 bytes per grid cell, 93 per point inside the disk; rounded up).
+MAP_BYTES_PER_POINT = 128
+#: Working ``p x p`` matrices of a fit (covariance, its root, factorisations; measured 6-12 on
+#: the demo data with 2001 and 4001 coefficients), and the rows of design evaluated per block.
+COEF_MATRICES, DESIGN_BLOCK_ROWS = 12, 8192
+
+
+def available_memory() -> float:
+    """Bytes of memory available now (psutil when installed, else ``os.sysconf``)."""
+    try:
+        import psutil
+
+        return float(psutil.virtual_memory().available)
+    except ImportError:  # pragma: no cover - psutil is optional
+        import os
+
+        return float(os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE"))
+
+
+def _gb(nbytes):
+    return f"{nbytes / 1e9:.3g} GB" if nbytes < 1e12 else f"{nbytes / 1e12:.3g} TB"
+
+
+def _map_bytes(domain, grid):
+    # Field points of an n x n map scale as n^2 (counted on a 41 x 41 map).
+    k = 41
+    return MAP_BYTES_PER_POINT * len(domain.field_grid(k)[0]) * (grid / k) ** 2
+
+
+def _fit_bytes(p, m):
+    return 8.0 * (COEF_MATRICES * p * p + 4 * m * p + 2 * DESIGN_BLOCK_ROWS * p)
+
+
+def check_memory(domain, *, grid, n_readings, given_modes=False, available=None):
+    """Stop with an InputError when ``--grid`` or ``--n-modes`` cannot fit in memory.
+
+    Parameters
+    ----------
+    domain : Domain
+        The domain the fit will use (its ``n_coef`` and ``field_grid``).
+    grid : int
+        Size of the field maps (``--grid``).
+    n_readings : int
+    given_modes : bool, default=False
+        Whether the truncation was given (``--n-modes``), so that the error names it.
+    available : float, optional
+        Bytes available (default :func:`available_memory`).
+
+    Raises
+    ------
+    InputError
+        With the memory needed and the largest value that fits.
+    """
+    from .errors import InputError
+
+    avail = available_memory() if available is None else float(available)
+    maps = _map_bytes(domain, grid)
+    need = _fit_bytes(domain.n_coef, n_readings)
+    if need + maps > avail and need > avail / 2:
+        lo, hi = 0, domain.n_modes  # largest truncation that fits, by bisection
+        while lo < hi:
+            mid = (lo + hi + 1) // 2
+            ok = _fit_bytes(domain.with_modes(mid).n_coef, n_readings) + maps <= avail
+            lo, hi = (mid, hi) if ok else (lo, mid - 1)
+        name = f"--n-modes {domain.n_modes}" if given_modes else \
+            f"{domain.n_modes} harmonics"
+        raise InputError(name, f"needs about {_gb(need)} for its {domain.n_coef} "
+                         f"coefficients; at most --n-modes {lo} fits in the {_gb(avail)} "
+                         f"available")
+    if need + maps > avail:
+        room = avail - need
+        fits = int(grid * np.sqrt(max(room, 0.0) / maps))
+        raise InputError(f"--grid {grid}", f"needs about {_gb(maps)} for the field maps; at "
+                         f"most --grid {fits} fits in the {_gb(avail)} available")

@@ -25,4 +25,4 @@ def estimate_design(estimate, problem):
     d = estimate.domain
     if problem.G.shape[1] == len(d.degrees):
         return problem.G, np.asarray(d.degrees)
-    return d.design(problem.points), np.asarray(d.degrees)
+    return np.ascontiguousarray(d.design(problem.points)), np.asarray(d.degrees)

@@ -20,11 +20,12 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import linalg, stats
+from scipy import stats
 
 from ..prior import SmoothnessPrior
 from ..stages._search import grid_then_refine
 from ._common import estimate_design, prior_params
+from .contrasts import Contrasts
 
 __all__ = ["CHECK_ALPHA", "ModelCheck", "model_check", "psis_loo"]
 
@@ -125,38 +126,28 @@ class ModelCheck:
         return d
 
 
-def _reml_basis(estimate, problem, noise):
-    # Whitened readings W y, W = diag(1/noise). With the degree-0 column(s) X0 as fixed
-    # effects, the error contrasts z = Q' W y (Q: orthonormal basis of the complement of W X0)
-    # are N(0, tau^2 Q' K Q + I), K = W G1 V1 G1' W the prior part for tau = 1. One eigen-
-    # decomposition Q' K Q = U diag(kappa) U' serves every tau: with B = Q U, w = B' W y,
-    # P0 = W B diag(1/(tau^2 kappa + 1)) B' W (Patterson & Thompson 1971; Harville 1977).
+def _reml_contrasts(estimate, problem, noise, src):
+    # Error contrasts of the whitened readings with the degree-0 column(s) as fixed effects
+    # (invert.diagnostics.contrasts: m x m eigendecomposition for few readings, blocked
+    # coefficient-space factorisation when readings outnumber coefficients).
     G, deg = estimate_design(estimate, problem)
     s_, _ = prior_params(estimate)
     d = estimate.domain
     shape = SmoothnessPrior(float(s_), 1.0).variances(d.eigenvalues, d.degrees)
-    fixed = deg == 0
-    wt = 1.0 / noise
-    A = (wt[:, None] * G[:, ~fixed]) * np.sqrt(shape[~fixed])
-    X = wt[:, None] * G[:, fixed]
-    Qf, _ = linalg.qr(X, mode="full")
-    Q = Qf[:, X.shape[1]:]
-    AQ = Q.T @ A
-    kappa, U = linalg.eigh(AQ @ AQ.T)
-    B = Q @ U
-    return B, np.clip(kappa, 0.0, None), B.T @ (wt * problem.y), wt, int(fixed.sum())
+    return Contrasts(G, deg == 0, np.sqrt(shape), noise, problem.y, src)
 
 
-def _reml_scale(kappa, w, known, x0):
+def _reml_scale(kappa, w, known, x0, perp2=0.0, n=None):
     # Restricted ML of x = tau^2 (noise known) or x = tau^2/sigma^2 (noise level profiled out),
-    # on a log grid around the fit's value, then refined; returns (x, at_bound).
-    n = len(w)
+    # on a log grid around the fit's value, then refined; returns (x, at_bound). The n - len(w)
+    # contrast directions with kappa = 0 enter through their sum of squares perp2.
+    n = len(w) if n is None else n
 
     def f(lx):
         dd = 1.0 / (np.exp(lx) * kappa + 1.0)
         if known:
-            return float(-np.sum(np.log(dd)) + np.sum(w**2 * dd))
-        return float(n * np.log(np.sum(w**2 * dd) / n) - np.sum(np.log(dd)))
+            return float(-np.sum(np.log(dd)) + np.sum(w**2 * dd) + perp2)
+        return float(n * np.log((np.sum(w**2 * dd) + perp2) / n) - np.sum(np.log(dd)))
 
     grid = np.log(x0) + np.linspace(-20.0, 20.0, 161)
     vals = np.array([f(g) for g in grid])
@@ -169,13 +160,14 @@ def _reml_scale(kappa, w, known, x0):
     return float(np.exp(lx)), False
 
 
-def _check_scale(kappa, w, known, tau_fit, noise_fit, refit, notes):
+def _check_scale(con, known, tau_fit, noise_fit, refit, notes):
     # (x, sig2, how): the prior scale ratio x and noise variance sig2 the check is made under.
+    kappa, w = con.kappa, con.w
     if refit:
         x0 = float(tau_fit) ** 2 / (1.0 if known else noise_fit**2) if tau_fit else 1.0
-        x, at_bound = _reml_scale(kappa, w, known, x0)
+        x, at_bound = _reml_scale(kappa, w, known, x0, con.perp2, con.n)
         dd = 1.0 / (x * kappa + 1.0)
-        sig2 = 1.0 if known else float(np.sum(w**2 * dd) / len(w))
+        sig2 = 1.0 if known else float((np.sum(w**2 * dd) + con.perp2) / con.n)
         how = "prior scale" + ("" if known else " and noise level") + \
             " by restricted maximum likelihood, smoothness as fitted"
         if at_bound:
@@ -186,15 +178,14 @@ def _check_scale(kappa, w, known, tau_fit, noise_fit, refit, notes):
     return float(tau_fit) ** 2 / sig2, sig2, "as fitted by the stage"
 
 
-def _source_test(src, P0, Py, q, dof, known):
+def _source_test(src, sPs, sPy, q, dof, known):
     # GLS estimate of the uniform-source excess kappa = s'P0y / s'P0s, its se, the z (or
     # studentised t) statistic, two-sided p-value and t dof (model_check Notes).
     kappa = se = stat = src_p = np.nan
     t_df = None
-    sPs = float(src @ P0 @ src)
     if not (src.any() and sPs > 0):
         return kappa, se, stat, src_p, t_df
-    kappa = float(src @ Py) / sPs
+    kappa = sPy / sPs
     se = 1.0 / np.sqrt(sPs)
     z = kappa / se
     if known:
@@ -292,19 +283,19 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA, refit=True) -> ModelChe
     known = problem.sigma is not None
     m = problem.n_readings
     notes = []
-    B, kappa, w, wt, p0 = _reml_basis(estimate, problem, problem.sigma if known else np.ones(m))
-    if len(w) < 2:
+    src = 1.0 - problem.domain.relative_radius(problem.points) ** 2
+    src[src < 1e-3] = 0.0  # rim readings (within the rim tolerance) carry no source signal
+    con = _reml_contrasts(estimate, problem, problem.sigma if known else np.ones(m), src)
+    p0 = con.p0
+    if con.n < 2:
         raise ValueError(f"The model check needs at least {p0 + 2} readings. Got {m} instead.")
     _, tau_fit = prior_params(estimate)
     noise_fit = float(estimate.noise_sd or 1.0)
-    x, sig2, how = _check_scale(kappa, w, known, tau_fit, noise_fit, refit, notes)
-    dd = 1.0 / (x * kappa + 1.0)
-    P0 = wt[:, None] * ((B * dd) @ B.T) * wt[None, :] / sig2
-    P0 = 0.5 * (P0 + P0.T)
+    x, sig2, how = _check_scale(con, known, tau_fit, noise_fit, refit, notes)
+    dd = 1.0 / (x * con.kappa + 1.0)
+    Py, Psrc, dP = con.precision(dd, sig2)
     tau_chk = float(np.sqrt(x * sig2))
     y = problem.y
-    Py = P0 @ y
-    dP = np.diag(P0)
     loo_sd = 1.0 / np.sqrt(dP)
     loo_mean = y - Py / dP
     loo_z = Py / np.sqrt(dP)
@@ -321,10 +312,9 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA, refit=True) -> ModelChe
         notes.append("the noise level was estimated from these residuals, so their overall "
                      "size cannot be tested; only the source test applies")
 
-    src = 1.0 - problem.domain.relative_radius(problem.points) ** 2
-    src[src < 1e-3] = 0.0  # rim readings (within the rim tolerance) carry no source signal
-    excess, se, stat, src_p, t_df = _source_test(src, P0, Py, q, dof, known)
-    if not (src.any() and float(src @ P0 @ src) > 0):
+    sPs = float(src @ Psrc)
+    excess, se, stat, src_p, t_df = _source_test(src, sPs, float(src @ Py), q, dof, known)
+    if not (src.any() and sPs > 0):
         notes.append("no interior reading: a uniform heat source inside cannot be told from a "
                      "harmonic field by rim readings alone")
     flagged, verdict = _verdict(chi2, chi2_p, dof, excess, se, src_p, alpha)

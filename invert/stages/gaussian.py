@@ -51,7 +51,7 @@ from ..problem import Estimate, PriorSummary
 from ._blas import single_thread
 from ._checks import check_positive, check_s_bounds
 from ._search import grid_then_refine
-from ._spectrum import Spectrum
+from ._spectrum import Spectrum, unit_factor
 
 __all__ = ["GaussianPosterior", "gaussian_posterior", "DEFAULT_S_BOUNDS"]
 
@@ -215,12 +215,13 @@ class GaussianPosterior:
             return "tau", tau, None
         return "profile", None, None
 
-    def _spectrum(self, problem, s):
+    def _spectrum(self, problem, s, factor=None):
         prior = SmoothnessPrior(s=s)
-        return Spectrum(problem, np.sqrt(prior.shape(problem.eigenvalues, problem.degrees)))
+        return Spectrum(problem, np.sqrt(prior.shape(problem.eigenvalues, problem.degrees)),
+                        factor=factor)
 
-    def _best_at(self, problem, s, mode, tau, noise):
-        spec = self._spectrum(problem, s)
+    def _best_at(self, problem, s, mode, tau, noise, factor=None):
+        spec = self._spectrum(problem, s, factor)
         ev = _Evidence(spec, mode, tau, noise)
         if mode == "noise" and tau is not None:
             alpha = noise**2 / tau**2
@@ -236,18 +237,19 @@ class GaussianPosterior:
         with single_thread():
             return self._fit(problem)
 
-    def _choose_s(self, problem, mode, tau, noise, notes):
+    def _choose_s(self, problem, mode, tau, noise, notes, factor=None):
         """Choose the smoothness order; return ``(s, best)``.
 
         ``s`` is the fixed order, or the one of maximum evidence within ``s_bounds`` (grid,
-        then bounded Brent), and ``best`` is :meth:`_best_at` there.
+        then bounded Brent), and ``best`` is :meth:`_best_at` there. ``factor`` (the problem's
+        :func:`~invert.stages._spectrum.unit_factor`) serves every ``s`` tried.
         """
         if self.s is not None:
             s_hat = float(self.s)
             SmoothnessPrior(s=s_hat)  # validates s
             if not problem.truncation_holds(s_hat):
                 notes.append(truncation_warning(problem, s_hat))
-            return s_hat, self._best_at(problem, s_hat, mode, tau, noise)
+            return s_hat, self._best_at(problem, s_hat, mode, tau, noise, factor)
         lo, hi = check_s_bounds(self.s_bounds, "GaussianPosterior")
         floor = problem.truncation_floor(lo, hi)
         if floor > lo:
@@ -258,7 +260,7 @@ class GaussianPosterior:
 
         def neg(s):
             if s not in cache:
-                cache[s] = self._best_at(problem, s, mode, tau, noise)
+                cache[s] = self._best_at(problem, s, mode, tau, noise, factor)
             return -cache[s][1]
 
         s_hat, _ = grid_then_refine(neg, np.linspace(lo, hi, 9), xatol=1e-4)
@@ -274,7 +276,7 @@ class GaussianPosterior:
         mode, tau, noise = self._mode(problem)
         notes = []
         notes_info = list(problem.assembly_notes)
-        s_hat, best = self._choose_s(problem, mode, tau, noise, notes)
+        s_hat, best = self._choose_s(problem, mode, tau, noise, notes, unit_factor(problem))
         alpha, log_ev, edge, spec, ev = best
         if edge:
             notes.append(f"the evidence is largest at the end of the search range of the "

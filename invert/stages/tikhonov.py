@@ -69,9 +69,7 @@ def gcv_score(spec: Spectrum, alpha):
 
 def loo_score(spec: Spectrum, alpha):
     r"""Mean squared leave-one-out residual :math:`\frac1m\sum_i (r_i/(1-A_{ii}))^2`."""
-    r = spec.residuals(alpha)
-    h = spec.hat_diag(alpha)
-    return np.mean((r / (1 - h)) ** 2, axis=0)
+    return spec.loo_mean_square(alpha)
 
 
 def upre_score(spec: Spectrum, alpha):

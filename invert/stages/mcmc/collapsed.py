@@ -51,7 +51,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...prior import MEAN_SCALE
-from .._spectrum import standard_form
+from .._spectrum import standard_form, triangular_factor
 
 _LOG2PI = float(np.log(2 * np.pi))
 
@@ -67,6 +67,10 @@ class CollapsedModel:
     spectral : bool, default=True
         Use the one-SVD route (module Notes) for batches that share one ``s`` and one common
         noise level; ``False`` always factorises per row (kept as an independent check).
+    reduce : bool, default=True
+        With more readings than coefficients, work on the coefficient-space reduction
+        (:meth:`_reduce`) for rows with one noise level; ``False`` keeps the ``m x m``
+        data-space route (an independent check on small problems).
 
     Notes
     -----
@@ -75,10 +79,11 @@ class CollapsedModel:
     See the module Notes for the formulas.
     """
 
-    def __init__(self, problem, *, mean_scale=MEAN_SCALE, spectral=True):
+    def __init__(self, problem, *, mean_scale=MEAN_SCALE, spectral=True, reduce=True):
         self.problem = problem
         self.mean_scale = float(mean_scale)
         self.spectral = bool(spectral)
+        self.reduce = bool(reduce)
         self._spectra = {}
         w = problem.weights
         self.w = w
@@ -90,14 +95,56 @@ class CollapsedModel:
         self.broad = deg == 0
         self.eig = np.asarray(problem.eigenvalues, float)
         self.G0 = self.Gw[:, self.broad]
-        # Group the other columns by degree: K_n = sum over columns of degree n of g g^T.
+        # Group the other columns by degree: K_n = sum over columns of degree n of g g^T
+        # (m x m each; built only when the data-space route is used, see K).
         udeg = np.unique(deg[~self.broad])
         self.udeg = udeg
         self.ueig = np.array([self.eig[deg == n][0] for n in udeg])
-        self.K = np.stack([self.Gw[:, deg == n] @ self.Gw[:, deg == n].T for n in udeg]) \
-            if udeg.size else np.zeros((0, self.m, self.m))
-        self._K2 = np.ascontiguousarray(self.K.reshape(len(udeg), self.m * self.m))
         self._log1p_ueig = np.log1p(self.ueig)
+        self._K2 = None
+        self._reduced = None
+        self._factor = None
+
+    @property
+    def K(self):
+        """Data-space blocks :math:`K_n`, shape (n_degrees, m, m) (formed when first asked)."""
+        return self._data_space()[0]
+
+    def _data_space(self):
+        if self._K2 is None:
+            deg = np.asarray(self.problem.degrees)
+            K = np.stack([self.Gw[:, deg == n] @ self.Gw[:, deg == n].T for n in self.udeg]) \
+                if self.udeg.size else np.zeros((0, self.m, self.m))
+            self._K = K
+            self._K2 = np.ascontiguousarray(K.reshape(len(self.udeg), self.m * self.m))
+        return self._K, self._K2
+
+    def _reduce(self, design, noise_var):
+        r"""Return the coefficient-space model for this batch, or None.
+
+        With more readings than coefficients, no per-draw design and one noise level per row,
+        :math:`\tilde G = QR` (:func:`~invert.stages._spectrum.triangular_factor`) turns the
+        readings into ``p`` pseudo-readings :math:`z = Q^\top\tilde y` with design :math:`R`:
+        the posterior of the coefficients is the same (it depends on the data only through
+        :math:`\tilde G^\top\tilde G = R^\top R` and :math:`\tilde G^\top\tilde y =
+        R^\top z`), and the log density differs by the part :math:`\rho^2 =
+        \|\tilde y - QQ^\top\tilde y\|^2` outside the range (see :meth:`loglik`). Memory and
+        time are then linear in ``m`` (one pass for the factor).
+        """
+        if not self.reduce or design is not None or self.m <= self.p:
+            return None
+        if not np.all(noise_var == noise_var[:, :1]):
+            return None
+        if self._reduced is None:
+            from ...problem import LinearProblem
+
+            R, z, rho2 = triangular_factor(self.problem.G, self.w, np.ones(self.p),
+                                           self.problem.y)
+            red = LinearProblem(R, z, None, self.problem.degrees, self.problem.eigenvalues)
+            self._reduced = CollapsedModel(red, mean_scale=self.mean_scale,
+                                           spectral=self.spectral, reduce=False)
+            self._factor = (R, z, rho2)
+        return self._reduced
 
     # --- prior ------------------------------------------------------------------------------
     def prior_var(self, tau, s):
@@ -174,7 +221,7 @@ class CollapsedModel:
     def _B(self, tau, s, noise_var):
         m = self.m
         shape = np.exp(-s[:, None] * self._log1p_ueig[None, :])  # (1 + lambda_n)^-s
-        B = (shape * (tau**2)[:, None]) @ self._K2  # (nb, m*m)
+        B = (shape * (tau**2)[:, None]) @ self._data_space()[1]  # (nb, m*m)
         B[:, :: m + 1] += noise_var
         return B.reshape(-1, m, m)
 
@@ -198,6 +245,13 @@ class CollapsedModel:
             logdet = np.sum(np.log(dk), axis=1) + sp["n_out"] * np.log(nv)
             quad = np.sum(sp["beta"] ** 2 / dk, axis=1) + sp["perp"] / nv
             return -0.5 * (quad + logdet + self.m * _LOG2PI) + self.log_w
+        red = self._reduce(design, noise_var)
+        if red is not None:
+            # log N(y~ | 0, C) = log N(z | 0, C_R) - (rho^2/nu^2 + (m-p) log(2 pi nu^2)) / 2.
+            nv = noise_var[:, 0]
+            n_out = self.m - self.p
+            rest = self._factor[2] / nv + n_out * (np.log(nv) + _LOG2PI)
+            return red.loglik(tau, s, nv[:, None]) - 0.5 * rest + self.log_w
         if design is None:
             B = self._B(tau, s, noise_var)
             G0 = np.broadcast_to(self.G0, (nb,) + self.G0.shape)
@@ -239,6 +293,8 @@ class CollapsedModel:
                 alpha = alpha + self.yw[None, :] / nv
                 dii = dii + 1.0 / nv
             return self.yw[None, :] - alpha / dii, 1.0 / dii
+        if self._reduce(design, noise_var) is not None:
+            return self._loo_reduced(tau, s, noise_var[:, 0])
         mu = np.empty((nb, self.m))
         var = np.empty((nb, self.m))
         idx = np.arange(self.m)
@@ -254,6 +310,35 @@ class CollapsedModel:
             dii = Ci[:, idx, idx]
             mu[sl] = self.yw[None, :] - alpha / dii
             var[sl] = 1.0 / dii
+        return mu, var
+
+    def _loo_reduced(self, tau, s, nv, chunk=16, block=2048):
+        r"""LOO moments by Woodbury in coefficient space, readings in blocks.
+
+        :math:`C^{-1} = (I - \tilde G S^{-1}\tilde G^\top)/\nu^2` with :math:`S = \nu^2
+        P^{-1} + R^\top R` (:math:`P` the prior variances; Woodbury identity), so
+        :math:`[C^{-1}]_{ii} = (1 - \|L^{-1}g_i\|^2)/\nu^2` (:math:`S = LL^\top`) and
+        :math:`[C^{-1}\tilde y]_i = (\tilde y_i - g_i^\top S^{-1}R^\top z)/\nu^2`.
+        """
+        R, z, _ = self._factor
+        nb = tau.size
+        mu = np.empty((nb, self.m))
+        var = np.empty((nb, self.m))
+        RtR, Rtz = R.T @ R, R.T @ z
+        for a0 in range(0, nb, chunk):
+            sl = slice(a0, a0 + chunk)
+            S = RtR[None] + np.einsum("b,bp,pq->bpq", nv[sl], 1.0 / self.prior_var(tau[sl], s[sl]),
+                                      np.eye(self.p))
+            L = np.linalg.cholesky(S)
+            u = np.linalg.solve(S, np.broadcast_to(Rtz, (len(S), self.p))[:, :, None])[:, :, 0]
+            for r0 in range(0, self.m, block):
+                rs = slice(r0, r0 + block)
+                Gb = self.Gw[rs]
+                X = np.linalg.solve(L, np.broadcast_to(Gb.T, (len(S),) + Gb.T.shape))
+                dii = (1.0 - np.sum(X**2, axis=1)) / nv[sl, None]
+                alpha = (self.yw[None, rs] - u @ Gb.T) / nv[sl, None]
+                mu[sl, rs] = self.yw[None, rs] - alpha / dii
+                var[sl, rs] = 1.0 / dii
         return mu, var
 
     def loo_loglik(self, tau, s, noise_var, design=None):
@@ -282,6 +367,10 @@ class CollapsedModel:
         rng = np.random.default_rng(rng)
         tau, s, nb, noise_var = self._batch(tau, s, noise_var)
         sp = self._spectrum(s, noise_var, design)
+        red = None if sp is not None else self._reduce(design, noise_var)
+        if red is not None:
+            # Same Gaussian conditional on the p pseudo-readings (draws from rng's stream).
+            return red.conditional(tau, s, noise_var[:, :1], rng=rng, chunk=min(chunk, 64))
         if sp is not None:
             # Standard form x = c / (tau d): A = (tau/nu) U S V^T, singular values sv.
             sv = sp["S"][None, :] * (tau / np.sqrt(noise_var[:, 0]))[:, None]

@@ -56,6 +56,7 @@ from . import diagnostics as diag
 from .collapsed import CollapsedModel
 from .ensemble import moves_for, run_emcee, thin_chains
 from .hyper import Hyper, laplace
+from .limits import LOO_MAX_READINGS, loo_note, per_reading_step
 
 __all__ = ["MCMCSampler", "mcmc"]
 
@@ -363,7 +364,8 @@ class MCMCSampler:
             # Pointwise log p(y_i | y_-i, theta), coefficients integrated out: the factor
             # PSIS-LOO needs for a Gaussian latent model (Vehtari et al. 2016, JMLR 17(103)).
             # Computed with the diagnostics (in _finish).
-            extra = {"log_lik": lambda: cm.loo_loglik(tau, s, (nu**2)[:, None]).reshape(C, D, -1)}
+            extra = {"log_lik": lambda: cm.loo_loglik(tau, s, (nu**2)[:, None]).reshape(C, D, -1)} \
+                if cm.m <= LOO_MAX_READINGS else {}
         else:
             coef = kept[:, :, dh:]
             coef_mean = coef
@@ -383,19 +385,19 @@ class MCMCSampler:
         tau, s, nu = (v.reshape(C, D) for v in (tau, s, nu))
         post = {"tau": tau, "s": s, hyper.noise_name: nu, "coef": coef}
         post.update(res["extra"].get("posterior", {}))
-        sd_rows = (1.0 / cm.w)[None, None, :] * nu[:, :, None]
+        sel = slice(None, None, per_reading_step(C, D, cm.m))  # bounds draws x readings
+        sd_rows = (1.0 / cm.w)[None, None, :] * nu[:, sel, None]
         mu = res["extra"].get("mu")
-        if mu is None:
-            mu = np.einsum("cdp,mp->cdm", coef, problem.G)
+        mu = np.einsum("cdp,mp->cdm", coef[:, sel], problem.G) if mu is None else mu[:, sel]
         r = problem.y[None, None, :] - mu
         if "log_lik" in res["extra"]:
             ll = res["extra"]["log_lik"]
-            ll = ll() if callable(ll) else ll
+            ll = (ll() if callable(ll) else ll)[:, sel]
         else:
             ll = -0.5 * _LOG2PI - np.log(sd_rows) - 0.5 * (r / sd_rows) ** 2
         y_rep = mu + sd_rows * rng.standard_normal(mu.shape)
         if "y_rep_noise" in res["extra"]:
-            y_rep = mu + res["extra"]["y_rep_noise"]
+            y_rep = mu + res["extra"]["y_rep_noise"][:, sel]
         sampled = ["tau", "s", hyper.noise_name]
         sampled = [v for v, n in zip(sampled, ["log_tau", "s", "log_noise"], strict=True)
                    if n in hyper.names] + res["extra"].get("diag_vars", [])
@@ -416,6 +418,7 @@ class MCMCSampler:
             notes.append(f"the chains reached the step cap ({res['run']['n_steps']} steps) "
                          f"before 50 autocorrelation times (tau = {res['run']['tau_int']:.3g}); "
                          f"try a larger max_steps (--max-steps)")
+        info_notes = list(info_notes) + loo_note(C, D, cm.m, "log_lik" in res["extra"])
         loo, k = diag.psis_loo(dt)
         w = diag.pareto_warning(problem, k)
         if w:
