@@ -381,6 +381,11 @@ class Estimate:
             return self.domain.field(self.draws.mean(axis=0), points)
         return self.domain.field(self.mean, points)
 
+    def _repr_html_(self):
+        from .report.notebook import estimate_html  # the view lives with the report
+
+        return estimate_html(self)
+
     def at(self, points, level=0.9, *, predictive=False, block=8192) -> PointSummary:
         """Mean, sd and central ``level`` interval of the field at ``points``.
 

@@ -38,3 +38,21 @@ def test_batch_summary_shows_as_html_and_stays_a_dict():
     assert isinstance(s, dict) and dict(s) == {"frames": {"total": 3, "ok": 2},
                                                "method": "kalman-smoother",
                                                "warnings": ["<b>x</b> & y"], "lam": 0.1}
+
+
+def test_estimate_shows_as_html_with_its_numbers_and_warnings():
+    # IPython display protocol; the centre value equals Estimate.at (the same computation)
+    import numpy as np
+    import pandas as pd
+
+    import invert
+    from invert.report.notebook import estimate_html
+
+    df = pd.read_csv(invert.__path__[0] + "/data/demo_readings.csv", comment="#")
+    est = invert.fit(df, radius=0.25)
+    page = est._repr_html_()
+    c = est.at(np.zeros((1, 2)))
+    assert f"{c.mean[0]:.6g}" in page and "tikhonov" in page
+    odd = est.__class__(mean=est.mean, cov=est.cov, domain=est.domain, method="<x>",
+                        warnings=("a & b",))
+    assert "&lt;x&gt;" in estimate_html(odd) and "a &amp; b" in estimate_html(odd)
