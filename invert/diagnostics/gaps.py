@@ -48,7 +48,8 @@ def unsensed_arcs(problem, *, spacing=None) -> np.ndarray:
         Working sensors are ``problem.points``; failed ones (gaps) ``problem.gap_points``.
     spacing : float, optional
         Nominal sensor spacing in radians; default the median ccw gap between consecutive rim
-        sensors, working or failed.
+        sensors, working or failed, but at least pi / n_modes (half a period of the highest
+        harmonic the model holds), so that a dense line's random spacing makes no arcs.
 
     Returns
     -------
@@ -64,6 +65,10 @@ def unsensed_arcs(problem, *, spacing=None) -> np.ndarray:
         return np.array([[0.0, 2 * np.pi]])
     if spacing is None:
         spacing = float(np.median(_circular_gaps(every)[1])) if every.size > 1 else 2 * np.pi
+        # a dense line of sensors (fibre optics, a camera) is spaced far below what the model
+        # resolves: gaps narrower than half a period of the highest harmonic, pi / n_modes,
+        # are no unsensed arcs (common practice: sampling finer than the model's resolution)
+        spacing = max(spacing, np.pi / max(int(getattr(problem.domain, "n_modes", 1)), 1))
     half = 0.5 * spacing
     a, gap = _circular_gaps(work)
     # Arcs narrower than 0.1 % of the spacing are rounding of typed sensor positions (6 digits

@@ -16,6 +16,7 @@ from .plots import (
     GAP,
     LENGTH,
     LINE,
+    MANY_SENSORS,
     READ,
     VALUE,
     WARN,
@@ -37,8 +38,9 @@ def _rim_circle(ax, domain, **kw):
 
 
 def _sensor_marks(ax, problem, legend=True):
-    ax.plot(problem.points[:, 0], problem.points[:, 1], "o", ms=4, mfc="w", mec="k",
-            label="sensor with reading" if legend else None)
+    many = len(problem.points) > MANY_SENSORS  # dense sensing: small rasterised points
+    ax.plot(problem.points[:, 0], problem.points[:, 1], "o", ms=1.5 if many else 4, mfc="w",
+            mec="k", rasterized=many, label="sensor with reading" if legend else None)
     if problem.gap_points is not None and len(problem.gap_points):
         ax.plot(problem.gap_points[:, 0], problem.gap_points[:, 1], "x", ms=6, color=WARN,
                 mew=1.5, label="sensor without reading" if legend else None)
@@ -98,8 +100,12 @@ def plot_rim_profile(ax, estimate, problem, level=0.9, unit="", arcs=None):
         if not short.all():
             limits = (ends.min() - 0.05 * np.ptp(ends), ends.max() + 0.05 * np.ptp(ends))
         err = np.minimum(err, 2 * span)
-    ax.errorbar(np.rad2deg(np.mod(th[rim], 2 * np.pi)), problem.y[rim], yerr=err, fmt="o",
-                ms=4, color=READ, label="rim reading (± sigma)")
+    if rim.sum() > MANY_SENSORS:  # dense sensing: points only (bars would hide the band)
+        ax.plot(np.rad2deg(np.mod(th[rim], 2 * np.pi)), problem.y[rim], ".", ms=1.5,
+                color="grey", alpha=0.4, rasterized=True, zorder=1, label="rim reading")
+    else:
+        ax.errorbar(np.rad2deg(np.mod(th[rim], 2 * np.pi)), problem.y[rim], yerr=err,
+                    fmt="o", ms=4, color=READ, label="rim reading (± sigma)")
     if problem.gap_points is not None and len(problem.gap_points):
         gr, gt = domain.to_polar(problem.gap_points)
         gdeg = np.rad2deg(np.mod(gt[gr > 0.999], 2 * np.pi))
