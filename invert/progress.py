@@ -45,6 +45,13 @@ class LogLines:
     def close(self):
         """Nothing to clear (the lines stay)."""
 
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
 
 def progress(total=None, *, desc, unit, every=30.0):
     """Return a tqdm bar when stderr is a terminal, else :class:`LogLines`."""

@@ -56,3 +56,11 @@ def test_estimate_shows_as_html_with_its_numbers_and_warnings():
     odd = est.__class__(mean=est.mean, cov=est.cov, domain=est.domain, method="<x>",
                         warnings=("a & b",))
     assert "&lt;x&gt;" in estimate_html(odd) and "a &amp; b" in estimate_html(odd)
+
+
+def test_lines_work_as_a_context_manager(monkeypatch):
+    # the MCMC stages use their counter in a with-block
+    buf = io.StringIO()
+    with LogLines("mcmc", "step", every=0.0, stream=buf) as bar:
+        bar.update(5)
+    assert buf.getvalue().startswith("mcmc: 5 steps")

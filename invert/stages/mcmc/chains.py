@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import sys
-
 import numpy as np
 
 from . import diagnostics as diag
@@ -24,8 +22,14 @@ def autocorr_max(chain):
 
 
 def progress_bar(total, progress, desc):
-    """Return a tqdm bar over ``total`` steps, shown only with ``progress`` on a terminal."""
-    from tqdm.auto import tqdm
+    """Return a progress counter over ``total`` steps (none without ``progress``).
 
-    show = bool(progress) and sys.stderr.isatty()
-    return tqdm(total=total, disable=not show, desc=desc, leave=False)
+    A tqdm bar on a terminal, else a plain line every 30 s (:func:`invert.progress.progress`).
+    """
+    if not progress:
+        from tqdm.auto import tqdm
+
+        return tqdm(total=total, disable=True)
+    from ...progress import progress as make
+
+    return make(total, desc=desc, unit="step")
