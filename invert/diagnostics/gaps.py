@@ -48,8 +48,9 @@ def unsensed_arcs(problem, *, spacing=None) -> np.ndarray:
         Working sensors are ``problem.points``; failed ones (gaps) ``problem.gap_points``.
     spacing : float, optional
         Nominal sensor spacing in radians; default the median ccw gap between consecutive rim
-        sensors, working or failed, but at least pi / n_modes (half a period of the highest
-        harmonic the model holds), so that a dense line's random spacing makes no arcs.
+        sensors, working or failed; for a dense line (more than 4 rim sensors per coefficient)
+        at least pi / n_modes (half a period of the highest harmonic the model holds), so that
+        its random spacing makes no arcs.
 
     Returns
     -------
@@ -65,10 +66,13 @@ def unsensed_arcs(problem, *, spacing=None) -> np.ndarray:
         return np.array([[0.0, 2 * np.pi]])
     if spacing is None:
         spacing = float(np.median(_circular_gaps(every)[1])) if every.size > 1 else 2 * np.pi
-        # a dense line of sensors (fibre optics, a camera) is spaced far below what the model
-        # resolves: gaps narrower than half a period of the highest harmonic, pi / n_modes,
-        # are no unsensed arcs (common practice: sampling finer than the model's resolution)
-        spacing = max(spacing, np.pi / max(int(getattr(problem.domain, "n_modes", 1)), 1))
+        # a dense line of sensors (fibre optics, a camera: more than 4 rim sensors per
+        # coefficient) is spaced far below what the model resolves, and its random spacing
+        # would make every gap above the median an "arc": there, gaps narrower than half a
+        # period of the highest harmonic, pi / n_modes, are no unsensed arcs (our rule)
+        n_modes = max(int(getattr(problem.domain, "n_modes", 1)), 1)
+        if every.size > 4 * (2 * n_modes + 1):
+            spacing = max(spacing, np.pi / n_modes)
     half = 0.5 * spacing
     a, gap = _circular_gaps(work)
     # Arcs narrower than 0.1 % of the spacing are rounding of typed sensor positions (6 digits
