@@ -78,7 +78,7 @@ def count_statuses(manifest, status, reason):
     ----------
     manifest : dict
         Gets (or updates) ``"counts"`` (status -> frames) and ``"reasons"`` (reason, without
-        its details after ``:``, `` at line`` or a quoted cell text, -> frames).
+        its details after ``:``, `` at line`` or an unparseable time's text, -> frames).
     status, reason : ndarray
         As returned by :func:`frame_statuses`.
     """
@@ -89,5 +89,7 @@ def count_statuses(manifest, status, reason):
         if c:
             counts[v] = counts.get(v, 0) + c
     for r in reason[~np.equal(reason, None).astype(bool)]:
-        key = str(r).split(":")[0].split(" at line")[0].split(" '")[0]
+        key = str(r).split(":")[0].split(" at line")[0]
+        if key.startswith("unparseable time '"):  # one tally, not one per cell text
+            key = "unparseable time"
         reasons[key] = reasons.get(key, 0) + 1
