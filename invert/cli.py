@@ -137,7 +137,8 @@ def build_parser():
 
     p = sub.add_parser("fit", help="fit one snapshot of readings")
     p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
-    p.add_argument("--radius", type=_positive("--radius"), required=True)
+    p.add_argument("--radius", type=_positive("--radius"), required=True,
+                   help="radius of the region, in the unit of the x, y (z) columns")
     p.add_argument("--out", type=Path, required=True, help="output folder")
     p.add_argument("--center", type=finite("--center"), nargs="+", metavar="C", default=None,
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
@@ -147,15 +148,18 @@ def build_parser():
     _add_fit_options(p)
 
     p = sub.add_parser("demo", help="run the main job on the bundled synthetic demo data")
-    p.add_argument("--out", type=Path, default=Path("demo-output"))
-    p.add_argument("--method", default="tikhonov", choices=_methods())
+    p.add_argument("--out", type=Path, default=Path("demo-output"),
+                   help="output folder (default: demo-output)")
+    p.add_argument("--method", default="tikhonov", choices=_methods(),
+                   help="stage that fits the readings (default: tikhonov)")
     p.add_argument("--seed", type=SEED, default=0,
                    help="random seed, an integer >= 0 (default: 0)")
     _add_report_options(p, threshold=95.0, unit="°C", length_unit="m")
 
     p = sub.add_parser("advise", help="rank new sensor positions and failed sensors to repair")
     p.add_argument("readings", type=Path, help="READINGS.csv: x,y,value[,sigma][,sensor]")
-    p.add_argument("--radius", type=_positive("--radius"), required=True)
+    p.add_argument("--radius", type=_positive("--radius"), required=True,
+                   help="radius of the region, in the unit of the x, y (z) columns")
     p.add_argument("--out", type=Path, required=True, help="output folder")
     p.add_argument("--center", type=finite("--center"), nargs="+", metavar="C", default=None,
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
@@ -172,8 +176,10 @@ def build_parser():
     p.add_argument("--min-spacing", type=finite("--min-spacing", 0.0), default=None,
                    help="minimum angle between new sensors, degrees (default: half the sensor "
                         "spacing)")
-    p.add_argument("--method", default="tikhonov", choices=_methods())
-    p.add_argument("--smoothness", type=float, default=2.0)
+    p.add_argument("--method", default="tikhonov", choices=_methods(),
+                   help="stage that fits the readings (default: tikhonov)")
+    p.add_argument("--smoothness", type=float, default=2.0,
+                   help="smoothness order s of the prior (default: 2)")
     p.add_argument("--seed", type=SEED, default=0,
                    help="random seed, an integer >= 0 (default: 0)")
     _add_dialect_options(p)
@@ -196,13 +202,16 @@ def _add_batch_parser(sub):
     p.add_argument("--to", dest="time_to", default=None, metavar="TIME",
                    help="database LOG: only frames with time < TIME")
     p.add_argument("--layout", type=Path, required=True, help="LAYOUT.csv: sensor,x,y[,sigma]")
-    p.add_argument("--radius", type=_positive("--radius"), required=True)
+    p.add_argument("--radius", type=_positive("--radius"), required=True,
+                   help="radius of the region, in the unit of the x, y (z) columns")
     p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--center", type=finite("--center"), nargs=2, metavar=("X", "Y"), default=None)
+    p.add_argument("--center", type=finite("--center"), nargs=2, metavar=("X", "Y"), default=None,
+                   help="centre of the disk (default: 0 0)")
     p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] (default: the centre)")
     p.add_argument("--assimilate", action="store_true",
                    help="Kalman filter + RTS smoother over time instead of per-frame fits")
-    p.add_argument("--engine", default="local", choices=["local", "dask"])
+    p.add_argument("--engine", default="local", choices=["local", "dask"],
+                   help="run the chunks in this process (local, default) or on dask.distributed")
     p.add_argument("--scheduler", default=None, help="address of an existing dask scheduler")
     p.add_argument("--format", default="parquet", choices=["csv", "parquet", "netcdf"],
                    dest="fmt", help="frames and query tables as csv or parquet; netcdf: "
@@ -219,8 +228,10 @@ def _add_batch_parser(sub):
                    help="fix the time scale of the dynamics (default: maximum likelihood)")
     p.add_argument("--level", type=float, default=0.9,
                    help="probability of the central intervals (default: 0.9)")
-    p.add_argument("--smoothness", type=float, default=2.0)
-    p.add_argument("--n-modes", type=int_at_least("--n-modes", 1), default=None)
+    p.add_argument("--smoothness", type=float, default=2.0,
+                   help="smoothness order s of the prior (default: 2)")
+    p.add_argument("--n-modes", type=int_at_least("--n-modes", 1), default=None,
+                   help="highest harmonic degree (default: chosen from the prior)")
     p.add_argument("--chunk-rows", type=int_at_least("--chunk-rows", 1), default=65536,
                    help="frames per chunk, >= 1 (default: 65536)")
     _add_dialect_options(p)
