@@ -40,3 +40,11 @@ def noisy_problem(rng, domain, points, c, sigma, *, known=True, sensor=None):
     y = G @ c + sigma * rng.standard_normal(len(points))
     return LinearProblem(G, y, np.full(len(points), sigma) if known else None, domain.degrees,
                          domain.eigenvalues, domain, sensor=sensor, points=points)
+
+
+def write_ring_layout(path, n_sensors):
+    """Write LAYOUT.csv of ``n_sensors`` sensors ``s0, s1, ...`` evenly on the unit circle."""
+    th = np.linspace(0, 2 * np.pi, n_sensors, endpoint=False)
+    path.write_text("sensor,x,y\n" + "".join(f"s{i},{np.cos(t):.12f},{np.sin(t):.12f}\n"
+                                             for i, t in enumerate(th)))
+    return path

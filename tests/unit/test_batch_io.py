@@ -11,6 +11,7 @@ import csv
 import numpy as np
 import pandas as pd
 import pytest
+from scenarios import write_ring_layout
 
 from invert.batch.runner import run_batch
 
@@ -19,11 +20,7 @@ N_SENSORS = 6
 
 @pytest.fixture
 def layout(tmp_path):
-    th = np.linspace(0, 2 * np.pi, N_SENSORS, endpoint=False)
-    path = tmp_path / "layout.csv"
-    path.write_text("sensor,x,y\n" + "".join(f"s{i},{np.cos(t):.12f},{np.sin(t):.12f}\n"
-                                             for i, t in enumerate(th)))
-    return path
+    return write_ring_layout(tmp_path / "layout.csv", N_SENSORS)
 
 
 def _rows(n, rng):

@@ -10,6 +10,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+from scenarios import write_ring_layout
 
 from invert.batch.runner import run_batch
 from invert.io.logs import open_log
@@ -21,11 +22,7 @@ SENSORS = [f"s{i}" for i in range(N_SENSORS)]
 
 @pytest.fixture
 def layout(tmp_path):
-    th = np.linspace(0, 2 * np.pi, N_SENSORS, endpoint=False)
-    path = tmp_path / "layout.csv"
-    path.write_text("sensor,x,y\n" + "".join(f"s{i},{np.cos(t):.12f},{np.sin(t):.12f}\n"
-                                             for i, t in enumerate(th)))
-    return path
+    return write_ring_layout(tmp_path / "layout.csv", N_SENSORS)
 
 
 def _frames(rng):
