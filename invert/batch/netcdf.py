@@ -28,6 +28,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..io.arrow import string_codes
+
 __all__ = ["write_results_nc", "NETCDF_NAME"]
 
 #: File name of the netCDF output.
@@ -45,8 +47,7 @@ def _accepted(frames_path):
     keep = pc.invert(pc.equal(status, "rejected")).fill_null(False)
     tab = tab.filter(keep)
     t = tab.column("time").combine_chunks()
-    codes = np.array([_STATUS[s] for s in pc.cast(tab.column("status"), "string").to_pylist()],
-                     np.int8)
+    codes = string_codes(tab.column("status"), list(_STATUS)).astype(np.int8)
     return t, codes, int(len(keep) - pc.sum(keep).as_py())
 
 

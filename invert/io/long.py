@@ -31,8 +31,9 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import InputError
+from .arrow import string_codes
 from .cells import parse_cells
-from .sources import Chunk, exact_times
+from .sources import Chunk, concat_times
 from .times import TimeReader
 
 __all__ = ["LongLogReader", "is_long", "GOOD_FLAGS"]
@@ -179,8 +180,7 @@ class LongLogReader:
                     continue
         t, tbad = self.times.column(tcol)
         scol = pc.utf8_trim_whitespace(batch.column(self.roles["sensor"]).cast(pa.string()))
-        idx = pc.index_in(scol, value_set=pa.array(self.sensors, pa.string()))
-        idx = np.asarray(idx.fill_null(-1).to_numpy(zero_copy_only=False), np.int64)
+        idx = string_codes(scol, self.sensors)
         vcol = batch.column(self.roles["value"])
         if pa.types.is_floating(vcol.type) or pa.types.is_integer(vcol.type):
             v = np.asarray(vcol.cast(pa.float64()).to_numpy(zero_copy_only=False), float)
@@ -201,11 +201,15 @@ class LongLogReader:
             self._flagged += int((bad_flag & np.isfinite(v)).sum())
             v = np.where(bad_flag, np.nan, v)
         reason = np.full(n, None, dtype=object)
-        for i in np.flatnonzero(vbad):
-            text = vcol.cast(pa.string())[int(i)].as_py()
-            reason[i] = f"non-numeric value for sensor {scol[int(i)].as_py()!r}: {text!r}"
-        for i in np.flatnonzero(tbad == 1):
-            reason[i] = f"unparseable time {str(tcol.cast(pa.string())[int(i)].as_py()).strip()!r}"
+        if vbad.any():  # the texts of the few bad rows, cast once
+            vtext = vcol.cast(pa.string())
+            for i in np.flatnonzero(vbad):
+                reason[i] = (f"non-numeric value for sensor {scol[int(i)].as_py()!r}: "
+                             f"{vtext[int(i)].as_py()!r}")
+        if (tbad == 1).any():
+            ttext = tcol.cast(pa.string())
+            for i in np.flatnonzero(tbad == 1):
+                reason[i] = f"unparseable time {str(ttext[int(i)].as_py()).strip()!r}"
         for i in np.flatnonzero(tbad == 2):
             reason[i] = "missing time"
         unknown = idx < 0
@@ -265,12 +269,7 @@ def _join(*pieces):
     if not pieces:
         return _piece(np.zeros(0), np.zeros(0, np.int64), np.zeros(0),
                       np.zeros(0, object), np.zeros(0, bool))
-    ts = [p["t"] for p in pieces]
-    if any(exact_times(x) for x in ts):
-        from .sources import NO_TIME
-
-        ts = [x if exact_times(x) else np.full(len(x), NO_TIME) for x in ts]
-    return _piece(np.concatenate(ts), *(np.concatenate([p[k] for p in pieces])
+    return _piece(concat_times([p["t"] for p in pieces]), *(np.concatenate([p[k] for p in pieces])
                                         for k in ("idx", "v", "reason", "tbad")))
 
 

@@ -15,7 +15,8 @@ from typing import Protocol, runtime_checkable
 
 import numpy as np
 
-__all__ = ["Chunk", "LogSource", "NO_TIME", "seconds", "has_time", "exact_times"]
+__all__ = ["Chunk", "LogSource", "NO_TIME", "seconds", "has_time", "exact_times",
+           "concat_times"]
 
 #: ``Chunk.t`` of a date-time log where a frame has no usable time (integer nanoseconds).
 NO_TIME = np.iinfo(np.int64).min
@@ -46,6 +47,17 @@ def has_time(t):
 def exact_times(t):
     """Return whether ``t`` holds integer nanoseconds (a date-time log's exact times)."""
     return np.issubdtype(np.asarray(t).dtype, np.integer)
+
+
+def concat_times(parts):
+    """Concatenate time arrays of one log; float parts among date-time ones hold no time.
+
+    A part read before the log's time kind was known (blank times only) comes as float NaN;
+    beside integer-nanosecond parts it becomes :data:`NO_TIME`.
+    """
+    if any(exact_times(t) for t in parts):
+        parts = [t if exact_times(t) else np.full(len(t), NO_TIME) for t in parts]
+    return np.concatenate(parts)
 
 
 @dataclass

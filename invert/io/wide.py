@@ -25,7 +25,7 @@ from .arrow import float_values
 from .cells import NULLS, LineCounter, parse_cells
 from .dialect import Dialect, sniff_file
 from .header import header_lines, header_pattern, parse_header
-from .sources import NO_TIME, Chunk, exact_times
+from .sources import Chunk, concat_times
 from .times import TimeReader
 
 __all__ = ["WideLogReader", "log_signature"]
@@ -450,10 +450,7 @@ def _text_encoding(dialect):
 
 
 def _concat(*parts):
-    ts = [c.t for c in parts]
-    if any(exact_times(t) for t in ts):  # date-times; float parts hold no time at all
-        ts = [t if exact_times(t) else np.full(len(t), NO_TIME) for t in ts]
-    return Chunk(np.concatenate([c.frame for c in parts]), np.concatenate(ts),
+    return Chunk(np.concatenate([c.frame for c in parts]), concat_times([c.t for c in parts]),
                  np.vstack([c.Y for c in parts]), np.concatenate([c.reason for c in parts]))
 
 

@@ -22,6 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..io.arrow import string_codes
 from .plots import BAND, LINE, WARN, mpl_pyplot, save_figure, shorten
 
 __all__ = ["write_batch_report", "envelopes", "N_BINS"]
@@ -55,12 +56,9 @@ def _seconds(col):
 
 def _status_columns(frames):
     """Count each status per block of frames (frame order): ``(edges, counts)``."""
-    import pyarrow.compute as pc
-
     codes = []
     for b in _batches(frames, ["status"]):
-        s = pc.cast(b.column(0), "string").to_pylist()
-        codes.append(np.array([_STATUS_CODES.get(x, 2) for x in s], np.int8))
+        codes.append(string_codes(b.column(0), list(_STATUS_CODES), missing=2).astype(np.int8))
     codes = np.concatenate(codes) if codes else np.zeros(0, np.int8)
     n = len(codes)
     edges = np.linspace(0, max(n, 1), min(N_BINS, max(n, 1)) + 1)
@@ -77,10 +75,10 @@ def _raw_series(query, labels):
     tab = pa.Table.from_batches(list(_batches(query, ["time", "label", "mean", "lower",
                                                       "upper"])))
     t, dt = _seconds(tab.column("time").combine_chunks())
-    lab = np.array([str(x) for x in tab.column("label").to_pylist()], dtype=object)
+    lab = string_codes(tab.column("label"), labels)
     out = []
-    for name in labels:
-        k = lab == str(name)
+    for i in range(len(labels)):
+        k = lab == i
         out.append([t[k]] + [np.asarray(tab.column(c).to_numpy(), float)[k]
                              for c in ("mean", "lower", "upper")])
     return out, dt
@@ -102,11 +100,10 @@ def envelopes(query, labels, t_range):
     lo = np.full((nq, N_BINS), np.inf)
     hi = np.full((nq, N_BINS), -np.inf)
     mlo, mhi = lo.copy(), hi.copy()
-    index = {str(x): i for i, x in enumerate(labels)}
     dt = False
     for b in _batches(query, ["time", "label", "mean", "lower", "upper"]):
         t, dt = _seconds(b.column(0))
-        lab = np.array([index.get(str(x), -1) for x in b.column(1).to_pylist()])
+        lab = string_codes(b.column(1), labels)
         col = np.clip(np.searchsorted(edges, t, side="right") - 1, 0, N_BINS - 1)
         vals = [np.asarray(b.column(k).to_numpy(zero_copy_only=False), float)
                 for k in ("mean", "lower", "upper")]
