@@ -127,46 +127,45 @@ def _x(edges, dt):
     return (mid * 1e9).astype("datetime64[ns]") if dt else mid
 
 
+def _series_figure(plt, out, query, labels, t_rng, unit, level):
+    """Draw the query series: every frame of a short log, envelopes per column of a long one."""
+    n = len(labels)
+    fig, axes = plt.subplots(n, 1, figsize=(10, 2.2 * n + 0.8), sharex=True, squeeze=False)
+    if _n_rows(query) <= 2 * N_BINS * n:
+        series, dt = _raw_series(query, labels)
+        for (t, m, lo, hi), ax in zip(series, axes[:, 0], strict=True):
+            x = (t * 1e9).astype("datetime64[ns]") if dt else t
+            ax.fill_between(x, lo, hi, color=BAND, lw=0, label=f"{level:.0%} band")
+            ax.plot(x, m, color=LINE, lw=0.8, label="mean")
+        caption = f"Posterior mean and {level:.0%} band at each query point, every frame."
+    else:
+        edges, lo, hi, mlo, mhi, dt = envelopes(query, labels, t_rng)
+        x = _x(edges, dt)
+        for i, ax in enumerate(axes[:, 0]):
+            has = np.isfinite(lo[i]) & np.isfinite(hi[i])
+            ax.fill_between(x, np.where(has, lo[i], np.nan), np.where(has, hi[i], np.nan),
+                            color=BAND, lw=0, label=f"{level:.0%} band")
+            ax.fill_between(x, np.where(has, mlo[i], np.nan), np.where(has, mhi[i], np.nan),
+                            color=LINE, lw=0.8, label="mean")
+        caption = (f"Posterior mean and {level:.0%} band at each query point. The time axis "
+                   f"has {N_BINS} columns; each shows the lowest lower and highest upper "
+                   f"bound, and the range of the mean, of the frames in it (no extreme is "
+                   f"hidden).")
+    for ax, name in zip(axes[:, 0], labels, strict=True):
+        ax.set_ylabel(f"{shorten(str(name), 18)}" + (f" ({unit})" if unit else ""))
+    axes[0, 0].legend(loc="upper right", fontsize=8)
+    _time_axis(axes[-1, 0], dt)
+    fig.suptitle("query points: posterior mean and credible band")
+    fig.tight_layout()
+    return save_figure(plt, fig, out / "batch_series.png"), caption
+
+
 def _figures(out, frames, query, labels, missing, unit, level):
     plt = mpl_pyplot()
     figs = []
     t_rng = _time_range(frames)
-    if t_rng is not None and labels and _n_rows(query) <= 2 * N_BINS * len(labels):
-        series, dt = _raw_series(query, labels)
-        n = len(labels)
-        fig, axes = plt.subplots(n, 1, figsize=(10, 2.2 * n + 0.8), sharex=True, squeeze=False)
-        for (t, m, lo, hi), ax, name in zip(series, axes[:, 0], labels, strict=True):
-            x = (t * 1e9).astype("datetime64[ns]") if dt else t
-            ax.fill_between(x, lo, hi, color=BAND, lw=0, label=f"{level:.0%} band")
-            ax.plot(x, m, color=LINE, lw=0.8, label="mean")
-            ax.set_ylabel(f"{shorten(str(name), 18)}" + (f" ({unit})" if unit else ""))
-        axes[0, 0].legend(loc="upper right", fontsize=8)
-        _time_axis(axes[-1, 0], dt)
-        fig.suptitle("query points: posterior mean and credible band")
-        fig.tight_layout()
-        figs.append((save_figure(plt, fig, out / "batch_series.png"),
-                     f"Posterior mean and {level:.0%} band at each query point, every frame."))
-    elif t_rng is not None and labels:
-        edges, lo, hi, mlo, mhi, dt = envelopes(query, labels, t_rng)
-        n = len(labels)
-        fig, axes = plt.subplots(n, 1, figsize=(10, 2.2 * n + 0.8), sharex=True, squeeze=False)
-        x = _x(edges, dt)
-        for i, ax in enumerate(axes[:, 0]):
-            has = np.isfinite(lo[i]) & np.isfinite(hi[i])
-            lo_i, hi_i = np.where(has, lo[i], np.nan), np.where(has, hi[i], np.nan)
-            ax.fill_between(x, lo_i, hi_i, color=BAND, lw=0, label=f"{level:.0%} band")
-            ax.fill_between(x, np.where(has, mlo[i], np.nan), np.where(has, mhi[i], np.nan),
-                            color=LINE, lw=0.8, label="mean")
-            ax.set_ylabel(f"{shorten(str(labels[i]), 18)}" + (f" ({unit})" if unit else ""))
-        axes[0, 0].legend(loc="upper right", fontsize=8)
-        _time_axis(axes[-1, 0], dt)
-        fig.suptitle("query points: posterior mean and credible band")
-        fig.tight_layout()
-        figs.append((save_figure(plt, fig, out / "batch_series.png"),
-                     f"Posterior mean and {level:.0%} band at each query point. The time axis "
-                     f"has {N_BINS} columns; each shows the lowest lower and highest upper "
-                     f"bound, and the range of the mean, of the frames in it (no extreme is "
-                     f"hidden)."))
+    if t_rng is not None and labels:
+        figs.append(_series_figure(plt, out, query, labels, t_rng, unit, level))
     edges, counts = _status_columns(frames)
     fig, ax = plt.subplots(figsize=(10, 2.2))
     mid = 0.5 * (edges[:-1] + edges[1:])
