@@ -16,7 +16,12 @@ width + (2/alpha) * distance of a miss), with how often a sensor was named. Run:
 
     python bench/bench_calibration.py [n_trials] [--ordinary]    (default 20 trials)
 
-``--ordinary`` runs the Tikhonov stage without the robust step (gross errors, faulty sensors).
+``--ordinary`` runs the Tikhonov stage without the robust step (gross errors, faulty sensors);
+``--method NAME`` runs another stage through the same robust wrapper as ``fit`` does
+(``--method averaged``: the hyperparameter-averaged posterior with suspects mixed in;
+``--method tikhonov-upre``: Tikhonov with the noise known and lambda by UPRE, no robust step,
+the reference of the interval-score goal). A sensor counts as named when the fit names it
+in ``robust`` (excluded) or as a suspect of probability >= NAME_PROBABILITY (0.9).
 
 References
 ----------
@@ -31,12 +36,14 @@ import numpy as np
 
 from invert import LinearProblem
 from invert.prior import SmoothnessPrior
+from invert.stages.suspects import NAME_PROBABILITY
 from invert.workflow import make_domain, robust_stage, run_stage
 
 LEVEL, SIGMA, N_RIM, GAP = 0.9, 0.05, 24, 4
 FAMILIES = ("prior", "step", "source", "trend")
 #: ``--ordinary``: the stage without the robust step, for comparison.
 ORDINARY = "--ordinary" in sys.argv
+METHOD = sys.argv[sys.argv.index("--method") + 1] if "--method" in sys.argv else "tikhonov"
 
 
 def interval_score(lo, hi, x, alpha=1 - LEVEL):
@@ -91,11 +98,17 @@ def trial(rng, d, kind, fault=None, interior_only=False):
                        points=pts)
     if ORDINARY:
         est = run_stage(pb, "tikhonov", rule="evidence")
-    else:
+    elif METHOD == "tikhonov-upre":
+        est = run_stage(pb, "tikhonov", rule="upre")
+    elif METHOD == "tikhonov":
         est, _ = robust_stage(pb, "tikhonov", rule="evidence")
+    else:
+        est, _ = robust_stage(pb, METHOD)
     inner = d.from_polar(0.8 * np.sqrt(rng.uniform(0, 1, 12)), rng.uniform(0, 2 * np.pi, 12))
     rob = est.info.get("robust", {})
-    named = len(rob.get("faulty", {})) + len(rob.get("gross_errors", {}))
+    sus = est.info.get("suspects", {}).get("probability", {})
+    named = len(rob.get("faulty", {})) + len(rob.get("gross_errors", {})) + \
+        sum(p >= NAME_PROBABILITY for p in sus.values())
     out = {}
     for where, q in (("interior", inner), ("gap", None if interior_only else gap)):
         if q is None:
@@ -112,7 +125,7 @@ def main(n_trials=20):
     d = make_domain(1.0)
     cases = [(k, None, False) for k in FAMILIES] + [(k, "faulty", False) for k in FAMILIES]
     cases += [("prior", None, True), ("prior", "sentinel", False)]
-    print(f"default fit, {LEVEL:.0%} intervals, {n_trials} seeded trials per family "
+    print(f"{METHOD} fit, {LEVEL:.0%} intervals, {n_trials} seeded trials per family "
           f"(binomial sd of a coverage of 0.9 over 12 x {n_trials} points: about "
           f"{np.sqrt(0.09 / (12 * n_trials)):.3f}, more with correlated points)")
     print(f"{'family':28s} {'cov interior':>12s} {'cov gap':>8s} {'IS interior':>12s} "
@@ -136,6 +149,6 @@ def main(n_trials=20):
 
 
 if __name__ == "__main__":
-    args = [a for a in sys.argv[1:] if not a.startswith("--")]
+    args = [a for a in sys.argv[1:] if not a.startswith("--") and a != METHOD]
     main(int(args[0]) if args else 20)
 

@@ -26,6 +26,7 @@ from .cli_checks import (
     refuse_all_rejected,
 )
 from .errors import InputError
+from .stages.registry import DEFAULT_METHOD
 
 EXIT_BAD_INPUT = 2
 #: Exit code when the operating system refused a read or write (disk full, permissions).
@@ -69,8 +70,9 @@ def _dialect(args):
 
 
 def _add_fit_options(p):
-    p.add_argument("--method", default="tikhonov", choices=_methods(),
-                   help="inference stage (default: tikhonov)")
+    p.add_argument("--method", default=None, choices=_methods(),
+                   help="inference stage (default: averaged; tikhonov when --rule or --lam "
+                        "is given)")
     p.add_argument("--rule", default=None,
                    help="tikhonov parameter choice: evidence, gcv, loo, lcurve, discrepancy, "
                         "upre (default: evidence)")
@@ -150,8 +152,8 @@ def build_parser():
     p = sub.add_parser("demo", help="run the main job on the bundled synthetic demo data")
     p.add_argument("--out", type=Path, default=Path("demo-output"),
                    help="output folder (default: demo-output)")
-    p.add_argument("--method", default="tikhonov", choices=_methods(),
-                   help="stage that fits the readings (default: tikhonov)")
+    p.add_argument("--method", default=DEFAULT_METHOD, choices=_methods(),
+                   help=f"stage that fits the readings (default: {DEFAULT_METHOD})")
     p.add_argument("--seed", type=SEED, default=0,
                    help="random seed, an integer >= 0 (default: 0)")
     _add_report_options(p, threshold=95.0, unit="°C", length_unit="m")
@@ -176,8 +178,8 @@ def build_parser():
     p.add_argument("--min-spacing", type=finite("--min-spacing", 0.0), default=None,
                    help="minimum angle between new sensors, degrees (default: half the sensor "
                         "spacing)")
-    p.add_argument("--method", default="tikhonov", choices=_methods(),
-                   help="stage that fits the readings (default: tikhonov)")
+    p.add_argument("--method", default=DEFAULT_METHOD, choices=_methods(),
+                   help=f"stage that fits the readings (default: {DEFAULT_METHOD})")
     p.add_argument("--smoothness", type=float, default=2.0,
                    help="smoothness order s of the prior (default: 2)")
     p.add_argument("--seed", type=SEED, default=0,
@@ -253,11 +255,18 @@ MAX_STEPS = 20000
 
 def _fit_options(args):
     """Stage options from the fit options; an option the chosen method would ignore is an error."""
-    method = getattr(args, "method", "tikhonov")
+    method = getattr(args, "method", DEFAULT_METHOD)
     if method != "mcmc" and (args.faulty or args.angle_sd is not None
                              or args.max_steps is not None):
         raise ValueError(f"--faulty, --angle-sd and --max-steps belong to --method mcmc; the "
                          f"{method} fit would ignore them")
+    if method == "averaged":
+        if args.fix_smoothness:
+            raise ValueError("--fix-smoothness belongs to --method gaussian or mcmc; the "
+                             "averaged fit averages over the smoothness order")
+        if args.lam is not None or args.noise_sd is not None or args.rule is not None:
+            raise ValueError("--lam, --noise-sd and --rule belong to --method tikhonov")
+        return {}
     if method in ("gaussian", "mcmc"):
         if args.lam is not None or args.noise_sd is not None or args.rule is not None:
             raise ValueError("--lam, --noise-sd and --rule belong to --method tikhonov")
@@ -279,7 +288,7 @@ def _fit_options(args):
     return opts
 
 
-def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query=None,
+def run_fit(readings_path, *, radius, out, center=None, method=None, query=None,
             level=0.9, seed=0, smoothness=2.0, n_modes=None, grid=81, figures=False,
             stage_options=None, say=print, threshold=None, unit="", length_unit="",
             domain="disk", dialect=None):
@@ -314,6 +323,9 @@ def run_fit(readings_path, *, radius, out, center=None, method="tikhonov", query
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:
+            if method is None:  # as the command line: Tikhonov options name the Tikhonov stage
+                tik = {"rule", "lam", "noise_sd"} & set(stage_options or {})
+                method = "tikhonov" if tik else DEFAULT_METHOD
             estimate, problem = workflow.robust_stage(problem, method, s=smoothness,
                                                       seed=seed, **(stage_options or {}))
         except ValueError as exc:  # e.g. too few readings: name the file they came from
@@ -493,9 +505,17 @@ def _cmd_batch(args):
     refuse_all_rejected(args, summary)
 
 
+def resolve_method(args):
+    """Set ``args.method`` when not given: tikhonov with --rule/--lam/--noise-sd, else the default."""
+    if getattr(args, "method", "") is None:
+        tik = any(getattr(args, k, None) is not None for k in ("rule", "lam", "noise_sd"))
+        args.method = "tikhonov" if tik else DEFAULT_METHOD
+    return args
+
+
 def main(argv=None):
     """Entry point of the ``rim-invert`` command."""
-    args = build_parser().parse_args(argv)
+    args = resolve_method(build_parser().parse_args(argv))
     try:
         {"fit": _cmd_fit, "demo": _cmd_demo, "advise": _cmd_advise,
          "batch": _cmd_batch}[args.command](args)

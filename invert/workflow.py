@@ -18,8 +18,9 @@ from .geometry import domain_class
 from .io.readings import Readings, load_readings
 from .problem import LinearProblem
 from .stages._truncation import truncation_for
-from .stages.registry import STAGES, stage_names
+from .stages.registry import DEFAULT_METHOD, STAGES, stage_names
 from .stages.robust import robust_fit
+from .stages.suspects import screened_mixture
 
 __all__ = ["fit", "make_domain", "as_readings", "problem_from_readings", "run_stage",
            "make_stage", "problem_for_stage", "fit_stage", "residual_dof_warning", "METHODS",
@@ -78,7 +79,7 @@ def problem_from_readings(readings, domain):
     return problem
 
 
-def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.0,
+def fit(readings, *, radius=1.0, center=None, method=None, rule=None, s=2.0,
         n_modes=None, kind="disk", **options):
     """Fit readings and return an :class:`~invert.problem.Estimate`.
 
@@ -88,8 +89,11 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.
         Columns ``x, y, value`` and optional ``sigma, sensor`` (a blank value is a gap).
     radius : float, default=1.0
     center : (float, float), optional
-    method : {"tikhonov", "gaussian", "mcmc"}, default="tikhonov"
-        The stage (:data:`invert.stages.registry.STAGES`): ``tikhonov`` (regularised least
+    method : {"averaged", "tikhonov", "gaussian", "mcmc"}, optional
+        The stage (:data:`invert.stages.registry.STAGES`); by default ``averaged`` (the
+        closed-form posterior averaged over the smoothness order and prior scale,
+        :class:`~invert.stages.averaged.AveragedPosterior`), or ``tikhonov`` when ``rule`` or
+        a Tikhonov option (``lam``, ``noise_sd``) is given. ``tikhonov`` (regularised least
         squares, :class:`~invert.stages.tikhonov.Tikhonov`), ``gaussian`` (closed-form
         posterior at evidence-optimal hyperparameters,
         :class:`~invert.stages.gaussian.GaussianPosterior`) or ``mcmc`` (posterior draws with
@@ -126,9 +130,12 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.
     >>> round(float(est.at([[0.0, 0.0]]).mean[0]), 1)
     20.0
     """
+    if method is None:
+        tik = rule is not None or "lam" in options or "noise_sd" in options
+        method = "tikhonov" if tik else DEFAULT_METHOD
     if method not in METHODS:
         raise ValueError(f"The 'method' parameter of fit must be one of {METHODS} "
-                         f"(tikhonov, gaussian, mcmc: see invert.fit). Got {method!r} instead.")
+                         f"(see invert.fit). Got {method!r} instead.")
     if rule is not None and method != "tikhonov":
         raise ValueError(f"The 'rule' parameter of fit belongs to method='tikhonov'; "
                          f"method={method!r} chooses its hyperparameters itself.")
@@ -142,6 +149,9 @@ def fit(readings, *, radius=1.0, center=None, method="tikhonov", rule=None, s=2.
 
 #: Methods whose fit is wrapped by :func:`invert.stages.robust.robust_fit` (the default).
 ROBUST_METHODS = ("tikhonov",)
+#: Methods whose fit is wrapped by :func:`invert.stages.suspects.screened_mixture` (gross
+#: errors left out, doubtful readings mixed into the posterior).
+MIXTURE_METHODS = ("averaged",)
 
 
 def robust_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
@@ -154,9 +164,14 @@ def robust_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
         The problem the estimate was fitted to: the given one, or without the readings the
         robust step excluded (they are moved to the gaps and named in the warnings).
     """
+    def fit_fn(p):
+        return run_stage(p, method, s=s, seed=seed, **options)
+
+    if method in MIXTURE_METHODS:
+        return screened_mixture(problem, fit_fn)
     if method not in ROBUST_METHODS:
-        return run_stage(problem, method, s=s, seed=seed, **options), problem
-    return robust_fit(problem, lambda p: run_stage(p, method, s=s, seed=seed, **options))
+        return fit_fn(problem), problem
+    return robust_fit(problem, fit_fn)
 
 
 def make_stage(method="tikhonov", *, s=2.0, seed=None, **options):

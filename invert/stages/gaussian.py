@@ -53,7 +53,7 @@ from ._checks import check_positive, check_s_bounds
 from ._search import grid_then_refine
 from ._spectrum import Spectrum, unit_factor
 
-__all__ = ["GaussianPosterior", "gaussian_posterior", "DEFAULT_S_BOUNDS"]
+__all__ = ["GaussianPosterior", "gaussian_posterior", "evidence_for", "DEFAULT_S_BOUNDS"]
 
 _LOG2PI = float(np.log(2 * np.pi))
 
@@ -96,6 +96,16 @@ class _Evidence:
         _, nu = self.hypers(alpha)
         m = self.spec.m
         return -0.5 * (quad / nu**2 + m * np.log(nu**2) + logdet + m * _LOG2PI) + self.spec.log_w
+
+
+def evidence_for(spec, mode, tau=None, noise=None):
+    """Log evidence over ``alpha`` for one :class:`~invert.stages._spectrum.Spectrum`.
+
+    ``mode`` is ``"profile"`` (common noise level profiled out), ``"tau"`` (``tau`` fixed) or
+    ``"noise"`` (noise level ``noise`` fixed; 1 with given sigmas). The returned callable maps
+    an array of ``alpha`` to log evidence and has ``hypers(alpha) -> (tau, nu)``.
+    """
+    return _Evidence(spec, mode, tau, noise)
 
 
 def _maximise_log(fun, grid):

@@ -19,18 +19,26 @@ from __future__ import annotations
 
 from types import MappingProxyType
 
+from .averaged import AveragedPosterior
 from .gaussian import GaussianPosterior
 from .mcmc import MCMCSampler
 from .tikhonov import Tikhonov
 
-__all__ = ["STAGES", "stage_names"]
+__all__ = ["STAGES", "stage_names", "DEFAULT_METHOD"]
 
 #: Method name -> stage class, in the order the command line lists them.
 STAGES = MappingProxyType({
     "tikhonov": Tikhonov,
     "gaussian": GaussianPosterior,
+    "averaged": AveragedPosterior,
     "mcmc": MCMCSampler,
 })
+
+
+#: The stage of ``fit``, ``demo`` and ``advise`` when no method is named: the posterior averaged
+#: over the hyperparameters, with gross errors left out and doubtful readings mixed in
+#: (chosen by measurement, ``bench/bench_calibration.py``; README "Calibration").
+DEFAULT_METHOD = "averaged"
 
 
 def stage_names() -> tuple:

@@ -52,8 +52,8 @@ from scipy import stats
 from ..errors import FitWarning
 
 __all__ = ["Z_GROSS", "RANGE_LIMIT", "FAULT_RATE", "FLAG_PROBABILITY", "loo_predictive",
-           "predictive", "fault_probabilities", "without", "screen", "sigma_bad_for",
-           "robust_fit"]
+           "predictive", "fault_probabilities", "without", "screen", "range_screen",
+           "sigma_bad_for", "robust_fit", "gross_notes"]
 
 #: Predictive sd beyond which a reading is a gross error. Under the model the leave-one-out
 #: standardised error is N(0, 1) (Student-t on the residual dof when the noise level is
@@ -203,6 +203,24 @@ def _range_screen(problem, fit_fn, keep, limit, z_limit):
     return found
 
 
+def range_screen(problem, fit_fn, z_limit=Z_GROSS, max_fraction=0.25):
+    """Gross errors among values far outside the ring's spread, in one refit (module Notes).
+
+    The first step of :func:`screen` alone: values more than :data:`RANGE_LIMIT` robust sd
+    from the median are left out together, the stage refitted on the rest, and each of them
+    whose standardised error from that fit exceeds ``z_limit`` is a gross error.
+
+    Returns
+    -------
+    dict
+        Index of each gross error -> its standardised error from the rest.
+    """
+    m = problem.n_readings
+    keep = np.ones(m, bool)
+    limit = max(min(int(max_fraction * m), m - 4), 0)
+    return _range_screen(problem, fit_fn, keep, limit, z_limit)
+
+
 def _candidates(problem, keep):
     idx = np.flatnonzero(keep)
     if idx.size > MAX_CANDIDATES:  # large problems: the most extreme values only
@@ -286,6 +304,14 @@ def sigma_bad_for(estimate, problem):
     return max(float(np.std(problem.y)), 10.0 * typical)
 
 
+def gross_notes(problem, gross):
+    """One warning per gross error (``gross``: index -> standardised error from the rest)."""
+    sensors = np.asarray(problem.sensor).astype(str)
+    return [f"reading of sensor {sensors[i]} ({problem.y[i]:.6g}) lies {abs(z):.3g} "
+            f"predictive sd from what the other readings allow: excluded as a gross error "
+            f"(a sentinel value, a unit slip or a spike?)" for i, z in sorted(gross.items())]
+
+
 def robust_fit(problem, fit_fn):
     """Gross-error and faulty-reading screening around ``fit_fn`` (module Notes).
 
@@ -316,9 +342,7 @@ def robust_fit(problem, fit_fn):
         mu, var, nv = predictive(est, problem.subset(np.array(faulty)))
         prob[faulty] = fault_probabilities(problem.y[faulty], mu, var, nv,
                                            sigma_bad_for(est, final), FAULT_RATE, est.df)
-    notes = [f"reading of sensor {sensors[i]} ({problem.y[i]:.6g}) lies {abs(z):.3g} "
-             f"predictive sd from what the other readings allow: excluded as a gross error "
-             f"(a sentinel value, a unit slip or a spike?)" for i, z in sorted(gross.items())]
+    notes = gross_notes(problem, gross)
     notes += [f"sensor {sensors[i]} is probably faulty (fault probability {prob[i]:.3g} under "
               f"the good/faulty mixture): its reading ({problem.y[i]:.6g}) was left out of "
               f"the fit" for i in faulty]

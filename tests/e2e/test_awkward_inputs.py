@@ -133,7 +133,7 @@ def test_batch_on_a_european_log_equals_the_comma_log(tmp_path, capsys):
 # --- silently ignored or changed inputs -------------------------------------------------------
 @pytest.mark.parametrize("opts,message", [
     (["--faulty"], "--faulty, --angle-sd and --max-steps belong to --method mcmc; the "
-                   "tikhonov fit would ignore them"),
+                   "averaged fit would ignore them"),
     (["--angle-sd", "2", "--method", "gaussian"], "the gaussian fit would ignore them"),
     (["--max-steps", "100"], "--max-steps belong to --method mcmc"),
     (["--rule", "gcv", "--method", "gaussian"], "--rule belong to --method tikhonov"),

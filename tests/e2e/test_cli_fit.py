@@ -34,7 +34,7 @@ def test_demo_writes_everything(tmp_path, capsys):
     q = pd.read_csv(d / "query.csv")
     assert list(q.columns) == ["label", "x", "y", "mean", "sd", "lower", "upper"]
     s = json.loads((d / "summary.json").read_text())
-    assert s["method"] == "tikhonov" and s["readings"]["n_gaps"] == 8
+    assert s["method"] == "averaged" and s["readings"]["n_gaps"] == 8
     assert any("harmonic" in c for c in s["cautions"])
 
 

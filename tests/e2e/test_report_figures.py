@@ -271,7 +271,7 @@ def test_nearly_interpolating_fit_warns_about_residual_dof(tmp_path):
 def test_ball_demo_summary_warns_about_residual_dof(tmp_path):
     out = tmp_path / "ball"
     s = run_fit(ROOT / "datasets" / "ball_readings.csv", radius=1.2, out=out, domain="ball",
-                say=lambda s: None)
+                method="tikhonov", say=lambda s: None)
     assert s["residual_dof"] < 3
     saved = json.loads((out / "summary.json").read_text())
     assert any("residual degrees of freedom are left of 37" in w for w in saved["warnings"])
@@ -298,7 +298,7 @@ def test_fit_names_every_method_and_rule_only_for_tikhonov():
     doc = invert.fit.__doc__
     for m in invert.workflow.METHODS:
         assert f'"{m}"' in doc
-    with pytest.raises(ValueError, match="tikhonov', 'gaussian', 'mcmc'"):
+    with pytest.raises(ValueError, match="tikhonov', 'gaussian', 'averaged', 'mcmc'"):
         invert.fit(pd.DataFrame(), method="nope")
     with pytest.raises(ValueError, match="belongs to method='tikhonov'"):
         invert.fit(pd.DataFrame(), method="gaussian", rule="gcv")

@@ -52,7 +52,7 @@ def test_estimate_shows_as_html_with_its_numbers_and_warnings():
     est = invert.fit(df, radius=0.25)
     page = est._repr_html_()
     c = est.at(np.zeros((1, 2)))
-    assert f"{c.mean[0]:.6g}" in page and "tikhonov" in page
+    assert f"{c.mean[0]:.6g}" in page and "averaged" in page
     odd = est.__class__(mean=est.mean, cov=est.cov, domain=est.domain, method="<x>",
                         warnings=("a & b",))
     assert "&lt;x&gt;" in estimate_html(odd) and "a &amp; b" in estimate_html(odd)
