@@ -117,6 +117,12 @@ def trial(rng, d, kind, fault=None, interior_only=False):
         x = f(q)
         out[where] = (np.mean((s.lower <= x) & (x <= s.upper)),
                       np.mean(interval_score(s.lower, s.upper, x)))
+    # Interior RMSE, and that of the posterior mean that knows the prior (s = 2, tau = 1,
+    # noise given): the Bayes-optimal estimate for the prior family.
+    oracle = run_stage(pb, "gaussian", s=2.0, fix_s=True, tau=1.0)
+    x = f(inner)
+    out["rmse"] = (np.sqrt(np.mean((est.values(inner) - x) ** 2)),
+                   np.sqrt(np.mean((oracle.values(inner) - x) ** 2)))
     return out, named
 
 
@@ -130,6 +136,7 @@ def main(n_trials=20):
           f"{np.sqrt(0.09 / (12 * n_trials)):.3f}, more with correlated points)")
     print(f"{'family':28s} {'cov interior':>12s} {'cov gap':>8s} {'IS interior':>12s} "
           f"{'IS gap':>8s} {'named':>6s} {'excluded/fit':>12s}")
+    pooled, rmse = [], (np.nan, np.nan)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         for i, (kind, fault, inner_only) in enumerate(cases):
@@ -146,6 +153,16 @@ def main(n_trials=20):
                 (" (interior probes only)" if inner_only else "")
             print(f"{label:28s} {ci:12.3f} {cg:8.3f} {si:12.4f} {sg:8.4f} "
                   f"{named:3d}/{n_trials} {n_out:6.2f}")
+            pooled.append((si, sg, fault == "sentinel"))
+            if kind == "prior" and fault is None and not inner_only:
+                r = np.array([x[0]["rmse"] for x in res])
+                rmse = np.sqrt(np.mean(r**2, axis=0))
+    no_sentinel = [p for p in pooled if not p[2]]
+    print(f"pooled interval score (mean over families) interior {np.mean([p[0] for p in pooled]):.4g}"
+          f", gap {np.mean([p[1] for p in pooled]):.4g}; without the sentinel family interior "
+          f"{np.mean([p[0] for p in no_sentinel]):.4g}, gap {np.mean([p[1] for p in no_sentinel]):.4g}")
+    print(f"prior family interior RMSE {rmse[0]:.4g} vs {rmse[1]:.4g} for the posterior that "
+          f"knows s, tau and the noise: ratio {rmse[0] / rmse[1]:.3f}")
 
 
 if __name__ == "__main__":

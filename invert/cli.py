@@ -506,7 +506,7 @@ def _cmd_batch(args):
 
 
 def resolve_method(args):
-    """Set ``args.method`` when not given: tikhonov with --rule/--lam/--noise-sd, else the default."""
+    """Set ``args.method`` if not given: tikhonov with --rule/--lam/--noise-sd, else the default."""
     if getattr(args, "method", "") is None:
         tik = any(getattr(args, k, None) is not None for k in ("rule", "lam", "noise_sd"))
         args.method = "tikhonov" if tik else DEFAULT_METHOD

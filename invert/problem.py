@@ -268,12 +268,17 @@ class PriorSummary:
         stage has no prior, e.g. a Kalman smoother whose dynamics carry it).
     s_draws, tau_draws : ndarray of shape (n_draws,) or None
         Posterior draws of ``s`` and ``tau`` for sampled stages.
+    variances : ndarray of shape (n_coef,) or None
+        Prior variance of each coefficient when it is not ``tau^2 (1+lambda_n)^(-s)`` of one
+        ``(s, tau)``: for a stage averaging over them, the weighted mean of the components'
+        prior variances (the diagnostics compare posterior with prior variances).
     """
 
     s: float | None = None
     tau: float | None = None
     s_draws: np.ndarray | None = None
     tau_draws: np.ndarray | None = None
+    variances: np.ndarray | None = None
 
     @property
     def known(self) -> bool:

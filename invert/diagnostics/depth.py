@@ -50,6 +50,9 @@ def attenuation(rho, degrees):
 def prior_variances(estimate) -> np.ndarray:
     """Prior variance of each coefficient, from the ``s`` and ``tau`` the stage recorded.
 
+    A stage that averages over ``(s, tau)`` records the averaged variances
+    (``estimate.prior.variances``); they are used as given.
+
     Sampled hyperparameters (``estimate.prior`` of the MCMC stage) are plugged in at their
     posterior medians.
 
@@ -58,6 +61,9 @@ def prior_variances(estimate) -> np.ndarray:
     ValueError
         If the estimate's ``info`` holds neither.
     """
+    given = getattr(estimate.prior, "variances", None)
+    if given is not None:  # a stage averaging over (s, tau) records the averaged prior
+        return np.asarray(given, float)
     s, tau = prior_params(estimate)
     if s is None or tau is None:
         raise ValueError("The estimate must carry the prior's 's' and 'tau' (Estimate.prior). "

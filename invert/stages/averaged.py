@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
 from ._blas import single_thread
 from ._spectrum import unit_factor
@@ -212,6 +213,9 @@ class AveragedPosterior(GaussianPosterior):
         }
         info["residual_dof"] = problem.n_readings - info["effective_dof"]
         noise_pred = nu * (float(np.median(problem.sigma)) if known else 1.0)
+        shapes = {s: SmoothnessPrior(s=s).shape(problem.eigenvalues, problem.degrees)
+                  for s in np.unique(s_all)}
+        v_prior = sum(w * t**2 * shapes[s] for w, t, s in zip(w_all, tau_all, s_all) if w > 0)
         return Estimate(mean=mean, cov=cov, domain=problem.domain, method="averaged",
                         noise_sd=noise_pred, df=df, info=info, warnings=tuple(problem.notes),
-                        prior=PriorSummary(s=s_mean, tau=tau_mean))
+                        prior=PriorSummary(s=s_mean, tau=tau_mean, variances=v_prior))

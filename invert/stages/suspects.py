@@ -16,9 +16,10 @@ cannot check it). Here the posterior is the mixture
 
 over the suspects :math:`S`: of the :data:`MAX_SUSPECTS` readings of largest closed-form
 leave-one-out error, those whose fault probability from the refit without them (hyperparameters
-chosen again: the exact leave-one-out) reaches :data:`MIN_PROBABILITY`. It is: the exact posterior of the two-component model restricted to at most
-one faulty reading among the suspects (the single-fault approximation; with
-:math:`\sum p_i > 1` the weights are normalised). Each :math:`p(c\mid y_{-i})` is the stage
+chosen again: the exact leave-one-out) reaches :data:`MIN_PROBABILITY`. It is the exact
+posterior of the two-component model restricted to at most one faulty reading among the
+suspects (the single-fault approximation; with :math:`\sum p_i > 1` the weights are
+normalised). Each :math:`p(c\mid y_{-i})` is the stage
 refitted without reading :math:`i`. The estimate is the Gaussian with the mixture's mean and
 covariance (as :mod:`invert.stages.averaged`).
 """
@@ -31,8 +32,17 @@ import warnings
 import numpy as np
 
 from ..errors import FitWarning
-from .robust import (FAULT_RATE, Z_GROSS, fault_probabilities, gross_notes, loo_predictive,
-                     predictive, range_screen, sigma_bad_for, without)
+from .robust import (
+    FAULT_RATE,
+    Z_GROSS,
+    fault_probabilities,
+    gross_notes,
+    loo_predictive,
+    predictive,
+    range_screen,
+    sigma_bad_for,
+    without,
+)
 
 __all__ = ["MIN_PROBABILITY", "MAX_SUSPECTS", "NAME_PROBABILITY", "mix_suspects",
            "gaussian_mixture", "screened_mixture"]

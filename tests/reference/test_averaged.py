@@ -26,8 +26,9 @@ def small():
 def dense_components(stage, p):
     """Weights, means and covariances of every grid component by dense Gaussian algebra.
 
-    Model (Bishop 2006, eqs. 3.53-3.54 and 3.86, with numpy dense algebra): c ~ N(0, tau^2 diag(shape)) with the
-    prior's broad mean level ((1e4 tau)^2, invert.prior.MEAN_SCALE); y ~ N(G c, diag(sigma^2)).
+    Model (Bishop 2006, eqs. 3.53-3.54 and 3.86, with numpy dense algebra):
+    c ~ N(0, tau^2 diag(shape)) with the prior's broad mean level ((1e4 tau)^2,
+    invert.prior.MEAN_SCALE); y ~ N(G c, diag(sigma^2)).
     """
     mode, _, noise = stage._mode(p)
     rows = stage._components(p, mode, noise)
