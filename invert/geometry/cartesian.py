@@ -76,8 +76,8 @@ import numpy as np
 from .polar import band_table
 
 __all__ = ["GridFold", "fold_grid", "image_maps", "leading_directions", "band_chains",
-           "band_parts", "field_chains", "power_columns", "image_values", "fold_moments",
-           "grid_moments", "ROUNDING_LIMIT", "REST_FACTOR", "MIN_SHARING"]
+           "band_parts", "field_chains", "power_columns", "image_values", "image_matrix",
+           "fold_moments", "grid_moments", "ROUNDING_LIMIT", "REST_FACTOR", "MIN_SHARING"]
 
 #: Images whose estimated relative rounding error of the variance exceeds this are recomputed
 #: from design rows (the route then matches Estimate.at to well below 1e-12 of the sd).
@@ -341,6 +341,32 @@ def power_columns(w, steps) -> np.ndarray:
     return W
 
 
+def image_matrix() -> np.ndarray:
+    r"""Return the linear map from the residue sums to the eight image values, shape (8, 16).
+
+    Columns ``(part, r, re/im)`` are :math:`\operatorname{Re}, \operatorname{Im}` of
+    :math:`P_r` (part 0) and :math:`R_r` (part 1); row ``g`` adds
+    :math:`\operatorname{Re}(i^{m}X_r)`, :math:`m = kr \bmod 4`, for :math:`g = k < 4` with
+    :math:`X_r = P_r + iR_r`, and :math:`\operatorname{Re}(i^{m}Y_r)`, :math:`m = -kr \bmod 4`,
+    for :math:`g = 4 + k` with :math:`Y_r = P_r - iR_r` (module Notes), using
+    :math:`\operatorname{Re}(i^m X) = x, -y, -x, y` for :math:`m = 0..3`.
+    """
+    M = np.zeros((8, 2, 4, 2))
+    for g in range(8):
+        k, sgn = g % 4, (1 if g < 4 else -1)
+        for r in range(4):
+            cx, cy = ((1, 0), (0, -1), (-1, 0), (0, 1))[(sgn * k * r) % 4]
+            # Re X = Re P - sgn Im R, Im X = Im P + sgn Re R (X or Y by sgn)
+            M[g, 0, r, 0] += cx
+            M[g, 1, r, 1] -= sgn * cx
+            M[g, 0, r, 1] += cy
+            M[g, 1, r, 0] += sgn * cy
+    return M.reshape(8, 16)
+
+
+_IMAGES = image_matrix()
+
+
 def image_values(z, w):
     r"""Values of :math:`\operatorname{Re}\sum_q (\alpha_q + i\beta_q) z^q` at the 8 images.
 
@@ -348,28 +374,26 @@ def image_values(z, w):
     ----------
     z : ndarray of complex, shape (8, J, n)
         :math:`\sum_k c_{k,(part,r)}\,(w^4)^k` for the parts :math:`\alpha, \beta` and
-        residues :math:`r` (axis 0, as in :func:`band_chains`) of ``J`` sums.
+        residues :math:`r` (axis 0, as in :func:`band_chains`) of ``J`` sums; overwritten.
     w : ndarray of complex, shape (n,)
 
     Returns
     -------
     values : ndarray of shape (8, J, n)
-        Images in the order of :class:`GridFold`.
+        Images in the order of :class:`GridFold` (:func:`image_matrix` applied to
+        :math:`P_r, R_r`).
     size : ndarray of shape (n,)
-        :math:`\sum_r |X_r| + |Y_r|` of the first sum (as the sums of the absolute real and
-        imaginary parts, within a factor :math:`\sqrt 2`): the scale of its rounding.
+        :math:`2\sum_r |P_r| + |R_r|` of the first sum (absolute real and imaginary parts),
+        a bound on :math:`\sum_r |X_r| + |Y_r|`: the scale of its rounding.
     """
     w2 = w * w
-    z = np.array(z, dtype=complex).reshape(2, 4, -1, w.size)
+    J = z.shape[1]
+    z = z.reshape(2, 4, J, w.size)
     z[:, 1:] *= np.stack([w, w2, w2 * w])[:, None, :]  # times w^r
-    P, R = z
-    x, y = P.real - R.imag, P.imag + R.real  # X_r = P_r + i R_r
-    xc, yc = P.real + R.imag, P.imag - R.real  # Y_r = P_r - i R_r
-    e, o, e2, o2 = x[0] + x[2], x[1] + x[3], x[0] - x[2], y[3] - y[1]
-    ec, oc, e2c, o2c = xc[0] + xc[2], xc[1] + xc[3], xc[0] - xc[2], yc[1] - yc[3]
-    values = np.stack([e + o, e2 + o2, e - o, e2 - o2, ec + oc, e2c + o2c, ec - oc, e2c - o2c])
-    first = np.abs(np.stack([x[:, 0], y[:, 0], xc[:, 0], yc[:, 0]]))
-    return values, first.sum(axis=(0, 1))
+    parts = np.ascontiguousarray(z.view(float).reshape(8, J, w.size, 2).transpose(0, 3, 1, 2))
+    parts = parts.reshape(16, J, w.size)
+    size = 2 * np.abs(parts[:, 0]).sum(axis=0)
+    return (_IMAGES @ parts.reshape(16, -1)).reshape(8, J, w.size), size
 
 
 def _radius_powers(s, n_modes, tol):
