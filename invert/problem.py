@@ -459,10 +459,13 @@ class Estimate:
             return PointSummary(*out, level)
         m, var, _ = got
         noise = float(self.noise_sd or 0.0) if predictive else 0.0
-        scale = np.sqrt(var + noise**2 if noise else var)
+        scale = np.sqrt(var + noise**2) if noise else np.sqrt(var, out=var)
         z = interval_z(level, self.df)
         sd = scale if self.df is None else scale * np.sqrt(self._var_factor)
-        return PointSummary(m, sd, m - z * scale, m + z * scale, level)
+        upper = z * scale
+        lower = m - upper
+        upper += m
+        return PointSummary(m, sd, lower, upper, level)
 
     def cov_at(self, points) -> np.ndarray:
         """Posterior covariance of the field between ``points``."""

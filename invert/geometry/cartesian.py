@@ -367,6 +367,7 @@ def grid_moments(coef, root, x, y, *, center, radius, n_modes, design_rows):
     inside = d2 <= r2
     jj, ii = np.nonzero(np.abs(d2 - r2) <= 8 * np.finfo(float).eps * r2)
     inside[jj, ii] = np.hypot(dx[ii], dy[jj]) / radius <= 1.0
+    del d2
     if not inside.any():
         return None
     u, v = dx / radius, dy / radius

@@ -104,11 +104,13 @@ def fold_grid(u, v, inside, tol) -> GridFold:
     if nZ * nZ <= 4 * k_in.size + 4096:
         rank = np.zeros(nZ * nZ, itype)
         rank[keys[order]] = np.arange(n, dtype=itype)
-        index = image[code] + rank[key]
+        index = rank[key]
     else:
         rank = np.empty(n, itype)
         rank[order] = np.arange(n, dtype=itype)
-        index = image[code] + rank[np.searchsorted(keys, key).clip(0, n - 1)]
+        index = rank[np.searchsorted(keys, key).clip(0, n - 1)]
+    del key
+    index += image[code]
     np.putmask(index, ~inside, itype(8 * n))
     return GridFold(inside, index, (hi + 1j * lo)[order])
 

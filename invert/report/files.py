@@ -144,8 +144,10 @@ def field_summary(estimate, grid, level):
     tensor = getattr(estimate.domain, "interior_grid", None)
     if tensor is not None:
         xs, ys, _, inside = tensor(grid)
+        del _  # the full grid's points are not needed (memory: workflow.MAP_BYTES_PER_POINT)
         g = estimate.grid_map(xs, ys, level)
         arrays = [a.ravel()[inside] for a in (g.mean, g.sd, g.lower, g.upper)]
+        del g
         if len(arrays[0]) == len(pts) and not np.isnan(arrays[1]).any():
             return PointSummary(*arrays, level).to_frame(**cols)
     return estimate.at(pts, level).to_frame(**cols)
