@@ -37,7 +37,12 @@ def interval_z(level, df=None) -> float:
 
 @dataclass(frozen=True)
 class PointSummary:
-    """Posterior summary at points: mean, sd and central interval at ``level``."""
+    """Posterior summary at points: mean, sd and central interval at ``level``.
+
+    The arrays share one shape: ``(n_points,)`` from :meth:`~invert.problem.Estimate.at`,
+    ``(n_y, n_x)`` from :meth:`~invert.problem.Estimate.grid_map` (NaN outside the region;
+    :meth:`to_frame` takes 1-D arrays).
+    """
 
     mean: np.ndarray
     sd: np.ndarray
