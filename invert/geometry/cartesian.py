@@ -14,9 +14,8 @@ Notes
 \operatorname{Im} w, \ldots, \operatorname{Re} w^N, \operatorname{Im} w^N)`. Because
 :math:`(i^k w)^n = i^{kn} w^n` and :math:`(i^k\bar w)^n = i^{kn}\,\overline{w^n}`, and
 multiplying by :math:`i^m` or conjugating only swaps and negates real and imaginary parts,
-:math:`h(g w) = S_g\,h(w)` with :math:`S_g` a signed permutation (:func:`image_maps`). So a
-linear functional :math:`h(gw)^\top c = h(w)^\top S_g^\top c`: the mean and the fields of a few
-covariance directions at all eight images are one matrix product with the canonical rows.
+:math:`h(g w) = S_g\,h(w)` with :math:`S_g` a signed permutation (:func:`image_maps`, used
+where entries are recomputed from design rows).
 
 **The variance as a sum over the canonical point.** With :math:`\Sigma = M` in the exponential
 basis, :mod:`invert.geometry.polar` shows :math:`\operatorname{Var} u(\rho,\theta) =
@@ -33,7 +32,7 @@ a polynomial in :math:`w` whose coefficients depend on the radius only, so they 
 all eight images (one matrix product over the canonical points builds them). Write
 :math:`G_q = \alpha_q + i\beta_q` and split :math:`q` by its residue :math:`r = q \bmod 4`:
 :math:`P_r = \sum_{q \equiv r} \alpha_q w^q`, :math:`R_r = \sum_{q \equiv r} \beta_q w^q`
-(Horner's rule in :math:`w^4`, times :math:`w^r`). For :math:`f(z) = \operatorname{Re}\sum_q
+(sums over the powers :math:`(w^4)^k`, times :math:`w^r`). For :math:`f(z) = \operatorname{Re}\sum_q
 (\alpha_q + i\beta_q) z^q`:
 
 .. math:: f(i^k w) = \operatorname{Re}\sum_{r} i^{kr} X_r,\quad X_r = P_r + iR_r,\qquad
@@ -46,16 +45,23 @@ the first because :math:`(i^k w)^q = i^{kr} w^q` for :math:`q \equiv r`, the sec
 :math:`(x_0 + x_2) \pm (x_1 + x_3)` for :math:`k = 0, 2` and :math:`(x_0 - x_2) \pm (y_3 -
 y_1)` for :math:`k = 1, 3`; the reflections likewise with :math:`Y_r = x'_r + iy'_r`,
 :math:`(x'_0 + x'_2) \pm (x'_1 + x'_3)` for :math:`k = 0, 2` and :math:`(x'_0 - x'_2) \pm (y'_1
-- y'_3)` for :math:`k = 1, 3`. Each canonical point costs :math:`2N` complex multiply-adds for
-eight grid points, against :math:`N` per point for the mean map by Horner's rule.
+- y'_3)` for :math:`k = 1, 3` (:func:`image_matrix`). A field :math:`h^\top c =
+\operatorname{Re}\sum_n (a_n - ib_n) w^n` is the same sum with constant coefficients
+:math:`\alpha_n = a_n`, :math:`\beta_n = -b_n` (:func:`field_chains`), so the mean costs one
+matrix product with the powers of :math:`w^4` for eight grid points. The variance costs one
+table of :math:`G_q` per distinct radius (a matrix product) and :math:`16(N/2 + 1)` real
+multiply-adds per canonical point, against :math:`N` complex ones per point for the mean map
+by Horner's rule.
 
 **Rounding.** The partial sums are as large as the largest variance among the eight images, so
 the sum above loses :math:`\varepsilon\,\max_g \operatorname{Var}(gw)` to rounding, which is
 large relative to a small variance (near a sensor) when an image lies in an unsensed gap. The
 covariance is therefore split along its eigenvectors, :math:`\Sigma = L L^\top + K K^\top`
 with :math:`L` the leading directions (:func:`leading_directions`): their part,
-:math:`\|L^\top h(gw)\|^2`, is a sum of squares of fields (the matrix product above, rounding
-relative to the value itself, as in :meth:`invert.problem.Estimate.at`); only the remainder
+:math:`\|L^\top h(gw)\|^2`, is a sum of squares of fields, each rounded to
+:math:`\varepsilon\max_g|f(gw)|`, so the square's error relative to the variance is only
+:math:`\varepsilon(\max_g \operatorname{Var}/\operatorname{Var})^{1/2}`, the order of
+:meth:`invert.problem.Estimate.at`'s own rounding; only the remainder
 :math:`K K^\top`, whose variance is everywhere within a small factor of the smallest variance,
 goes through the band sums. Images whose rounding estimate still exceeds
 :data:`ROUNDING_LIMIT` are recomputed from their design rows.
@@ -64,7 +70,7 @@ References
 ----------
 .. [1] A. Zygmund, *Trigonometric Series*, 3rd ed., Cambridge University Press, 2002, ch. X.
 .. [2] N. J. Higham, *Accuracy and Stability of Numerical Algorithms*, 2nd ed., SIAM, 2002,
-       §5.1 (rounding of Horner's rule: relative to the sum of the terms' magnitudes).
+       ch. 3-4 (rounding of sums and inner products: relative to the sum of the magnitudes).
 """
 
 from __future__ import annotations
@@ -130,7 +136,7 @@ def leading_directions(sample_rows, root, src, sign) -> int:
 
 
 def band_chains(cov, n_modes) -> np.ndarray:
-    r"""Coefficients of :math:`G_q(s)` arranged for the residue-split Horner sums.
+    r"""Coefficients of :math:`G_q(s)` arranged for the residue-split sums.
 
     Returns
     -------
