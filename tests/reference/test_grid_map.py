@@ -168,3 +168,38 @@ def test_bad_axes_and_level():
         est.grid_map([0.0, np.nan], [0.0])
     with pytest.raises(ValueError, match="'level' parameter of Estimate.grid_map"):
         est.grid_map([0.0], [0.0], level=1.5)
+
+
+@pytest.mark.filterwarnings("ignore::invert.errors.FitWarning")  # s at its range's end: fine here
+def test_gaussian_stage_estimate():
+    # The evidence-optimal Gaussian stage on the same gap problem (estimated hyperparameters).
+    from invert import GaussianPosterior
+
+    est = gap_fit(22)
+    d = est.domain
+    sp = d.from_polar(1.0, np.linspace(0, 2 * np.pi, 24, endpoint=False)[4:])
+    y = d.field(est.mean, sp) + 0.05 * np.random.default_rng(3).standard_normal(len(sp))
+    prob = LinearProblem(d.design(sp), y, np.full(len(sp), 0.05), d.degrees, d.eigenvalues, d)
+    g = GaussianPosterior().fit(prob)
+    xs, ys, _, _ = d.interior_grid(51)
+    check_against_at(g, xs, ys)
+
+
+def test_field_table_equals_design_rows():
+    # field.csv's rows (report.files.field_summary) against Estimate.at on field_grid.
+    from invert.report.files import field_summary
+
+    est = gap_fit(22, center=(0.3, 0.1), radius=2.0)
+    pts, _ = est.domain.field_grid(41)
+    got = field_summary(est, 41, 0.9)
+    ref = est.at(pts, 0.9)
+    np.testing.assert_array_equal(got[["x", "y"]].to_numpy(), pts)
+    np.testing.assert_allclose(got["sd"], ref.sd, rtol=1e-12)
+    np.testing.assert_allclose(got["upper"], ref.upper, rtol=1e-12)
+
+
+def test_grid_outside_the_disk():
+    # No point inside: every entry NaN (the design-row route on no points).
+    est = gap_fit(3)
+    got = est.grid_map([2.0, 3.0], [2.0, 3.0, 4.0])
+    assert got.sd.shape == (3, 2) and np.isnan(got.sd).all() and np.isnan(got.mean).all()
