@@ -83,6 +83,44 @@ def fold_grid(u, v, inside, tol) -> GridFold:
     GridFold
     """
     Z, cls = _classes(np.abs(np.concatenate([u, v])), tol)
+    if (2 * Z.size) ** 2 > 2 * inside.size + 4096:
+        return _fold_by_keys(u, v, inside, Z, cls)
+    return _fold_by_table(u, v, inside, Z, cls, tol)
+
+
+def _fold_by_table(u, v, inside, Z, cls, tol):
+    # One table over (v class and sign, u class and sign) gives every grid point's entry: one
+    # gather. Canonical points: the magnitude pairs present on the grid with rho <= 1 up to
+    # the merging tolerance (a few extra are harmless: no grid point reads them).
+    nZ, eps = Z.size, np.finfo(float).eps
+    itype = np.int32 if 8 * nZ * nZ + 8 < 2**31 else np.int64
+    cu, cv = cls[: u.size], cls[u.size:]
+    pu, pv = np.zeros(nZ, bool), np.zeros(nZ, bool)
+    pu[cu], pv[cv] = True, True
+    present = (pu[:, None] & pv[None, :]) | (pv[:, None] & pu[None, :])
+    near = Z[:, None] ** 2 + Z[None, :] ** 2 <= 1 + 8 * tol + 16 * eps
+    hi_i, lo_i = np.nonzero(np.tril(present & near))
+    hi, lo = Z[hi_i], Z[lo_i]
+    order = np.argsort(hi * hi + lo * lo, kind="stable")
+    n = hi_i.size
+    rank = np.zeros((nZ, nZ), itype)
+    rank[hi_i[order], lo_i[order]] = np.arange(n, dtype=itype)
+    rank = np.tril(rank) + np.tril(rank, -1).T  # rank[a, b] of the pair (max, min)
+    A = np.arange(nZ)
+    swap = A[None, :] < A[:, None]  # [v class b, u class a]: a < b
+    table = np.empty((nZ, 2, nZ, 2), itype)  # [v class, v < 0, u class, u < 0]
+    for sv in (0, 1):
+        for su in (0, 1):
+            table[:, sv, :, su] = np.where(swap, itype(int(_IMAGE_OF[1, su, sv]) * n),
+                                           itype(int(_IMAGE_OF[0, su, sv]) * n)) + rank
+    table = table.reshape(2 * nZ, 2 * nZ)
+    index = table[(2 * cv + (v < 0))[:, None], (2 * cu + (u < 0))[None, :]]
+    np.putmask(index, ~inside, itype(8 * n))
+    return GridFold(inside, index, (hi + 1j * lo)[order])
+
+
+def _fold_by_keys(u, v, inside, Z, cls):
+    # Many distinct magnitudes (a large grid without much symmetry): keys of the inside points.
     nZ = Z.size
     itype = np.int32 if 8 * nZ * nZ + 8 * inside.size < 2**31 else np.int64
     iu, iv = cls[: u.size].astype(itype)[None, :], cls[u.size:].astype(itype)[:, None]
@@ -113,6 +151,8 @@ def fold_grid(u, v, inside, tol) -> GridFold:
     index += image[code]
     np.putmask(index, ~inside, itype(8 * n))
     return GridFold(inside, index, (hi + 1j * lo)[order])
+
+
 
 
 def image_maps(n_modes):
