@@ -15,9 +15,10 @@ from dataclasses import dataclass, field
 from types import MappingProxyType
 
 import numpy as np
-from scipy import linalg, stats
+from scipy import linalg
 
 from ._validation import check_level
+from .intervals import PointSummary, interval_z
 from .prior import truncation_degree
 
 __all__ = ["LinearProblem", "Estimate", "PointSummary", "PriorSummary", "interval_z"]
@@ -212,46 +213,6 @@ class LinearProblem:
             None if self.points is None else self.points[keep], self.gap_sensor,
             self.gap_points, self.notes, self.n_snapped, self.assembly_notes,
         )
-
-
-def interval_z(level, df=None) -> float:
-    r"""Half-width of the central interval at ``level`` in units of the sd.
-
-    The interval is :math:`m \pm z\,\mathrm{sd}` with :math:`z = \Phi^{-1}((1+\text{level})/2)`,
-    or the Student-t quantile on ``df`` degrees of freedom when ``df`` is given (Wahba 1983).
-
-    Parameters
-    ----------
-    level : float
-        Probability of the central interval, in (0, 1).
-    df : float, optional
-        Degrees of freedom of a Student-t posterior.
-
-    Returns
-    -------
-    float
-    """
-    q = (1 + level) / 2
-    return float(stats.norm.ppf(q) if df is None else stats.t.ppf(q, df))
-
-
-@dataclass(frozen=True)
-class PointSummary:
-    """Posterior summary at points: mean, sd and central interval at ``level``."""
-
-    mean: np.ndarray
-    sd: np.ndarray
-    lower: np.ndarray
-    upper: np.ndarray
-    level: float
-
-    def to_frame(self, **columns):
-        """Return a pandas DataFrame: the given leading columns, then mean, sd, lower, upper."""
-        import pandas as pd
-
-        data = dict(columns)
-        data.update(mean=self.mean, sd=self.sd, lower=self.lower, upper=self.upper)
-        return pd.DataFrame(data)
 
 
 @dataclass(frozen=True, eq=False)
@@ -453,6 +414,63 @@ class Estimate:
         z = interval_z(level, self.df)
         return PointSummary(m, scale * np.sqrt(self._var_factor), m - z * scale, m + z * scale,
                             level)
+
+    def grid_map(self, x, y, level=0.9, *, predictive=False) -> PointSummary:
+        r"""Mean, sd and central ``level`` interval on the tensor grid ``x`` by ``y``.
+
+        Parameters
+        ----------
+        x, y : array_like of shape (n_x,), (n_y,)
+            Grid axes, in the frame of the sensor points.
+        level : float, default=0.9
+        predictive : bool, default=False
+            Include the noise of a new reading (``noise_sd``), as in :meth:`at`.
+
+        Returns
+        -------
+        PointSummary
+            Arrays of shape (n_y, n_x) (row ``j`` at ``y[j]``, as ``numpy.meshgrid``); NaN at
+            points outside the region (relative radius above 1, or outside by the domain's
+            ``contains`` when it has one).
+
+        Notes
+        -----
+        For a Gaussian result on a domain with ``grid_moments`` (the disk:
+        :mod:`invert.geometry.cartesian`) a grid symmetric about the centre shares one
+        canonical point among up to eight mirror images, and the map costs about as much as
+        the mean map; the numbers equal :meth:`at` to rounding. Otherwise (draws, other
+        domains, grids without the symmetry) this is :meth:`at` on the inside points.
+        """
+        level = check_level(level, where="Estimate.grid_map")
+        x, y = (np.asarray(a, dtype=float) for a in (x, y))
+        if x.ndim != 1 or y.ndim != 1 or not (np.isfinite(x).all() and np.isfinite(y).all()):
+            raise ValueError(f"The grid axes of Estimate.grid_map must be finite 1-D arrays. "
+                             f"Got shapes {x.shape} and {y.shape}.")
+        fast = getattr(self.domain, "grid_moments", None)
+        got = None if self.draws is not None or fast is None else fast(
+            self.mean, self._root, x, y)
+        if got is None:
+            X, Y = np.meshgrid(x, y)
+            pts = np.column_stack([X.ravel(), Y.ravel()])
+            contains = getattr(self.domain, "contains", None)
+            inside = (self.domain.relative_radius(pts) <= 1.0 if contains is None
+                      else contains(pts))
+            s = self.at(pts[inside], level, predictive=predictive)
+            out = []
+            for a in (s.mean, s.sd, s.lower, s.upper):
+                full = np.full(pts.shape[0], np.nan)
+                full[inside] = a
+                out.append(full.reshape(y.size, x.size))
+            return PointSummary(*out, level)
+        m, var, _ = got
+        noise = float(self.noise_sd or 0.0) if predictive else 0.0
+        scale = np.sqrt(var + noise**2) if noise else np.sqrt(var, out=var)
+        z = interval_z(level, self.df)
+        sd = scale if self.df is None else scale * np.sqrt(self._var_factor)
+        upper = z * scale
+        lower = m - upper
+        upper += m
+        return PointSummary(m, sd, lower, upper, level)
 
     def cov_at(self, points) -> np.ndarray:
         """Posterior covariance of the field between ``points``."""

@@ -271,7 +271,9 @@ def run_stage(problem, method="tikhonov", *, s=2.0, seed=None, **options):
 
 #: Bytes per field-map point: coordinates, the inside mask, mean, sd and interval, the
 #: field.csv table and its text (measured: ``--grid 1000`` and ``2000`` on the demo data took
-#: 73 bytes per grid cell, 93 per point inside the disk; rounded up).
+#: 73 bytes per grid cell, 93 per point inside the disk; rounded up). The folded map of
+#: report.files.field_summary peaks about 1.24x above the former design-row route (tracemalloc
+#: at --grid 1000: 101 vs 81 bytes per grid cell), i.e. about 115 per inside point: still below.
 MAP_BYTES_PER_POINT = 128
 #: Working ``p x p`` matrices of a fit (covariance, its root, factorisations; measured 6-12 on
 #: the demo data with 2001 and 4001 coefficients), and the rows of design evaluated per block.

@@ -29,6 +29,7 @@ import numpy as np
 from ..errors import DomainError
 from .arcs import CircleArcs, arc_fourier_coefficients, arc_harmonic_measure
 from .base import RoundDomain
+from .cartesian import grid_moments
 from .polar import ring_variance
 
 __all__ = [
@@ -45,8 +46,6 @@ RIM_TOLERANCE = 1e-3
 
 #: Points are evaluated in blocks of this many rows so that design blocks stay small in memory.
 _BLOCK = 16384
-
-
 
 
 def poisson_kernel(r, theta, phi, radius=1.0):
@@ -475,6 +474,11 @@ class Disk(RoundDomain):
     def ring_variance(self, cov, rho, n_angles: int) -> np.ndarray:
         """Exact field variance on :meth:`polar_grid` (one FFT per ring, :mod:`.polar`)."""
         return ring_variance(cov, self.n_modes, rho, n_angles).ravel()
+
+    def grid_moments(self, coef, root, x, y):
+        """Mean and variance on the tensor grid ``x`` by ``y`` (:mod:`.cartesian`), or None."""
+        return grid_moments(coef, root, x, y, center=self.center, radius=self.radius,
+                            n_modes=self.n_modes, design_rows=self._design_w)
 
     def field_grid(self, n: int = 81):
         """Interior points of an ``n`` x ``n`` grid and their table columns ``{"x", "y"}``."""

@@ -124,13 +124,13 @@ def plot_field_maps(fig, estimate, problem, level=0.9, n=121, unit="", length_un
     """Interior mean with flux lines (level sets of the harmonic conjugate) and posterior sd."""
     domain = estimate.domain
     xs, ys, pts, inside = _grid_map(estimate, n)
-    s = estimate.at(pts[inside], level)
+    s = estimate.grid_map(xs, ys, level)  # (n, n) maps, NaN outside
     coef = estimate.mean if estimate.draws is None else estimate.draws.mean(axis=0)
     stream = _full(inside, domain.conjugate(coef, pts[inside]))
     axes = fig.subplots(1, 2)
     for ax, data, title, cmap in ((axes[0], s.mean, "estimated field", "magma"),
                                   (axes[1], s.sd, "posterior sd", "cividis")):
-        im = ax.pcolormesh(xs, ys, _full(inside, data).reshape(n, n), cmap=cmap, shading="auto")
+        im = ax.pcolormesh(xs, ys, data, cmap=cmap, shading="auto")
         fig.colorbar(im, ax=ax, shrink=0.8, label=axis_label(title, unit, VALUE))
         _rim_circle(ax, domain, color="k", lw=0.8)
         _sensor_marks(ax, problem, legend=ax is axes[1])

@@ -14,6 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
+from ..intervals import PointSummary
+
 __all__ = ["staged_output", "summary_dict", "write_fit_outputs", "CAUTIONS", "to_jsonable",
            "describe_choice"]
 
@@ -130,6 +132,27 @@ def _write_csv(frame, path):
     write_csv_frame(frame, path)
 
 
+def field_summary(estimate, grid, level):
+    """Rows of field.csv: the domain's ``field_grid(grid)`` with mean, sd and interval.
+
+    A domain whose field grid is the inside of the tensor grid ``interior_grid(grid)`` (the
+    disk) gets the map from :meth:`~invert.problem.Estimate.grid_map` (exact, shared over the
+    grid's mirror images); other domains, and any point that map leaves out, use
+    :meth:`~invert.problem.Estimate.at`.
+    """
+    pts, cols = estimate.domain.field_grid(grid)
+    tensor = getattr(estimate.domain, "interior_grid", None)
+    if tensor is not None:
+        xs, ys, _, inside = tensor(grid)
+        del _  # the full grid's points are not needed (memory: workflow.MAP_BYTES_PER_POINT)
+        g = estimate.grid_map(xs, ys, level)
+        arrays = [a.ravel()[inside] for a in (g.mean, g.sd, g.lower, g.upper)]
+        del g
+        if len(arrays[0]) == len(pts) and not np.isnan(arrays[1]).any():
+            return PointSummary(*arrays, level).to_frame(**cols)
+    return estimate.at(pts, level).to_frame(**cols)
+
+
 def write_fit_outputs(stage_dir, estimate, problem, readings, *, level=0.9, query=None,
                       grid=81, summary_extra=None):
     """Write summary.json, boundary.csv, field.csv and (with ``query``) query.csv.
@@ -150,9 +173,7 @@ def write_fit_outputs(stage_dir, estimate, problem, readings, *, level=0.9, quer
         cols = {"label": labels}
         cols.update({c: pts[:, k] for k, c in enumerate(estimate.domain.point_columns)})
         _write_csv(s.to_frame(**cols), stage_dir / "query.csv")
-    pts, cols = estimate.domain.field_grid(grid)
-    s = estimate.at(pts, level)
-    _write_csv(s.to_frame(**cols), stage_dir / "field.csv")
+    _write_csv(field_summary(estimate, grid, level), stage_dir / "field.csv")
     if estimate.extras.get("sensor_table") is not None:
         _write_csv(estimate.extras["sensor_table"], stage_dir / "sensors.csv")
     if estimate.extras.get("posterior") is not None:
