@@ -97,6 +97,18 @@ def test_design_is_well_conditioned_for_thick_and_thin_walls(alpha):
     assert np.abs(G).max() <= 1 + 1e-12
 
 
+@pytest.mark.parametrize("alpha", [0.1, 0.5, 0.9, 0.99])
+def test_fast_field_equals_the_design_rows(alpha, rng):
+    # Annulus.field sums two power series (Horner) up to a/b = 0.9 and uses the design rows
+    # beyond; either way it must equal design @ c (rounding amplified by at most
+    # 1/(2 ln(b/a)) ~ 5: 1e-13 of |c|_1).
+    d = Annulus(1.2, 1.2 * alpha, (0.3, -0.2), n_modes=16)
+    c = rng.standard_normal(d.n_coef)
+    pts = np.vstack([wall_points(d, 200, rng), d.rim_grid(40)[0]])
+    np.testing.assert_allclose(d.field(c, pts), d.design(pts) @ c, rtol=0,
+                               atol=1e-13 * np.abs(c).sum())
+
+
 def test_field_on_the_rims_equals_the_rim_functions(rng):
     # The column of a rim's Fourier function is that function on its rim and 0 on the other:
     # the field on each rim is its trigonometric sum (numpy cos/sin; rounding, 1e-12).
