@@ -24,6 +24,7 @@ from .cli_checks import (
     no_work_left_on_bad_input,
     one_line,
     refuse_all_rejected,
+    shape_options,
 )
 from .errors import InputError
 from .stages.registry import DEFAULT_METHOD
@@ -146,7 +147,13 @@ def build_parser():
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
     p.add_argument("--domain", default="disk", choices=_domains(),
                    help="region: disk (readings x,y) or ball (readings x,y,z; boundary.csv on "
-                        "a latitude/longitude grid) (default: disk)")
+                        "a latitude/longitude grid) or annulus (a wall between --inner-radius "
+                        "and --radius; readings x,y) (default: disk)")
+    p.add_argument("--inner-radius", type=_positive("--inner-radius"), default=None,
+                   metavar="A", help="annulus: radius of the bore, 0 < A < --radius")
+    p.add_argument("--conductivity", type=_positive("--conductivity"), default=None,
+                   metavar="K", help="annulus: thermal conductivity (W/m/K) for the heat flow "
+                                     "through the wall (default: per unit conductivity)")
     _add_fit_options(p)
 
     p = sub.add_parser("demo", help="run the main job on the bundled synthetic demo data")
@@ -291,12 +298,13 @@ def _fit_options(args):
 def run_fit(readings_path, *, radius, out, center=None, method=None, query=None,
             level=0.9, seed=0, smoothness=2.0, n_modes=None, grid=81, figures=False,
             stage_options=None, say=print, threshold=None, unit="", length_unit="",
-            domain="disk", dialect=None):
+            domain="disk", dialect=None, inner_radius=None, conductivity=None):
     """Run ``fit`` end to end: load, check, fit, write. Returns the summary dict.
 
     ``domain`` is a name in :data:`invert.geometry.DOMAINS`; readings, ``center`` and query
     points have that domain's ``dim`` coordinates (``"ball"``: x, y, z). ``dialect``:
     ``{"sep": ..., "decimal": ...}`` of the readings file (None values: detected).
+    ``inner_radius``: the bore of an annulus; ``conductivity``: for its heat flow.
     """
     from . import workflow
     from .io.publish import check_output_path
@@ -305,13 +313,20 @@ def run_fit(readings_path, *, radius, out, center=None, method=None, query=None,
 
     level = check_level(level)
     check_output_path(out, "fit")  # before any computation
+    from .diagnostics.heat_flow import has_heat_flow
     from .geometry import domain_class
 
     dim = domain_class(domain).dim
     if center is not None and len(center) != dim:
         raise ValueError(f"--center needs {dim} numbers for a {domain}, got {len(center)}")
+    name = domain
+    shape = shape_options(domain_class(name), name, radius, inner_radius=inner_radius)
     readings = load_readings(readings_path, dim=dim, center=center, **(dialect or {}))
-    domain = workflow.make_domain(radius, center, kind=domain, s=smoothness, n_modes=n_modes)
+    domain = workflow.make_domain(radius, center, kind=domain, s=smoothness, n_modes=n_modes,
+                                  **shape)
+    if conductivity is not None and not has_heat_flow(domain):
+        raise ValueError(f"--conductivity needs a region with a bore (--domain annulus): a "
+                         f"source-free {name} has no net heat flow through its rim")
     workflow.check_memory(domain, grid=grid, n_readings=readings.observed.sum(),
                           given_modes=n_modes is not None)
     problem = workflow.problem_from_readings(readings, domain)
@@ -335,7 +350,8 @@ def run_fit(readings_path, *, radius, out, center=None, method=None, query=None,
         summary = write_fit_outputs(stage, estimate, problem, readings, level=level, query=q,
                                     grid=grid, summary_extra={"seed": seed, "unit": unit,
                                                               "length_unit": length_unit,
-                                                              "diagnostics": diag.to_dict()})
+                                                              "diagnostics": diag.to_dict()},
+                                    conductivity=conductivity)
         if figures:
             from .report.html import write_report
 
@@ -370,7 +386,8 @@ def _cmd_fit(args):
                       smoothness=args.smoothness, n_modes=args.n_modes, grid=args.grid,
                       figures=True, stage_options=_fit_options(args), threshold=args.threshold,
                       unit=args.unit, length_unit=args.length_unit, domain=args.domain,
-                      dialect=_dialect(args))
+                      dialect=_dialect(args), inner_radius=args.inner_radius,
+                      conductivity=args.conductivity)
     print(f"fit ({summary['method']}) written to {args.out}/ (report: {args.out}/report.html)")
 
 

@@ -17,7 +17,34 @@ from ._validation import check_level
 from .errors import InputError
 
 __all__ = ["int_at_least", "finite", "SEED", "SCHEDULER_TIMEOUT", "check_scheduler",
-           "check_batch_args", "no_work_left_on_bad_input", "refuse_all_rejected", "one_line"]
+           "check_batch_args", "no_work_left_on_bad_input", "refuse_all_rejected", "one_line",
+           "shape_options", "SHAPE_OPTIONS"]
+
+#: Command-line options that give a domain's shape parameters (``shape_parameters`` of the
+#: domain class), by parameter name.
+SHAPE_OPTIONS = {"inner_radius": "--inner-radius"}
+
+
+def shape_options(domain_cls, name, radius, **given):
+    """Shape parameters for ``domain_cls`` from the options given (None: not given).
+
+    Each parameter the class declares (``shape_parameters``) must be given and each one given
+    must be declared; an inner radius must lie below ``radius``. Raises ``ValueError`` with
+    one line naming the option.
+    """
+    declared = tuple(getattr(domain_cls, "shape_parameters", ()))
+    given = {k: v for k, v in given.items() if v is not None}
+    for key in given:
+        if key not in declared:
+            raise ValueError(f"{SHAPE_OPTIONS[key]} does not apply to --domain {name}")
+    for key in declared:
+        if key not in given:
+            raise ValueError(f"--domain {name} needs {SHAPE_OPTIONS[key]}")
+    inner = given.get("inner_radius")
+    if inner is not None and not inner < radius:
+        raise ValueError(f"--inner-radius must be below --radius {radius:g} (0 < A < B), got "
+                         f"{inner:g}")
+    return given
 
 
 def int_at_least(name, low):

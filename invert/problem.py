@@ -367,14 +367,32 @@ class Estimate:
         """
         level = check_level(level, where="Estimate.at")
         points = np.asarray(points, dtype=float)
-        n = len(points)
+        return self._summarise(len(points), lambda sl: self.domain.design(points[sl]), level,
+                               predictive, block)
+
+    def linear(self, rows, level=0.9) -> PointSummary:
+        r"""Mean, sd and central ``level`` interval of linear functionals :math:`H c`.
+
+        Parameters
+        ----------
+        rows : array_like of shape (n_functionals, n_coef)
+            One row :math:`h` per functional :math:`h^\top c` of the coefficients (a heat
+            flow, a flux density at a rim point).
+        level : float, default=0.9
+        """
+        level = check_level(level, where="Estimate.linear")
+        H = np.atleast_2d(np.asarray(rows, dtype=float))
+        return self._summarise(len(H), lambda sl: H[sl], level, False, 8192)
+
+    def _summarise(self, n, rows_of, level, predictive, block) -> PointSummary:
+        # Summaries of n functionals whose coefficient rows rows_of(slice) gives block by block.
         mean, sd = np.empty(n), np.empty(n)
         lower, upper = np.empty(n), np.empty(n)
         q = [(1 - level) / 2, (1 + level) / 2]
         noise = float(self.noise_sd or 0.0) if predictive else 0.0
         for start in range(0, n, block):
             sl = slice(start, start + block)
-            H = self.domain.design(points[sl])
+            H = rows_of(sl)
             if self.draws is not None:
                 U = self.draws @ H.T
                 if noise:

@@ -31,7 +31,7 @@ __all__ = ["fit", "make_domain", "as_readings", "problem_from_readings", "run_st
 METHODS = stage_names()
 
 
-def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
+def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None, **shape):
     """Build a domain whose truncation degree leaves a negligible share of prior variance out.
 
     Parameters
@@ -45,6 +45,9 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
         :func:`~invert.prior.truncation_degree`).
     n_modes : int, optional
         Force the truncation degree.
+    **shape
+        Shape parameters of the domain class, e.g. ``inner_radius`` of an annulus (a class
+        without that parameter refuses it with a ``ValueError``).
 
     Notes
     -----
@@ -53,7 +56,7 @@ def make_domain(radius=1.0, center=None, *, kind="disk", s=2.0, n_modes=None):
     so the truncation uses ``tol=BALL_TRUNCATION_TOL`` and is capped at ``BALL_MAX_DEGREE``
     (values and reasons in :mod:`invert.geometry.ball`); ``s`` must exceed 1 on the sphere.
     """
-    return domain_class(kind).from_prior(radius, center, s=s, n_modes=n_modes)
+    return domain_class(kind).from_prior(radius, center, s=s, n_modes=n_modes, **shape)
 
 
 def as_readings(data, *, dim=2) -> Readings:
@@ -80,7 +83,7 @@ def problem_from_readings(readings, domain):
 
 
 def fit(readings, *, radius=1.0, center=None, method=None, rule=None, s=2.0,
-        n_modes=None, kind="disk", **options):
+        n_modes=None, kind="disk", inner_radius=None, **options):
     """Fit readings and return an :class:`~invert.problem.Estimate`.
 
     Parameters
@@ -110,6 +113,9 @@ def fit(readings, *, radius=1.0, center=None, method=None, rule=None, s=2.0,
     kind : str, default="disk"
         The region, a name in :data:`invert.geometry.DOMAINS`; readings have the domain's
         ``dim`` coordinates (a ball reads ``x, y, z``, see :class:`~invert.geometry.ball.Ball`).
+    inner_radius : float, optional
+        Bore radius of an annulus (``kind="annulus"``, :class:`~invert.geometry.annulus.
+        Annulus`); other domains refuse it.
     **options
         Passed to the stage: for ``tikhonov`` e.g. ``lam``, ``noise_sd``; for ``gaussian``
         and ``mcmc`` ``fix_s``; for ``mcmc`` also ``faulty``, ``angle_sd_deg``,
@@ -140,7 +146,8 @@ def fit(readings, *, radius=1.0, center=None, method=None, rule=None, s=2.0,
         raise ValueError(f"The 'rule' parameter of fit belongs to method='tikhonov'; "
                          f"method={method!r} chooses its hyperparameters itself.")
     r = as_readings(readings, dim=domain_class(kind).dim)
-    domain = make_domain(radius, center, kind=kind, s=s, n_modes=n_modes)
+    shape = {} if inner_radius is None else {"inner_radius": inner_radius}
+    domain = make_domain(radius, center, kind=kind, s=s, n_modes=n_modes, **shape)
     problem = problem_from_readings(r, domain)
     if method == "tikhonov":
         options = {"rule": rule or "evidence", **options}

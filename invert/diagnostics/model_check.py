@@ -3,7 +3,8 @@ r"""Model check: whether the readings fit a source-free harmonic field.
 Under the model, readings are Gaussian with covariance :math:`C = G_1\Sigma_{p,1}G_1^\top +
 \Sigma_e` (the broad mean level treated as a fixed effect); the residual quadratic form, a
 focused test for a uniform interior source and leave-one-out predictions follow
-(:func:`model_check`). Only ``domain.relative_radius`` is asked of the domain.
+(:func:`model_check`). Only ``domain.source_field`` (the field of a uniform source with zero
+rim values) is asked of the domain.
 
 References
 ----------
@@ -283,7 +284,7 @@ def model_check(estimate, problem, *, alpha=CHECK_ALPHA, refit=True) -> ModelChe
     known = problem.sigma is not None
     m = problem.n_readings
     notes = []
-    src = 1.0 - problem.domain.relative_radius(problem.points) ** 2
+    src = problem.domain.source_field(problem.points)  # 1 - rho^2 on a disk
     src[src < 1e-3] = 0.0  # rim readings (within the rim tolerance) carry no source signal
     con = _reml_contrasts(estimate, problem, problem.sigma if known else np.ones(m), src)
     p0 = con.p0

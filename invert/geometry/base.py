@@ -58,6 +58,9 @@ class Domain(Protocol):
     rim_arcs : object or None
         Angle-based rim tools (rim angles of points, harmonic measure of rim arcs, rings at a
         relative radius); ``None`` when the rim is not a circle.
+    inner_relative_radius : float
+        Relative radius of the inner boundary: 0 when the region reaches its centre (disk,
+        ball), ``a/b`` for an annulus, whose ``relative_radius`` is ``r/b`` in ``[a/b, 1]``.
 
     Optional methods (asked for with ``getattr``): ``rotated_design(points, angle)``, the
     design rows of sensors turned about the centre (the angle-error model of the MCMC stage
@@ -69,6 +72,7 @@ class Domain(Protocol):
     radius: float
     center: tuple
     n_modes: int
+    inner_relative_radius: float
 
     @property
     def n_coef(self) -> int: ...  # noqa: D102
@@ -145,6 +149,12 @@ class Domain(Protocol):
     def region_mean_square(self):
         """Diagonal of the region mean of the squared columns, or None (no closed form)."""
 
+    def source_field(self, points) -> np.ndarray:
+        """Field of a uniform source with zero values on every rim, 1 at its maximum."""
+
+    def reference_points(self):
+        """``((name, point), ...)``: points summarised in the report (the disk's centre)."""
+
 
 class RoundDomain:
     """What a disk and a ball share: a region ``|x - center| <= radius`` in ``dim`` dimensions.
@@ -157,6 +167,9 @@ class RoundDomain:
 
     kind: str = ""
     dim: int = 0
+    #: Relative radius of the inner boundary: 0 for a region that reaches its centre (an annulus
+    #: has its bore's a/b); points of the region have relative radius in [this, 1].
+    inner_relative_radius: float = 0.0
     truncation_tol: float = 1e-4
     max_degree: int = 128
     initial_max_degree: int = 256
@@ -198,6 +211,17 @@ class RoundDomain:
         """None: the rim is not a circle parametrised by one angle (no arc diagnostics)."""
         return None
 
+    def source_field(self, points) -> np.ndarray:
+        r"""Field of a uniform source with zero rim values, 1 at its maximum: :math:`1-\rho^2`.
+
+        The model check tests the readings against this direction.
+        """
+        return 1.0 - self.relative_radius(points) ** 2
+
+    def reference_points(self):
+        """Named points the report summarises besides the query points: the centre."""
+        return (("centre", np.asarray(self.center, float)),)
+
     # --- geometry ------------------------------------------------------------------------------
     def with_modes(self, n_modes: int):
         """Return the same region with another truncation degree (same class: subclasses stay)."""
@@ -232,7 +256,7 @@ class RoundDomain:
         """Raise ``ValueError`` when the prior's ``s`` gives no finite rim point variance."""
 
     @classmethod
-    def from_prior(cls, radius=1.0, center=None, *, s=2.0, n_modes=None):
+    def from_prior(cls, radius=1.0, center=None, *, s=2.0, n_modes=None, **shape):
         """Build a domain whose truncation leaves a negligible share of prior rim variance out.
 
         Parameters
@@ -244,11 +268,17 @@ class RoundDomain:
             Smoothness order of the prior (:func:`invert.prior.truncation_degree`).
         n_modes : int, optional
             Force the truncation degree.
+        **shape
+            Shape parameters of other domains (an annulus's ``inner_radius``): refused with a
+            ``ValueError`` naming the parameter, since a disk or ball has none.
 
         Returns
         -------
         RoundDomain
         """
+        if shape:
+            name = sorted(shape)[0]
+            raise ValueError(f"The '{name}' parameter does not apply to a {cls.kind}.")
         cls.check_smoothness(s)
         center = (0.0,) * cls.dim if center is None else tuple(center)
         if len(center) != cls.dim:

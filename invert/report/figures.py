@@ -10,9 +10,11 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from ..geometry.annulus import Annulus
 from ..geometry.ball import Ball
 from ..geometry.disk import Disk
 from . import ball_figures
+from .annulus_figures import write_figures_annulus
 from .disk_figures import write_figures_disk
 from .plots import visible
 
@@ -46,7 +48,8 @@ def write_figures_ball_report(out_dir, estimate, problem, readings=None, level=0
 
 
 #: Figure writer per domain class.
-FIGURES = {Disk: write_figures_disk, Ball: write_figures_ball_report}
+FIGURES = {Disk: write_figures_disk, Ball: write_figures_ball_report,
+           Annulus: write_figures_annulus}
 
 
 def figures_for(domain):
@@ -58,10 +61,11 @@ def figures_for(domain):
 
 
 def write_figures(out_dir, estimate, problem, readings=None, level=0.9, unit="", *,
-                  length_unit="", diagnostics=None, threshold=None):
+                  length_unit="", diagnostics=None, threshold=None, conductivity=None):
     """Write the figures of a fit into ``out_dir``; return ``[(path, caption), ...]``.
 
-    The writer is chosen by :func:`figures_for` from ``estimate.domain``.
+    The writer is chosen by :func:`figures_for` from ``estimate.domain``; ``conductivity``
+    (for the heat flow of a domain with a bore) is passed on only when given.
     """
     writer = figures_for(estimate.domain)
     if writer is None:
@@ -69,5 +73,6 @@ def write_figures(out_dir, estimate, problem, readings=None, level=0.9, unit="",
     # user strings are drawn literally: control characters as escapes (no mathtext either,
     # see invert.report.plots.literal_text, applied when a figure is saved)
     unit, length_unit = visible(unit or ""), visible(length_unit or "")
+    extra = {} if conductivity is None else {"conductivity": conductivity}
     return writer(out_dir, estimate, problem, readings, level, unit, length_unit=length_unit,
-                  diagnostics=diagnostics, threshold=threshold)
+                  diagnostics=diagnostics, threshold=threshold, **extra)

@@ -154,7 +154,7 @@ def field_summary(estimate, grid, level):
 
 
 def write_fit_outputs(stage_dir, estimate, problem, readings, *, level=0.9, query=None,
-                      grid=81, summary_extra=None):
+                      grid=81, summary_extra=None, conductivity=None):
     """Write summary.json, boundary.csv, field.csv and (with ``query``) query.csv.
 
     Parameters
@@ -163,10 +163,21 @@ def write_fit_outputs(stage_dir, estimate, problem, readings, *, level=0.9, quer
         Folder to write into (normally from :func:`staged_output`).
     query : tuple (points, labels), optional
     grid : int, default=81
-        Interior grid is ``grid`` x ``grid`` over the bounding square, points inside only.
+        Interior grid is ``grid`` x ``grid`` over the bounding square, points inside only (a
+        domain with a bore: a polar grid of the wall with the same spacing).
+    conductivity : float, optional
+        For a domain with a heat flow through it (an annulus): summary.json ``heat_flow`` and
+        rim_flux.csv, in W/m and W/m^2 with it, per unit conductivity without.
     """
+    from ..diagnostics.heat_flow import heat_flow, rim_flux_profile
+
     stage_dir = Path(stage_dir)
     _write_csv(estimate.boundary(360, level), stage_dir / "boundary.csv")
+    flow = heat_flow(estimate, conductivity, level)
+    if flow is not None:
+        _write_csv(rim_flux_profile(estimate, conductivity, level, 360),
+                   stage_dir / "rim_flux.csv")
+        summary_extra = {**(summary_extra or {}), "heat_flow": flow.to_dict()}
     if query is not None:
         pts, labels = query
         s = estimate.at(pts, level)

@@ -112,8 +112,12 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
         from ..diagnostics.diagnose import diagnose
 
         diagnostics = diagnose(estimate, problem, level=level, threshold=threshold)
+    from ..diagnostics.heat_flow import heat_flow
+
+    conductivity = ((summary or {}).get("heat_flow") or {}).get("conductivity")
+    flow = heat_flow(estimate, conductivity, level)  # None: no bore, no net flow
     figs = write_figures(out, estimate, problem, readings, level, unit, length_unit=length_unit,
-                         diagnostics=diagnostics, threshold=threshold)
+                         diagnostics=diagnostics, threshold=threshold, conductivity=conductivity)
     # user strings are escaped once, here; everything below receives HTML-safe text
     u = f" {_esc(unit)}" if unit else ""
     length_unit = _esc(length_unit or "")
@@ -141,6 +145,7 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
     parts.append(_table(["where", f"estimate{u}", f"sd{u}", f"{lvl} interval{u}"],
                         _summary_rows(estimate, level, query, length_unit)))
     parts += _exceedance_section(diagnostics.max_exceed, u, lvl)
+    parts += _heat_flow_section(flow, lvl)
     parts.append(_table(["fit", "value"], _fit_rows(estimate, problem, u)))
     parts += _depth_section(diagnostics, problem)
     parts += _gap_section(diagnostics, length_unit)
@@ -177,20 +182,22 @@ def _check_section(chk, u):
 
 
 def _summary_rows(estimate, level, query, length_unit):
-    # Centre (unless queried), rim extremes by angle (domains with rim_arcs), query points.
+    # The domain's reference points (the centre of a disk) unless queried, rim extremes by
+    # angle (domains with rim_arcs), query points.
     d = estimate.domain
     lu = f" {length_unit}" if length_unit else ""
-    c0 = np.asarray(d.center, float)[None, :]
 
     def where(p):
         return "(" + ", ".join(_fmt(v, 3) for v in p) + f"{lu})"
 
     rows = []
-    has_centre = query is not None and np.any(
-        np.linalg.norm(np.asarray(query[0], float) - c0, axis=1) < 1e-9 * d.radius)
-    if not has_centre:
+    for name, point in d.reference_points():
+        c0 = np.asarray(point, float)[None, :]
+        if query is not None and np.any(
+                np.linalg.norm(np.asarray(query[0], float) - c0, axis=1) < 1e-9 * d.radius):
+            continue
         s = estimate.at(c0, level)
-        rows.append([f"centre {where(c0[0])}", _fmt(s.mean[0]), _fmt(s.sd[0], 3),
+        rows.append([f"{_esc(name)} {where(c0[0])}", _fmt(s.mean[0]), _fmt(s.sd[0], 3),
                      f"{_fmt(s.lower[0])} to {_fmt(s.upper[0])}"])
     if d.rim_arcs is not None:  # a rim parametrised by the angle theta
         b = estimate.boundary(720, level)
@@ -216,6 +223,15 @@ def _exceedance_section(mx, u, lvl):
             f"draw's maximum is taken over {mx.n_rim} rim points). The maximum itself: median "
             f"{mx.max_median:.4g}{u}, {lvl} interval {mx.max_lower:.4g} to {mx.max_upper:.4g}{u}."
             "</p>"]
+
+
+def _heat_flow_section(flow, lvl):
+    if flow is None:
+        return []
+    return [f"<p>Net heat flow through the wall per unit length, radially outward: "
+            f"<b>{flow.mean:.5g}</b> {html.escape(flow.unit)} (sd {flow.sd:.3g}, {lvl} interval "
+            f"{flow.lower:.5g} to {flow.upper:.5g}); the same through every circle of a "
+            "source-free wall. Flux densities on each rim: rim_flux.csv.</p>"]
 
 
 def _fit_rows(estimate, problem, u):

@@ -23,11 +23,25 @@ def make(cls, n_modes=N_MODES):
                           n_modes=n_modes)
 
 
+def inner(domain):
+    """Relative radius of the domain's inner boundary (0 when the region reaches its centre)."""
+    return float(getattr(domain, "inner_relative_radius", 0.0))
+
+
+def wall_radius(domain, frac):
+    """Relative radius ``frac`` of the way from the inner boundary (or centre) to the rim."""
+    return inner(domain) + (1.0 - inner(domain)) * frac
+
+
 def sample_points(domain, n, rng, rho_max=1.0):
-    """``n`` points inside the domain: random directions, relative radii up to ``rho_max``."""
+    """``n`` points inside the domain: random directions, relative radii up to ``rho_max``.
+
+    Uniform in volume between the inner boundary (the centre for a disk or ball) and ``rho_max``.
+    """
     u = rng.standard_normal((n, domain.dim))
     u /= np.linalg.norm(u, axis=1)[:, None]
-    rho = rho_max * rng.uniform(0.0, 1.0, n) ** (1.0 / domain.dim)
+    lo, d = inner(domain), domain.dim
+    rho = (lo**d + (rho_max**d - lo**d) * rng.uniform(0.0, 1.0, n)) ** (1.0 / d)
     return np.asarray(domain.center) + domain.radius * rho[:, None] * u
 
 
@@ -40,8 +54,9 @@ def rim_quadrature(domain):
     """
     c, R, N = np.asarray(domain.center), domain.radius, domain.n_modes
     if domain.dim == 2:
-        th = 2 * np.pi * np.arange(4 * N + 8) / (4 * N + 8)
-        return c + R * np.column_stack([np.cos(th), np.sin(th)]), np.full(th.size, 1 / th.size)
+        # the domain's own rim grid: every rim (an annulus has two), equal weight per point
+        pts, _ = domain.rim_grid(4 * N + 8)
+        return pts, np.full(len(pts), 1 / len(pts))
     if domain.dim == 3:
         t, wt = np.polynomial.legendre.leggauss(N + 2)
         phi = 2 * np.pi * np.arange(2 * N + 4) / (2 * N + 4)
@@ -71,6 +86,16 @@ def check_protocol_and_declarations(domain, name):
     assert 0 < tol < 1 and int(max_degree) == max_degree >= 1
     assert isinstance(domain.describe(), dict)
     np.testing.assert_allclose(domain.relative_radius(np.asarray(domain.center)[None, :]), 0.0)
+    assert 0.0 <= inner(domain) < 1.0
+    # The model check's source direction vanishes on every rim and peaks at 1 inside
+    # (algebra: rounding, 1e-12).
+    rim, _ = domain.rim_grid(24)
+    np.testing.assert_allclose(domain.source_field(rim), 0.0, atol=1e-12)
+    inside, _ = domain.field_grid(31)
+    q = domain.source_field(inside)
+    assert q.min() >= -1e-12 and 0.9 < q.max() <= 1 + 1e-12
+    for name, point in domain.reference_points():
+        assert isinstance(name, str) and len(domain.locate(np.asarray(point)[None, :])[0]) == 1
 
 
 def check_design_equals_field(domain, rng):
@@ -99,14 +124,18 @@ def check_grids(domain):
         assert all(np.shape(v) == (len(pts),) for v in cols.values())
         _, on_rim, _ = domain.locate(pts)
         assert on_rim.all()
-        # Rim points lie on the boundary to rounding (1e-12 of the radius).
-        np.testing.assert_allclose(domain.relative_radius(pts), 1.0, atol=1e-12)
+        # Rim points lie on a boundary (the outer rim, or the inner one of a domain with a
+        # bore) to rounding (1e-12 of the radius).
+        radii = np.array([1.0, inner(domain)] if inner(domain) > 0 else [1.0])
+        rr = domain.relative_radius(pts)
+        assert np.abs(rr[:, None] - radii[None, :]).min(axis=1).max() <= 1e-12
     pts, cols = domain.field_grid(15)
     assert pts.ndim == 2 and pts.shape[1] == domain.dim and len(pts) > 0
     assert tuple(cols) == tuple(domain.point_columns)
     for k, name in enumerate(domain.point_columns):
         np.testing.assert_array_equal(cols[name], pts[:, k])
-    assert np.all(domain.relative_radius(pts) <= 1 + 1e-12)
+    rr = domain.relative_radius(pts)
+    assert np.all(rr <= 1 + 1e-12) and np.all(rr >= inner(domain) - 1e-12)
     n = domain.rim_search_size()
     assert int(n) == n and len(domain.rim_grid(n)[0]) >= domain.n_coef
 
@@ -120,7 +149,7 @@ def check_normal_derivative(domain, rng):
     u = rng.standard_normal((8, domain.dim))
     u /= np.linalg.norm(u, axis=1)[:, None]
     h = 1e-5 * domain.radius
-    for rho in (0.5, 0.999):
+    for rho in (wall_radius(domain, 0.5), wall_radius(domain, 0.999)):
         x = np.asarray(domain.center) + domain.radius * rho * u
         fd = (domain.field(c, x + h * u) - domain.field(c, x - h * u)) / (2 * h)
         np.testing.assert_allclose(domain.design_normal_derivative(x) @ c, fd, atol=1e-6)

@@ -1,0 +1,159 @@
+"""Figures of a fit on an annulus (a wall): both rim profiles, the wall map, rim flux densities.
+
+matplotlib is imported inside the functions that draw (:func:`~invert.report.plots.mpl_pyplot`).
+:data:`invert.report.figures.FIGURES` maps :class:`~invert.geometry.annulus.Annulus` to
+:func:`write_figures_annulus`. Everything the figures need is asked of the domain (``rim_grid``,
+``wall_rings``, ``polar_grid``, ``to_polar``) and of the estimate.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from .plots import (
+    BAND,
+    LENGTH,
+    LINE,
+    READ,
+    VALUE,
+    WARN,
+    axis_label,
+    mpl_pyplot,
+    plot_residuals,
+    plot_traces,
+    save_figure,
+)
+
+__all__ = ["write_figures_annulus", "plot_rim_profiles", "plot_wall_maps", "plot_rim_flux"]
+
+#: Relative distance (of the outer radius) within which a sensor is drawn on a rim's profile.
+ON_RIM = 1e-3
+
+
+def _on(domain, points, rim):
+    rho, th = domain.to_polar(points)
+    target = 1.0 if rim == "outer" else domain.inner_relative_radius
+    return np.abs(rho - target) <= ON_RIM, np.rad2deg(np.mod(th, 2 * np.pi))
+
+
+def _profile(ax, frame, rim, label, ylabel):
+    part = frame[frame["rim"] == rim]
+    t = part["theta_deg"].to_numpy()
+    ax.fill_between(t, part["lower"], part["upper"], color=BAND, label=label)
+    ax.plot(t, part["mean"], color=LINE, lw=1.5, label="estimate")
+    ax.set_xlim(0, 360)
+    ax.set_xticks(range(0, 361, 45))
+    ax.set_ylabel(ylabel)
+
+
+def plot_rim_profiles(fig, estimate, problem, level=0.9, unit=""):
+    """Outer and inner rim profiles with their bands, the readings on each and failed sensors."""
+    domain = estimate.domain
+    b = estimate.boundary(720, level)
+    axes = fig.subplots(2, 1, sharex=True)
+    lvl = f"{round(level * 100):g} % interval"
+    for ax, rim in zip(axes, ("outer", "inner"), strict=True):
+        _profile(ax, b, rim, lvl, axis_label(f"value on the {rim} rim", unit, VALUE))
+        on, deg = _on(domain, problem.points, rim)
+        err = None if problem.sigma is None else problem.sigma[on]
+        ax.errorbar(deg[on], problem.y[on], yerr=err, fmt="o", ms=4, color=READ,
+                    label="reading (± sigma)")
+        if problem.gap_points is not None and len(problem.gap_points):
+            gon, gdeg = _on(domain, problem.gap_points, rim)
+            part = b[b["rim"] == rim]
+            ax.plot(gdeg[gon], np.full(int(gon.sum()), part["lower"].min()), "x", color=WARN,
+                    mew=1.5, label="sensor without reading")
+        ax.set_title(f"{rim} rim", fontsize=10)
+        ax.legend(loc="best", fontsize=7)
+    axes[1].set_xlabel("angle θ (degrees, counter-clockwise from +x)")
+
+
+def plot_wall_maps(fig, estimate, problem, level=0.9, n=121, unit="", length_unit=""):
+    """Estimate and posterior sd on a polar grid of the wall, with the sensors."""
+    domain = estimate.domain
+    rho, n_t = domain.wall_rings(n)
+    pts = domain.polar_grid(rho, n_t + 1)  # the angle 2 pi repeats 0: a closed map
+    s = estimate.at(pts, level)
+    X, Y = pts[:, 0].reshape(len(rho), -1), pts[:, 1].reshape(len(rho), -1)
+    X, Y = np.column_stack([X, X[:, :1]]), np.column_stack([Y, Y[:, :1]])
+    axes = fig.subplots(1, 2)
+    for ax, data, title, cmap in ((axes[0], s.mean, "estimated field", "magma"),
+                                  (axes[1], s.sd, "posterior sd", "cividis")):
+        Z = data.reshape(len(rho), -1)
+        im = ax.pcolormesh(X, Y, np.column_stack([Z, Z[:, :1]]), cmap=cmap, shading="gouraud")
+        fig.colorbar(im, ax=ax, shrink=0.8, label=axis_label(title, unit, VALUE))
+        for r in (rho[0], rho[-1]):
+            ring = domain.polar_grid([r], 400)
+            ax.plot(np.r_[ring[:, 0], ring[0, 0]], np.r_[ring[:, 1], ring[0, 1]], color="k",
+                    lw=0.8)
+        ax.plot(problem.points[:, 0], problem.points[:, 1], "o", ms=4, mfc="w", mec="k",
+                label="sensor with reading")
+        if problem.gap_points is not None and len(problem.gap_points):
+            ax.plot(problem.gap_points[:, 0], problem.gap_points[:, 1], "x", ms=6, color=WARN,
+                    mew=1.5, label="sensor without reading")
+        ax.set_aspect("equal")
+        ax.set_title(title)
+        ax.set_xlabel(axis_label("x", length_unit, LENGTH))
+        ax.set_ylabel(axis_label("y", length_unit, LENGTH))
+    axes[1].legend(loc="lower right", fontsize=7)
+
+
+def plot_rim_flux(fig, frame, level=0.9, flux_unit=""):
+    """Radially outward flux density on each rim (``rim_flux.csv``), with its band."""
+    axes = fig.subplots(1, 2, sharey=False)
+    lvl = f"{round(level * 100):g} % interval"
+    for ax, rim in zip(axes, ("outer", "inner"), strict=True):
+        _profile(ax, frame, rim, lvl, f"flux density -k du/dr ({flux_unit})")
+        ax.set_title(f"{rim} rim", fontsize=10)
+        ax.set_xlabel("angle θ (degrees)")
+        ax.legend(loc="best", fontsize=7)
+
+
+def write_figures_annulus(out_dir, estimate, problem, readings=None, level=0.9, unit="", *,
+                          length_unit="", diagnostics=None, threshold=None, conductivity=None):
+    """Write the figures of a fit on an annulus; return ``[(path, caption), ...]``.
+
+    Rim profiles, wall maps, the rim flux densities, residuals and (for a sampled posterior)
+    MCMC traces. ``threshold`` is not drawn (no exceedance map yet).
+    """
+    from ..diagnostics.heat_flow import rim_flux_profile
+
+    out = Path(out_dir)
+    plt = mpl_pyplot()
+    lvl = f"{round(level * 100):g} %"
+    figs = []
+    fig = plt.figure(figsize=(9, 6), layout="constrained")
+    plot_rim_profiles(fig, estimate, problem, level, unit)
+    figs.append((save_figure(plt, fig, out / "rim_profiles.png"),
+                 f"Outer and inner rim profiles: estimate and {lvl} interval, readings on each "
+                 "rim with ± sigma bars, crosses: sensors without a reading."))
+    fig = plt.figure(figsize=(10.5, 4.4), layout="constrained")
+    plot_wall_maps(fig, estimate, problem, level, unit=unit, length_unit=length_unit)
+    figs.append((save_figure(plt, fig, out / "wall_maps.png"),
+                 "Estimate and posterior sd across the wall (polar grid of field.csv)."))
+    flux_unit = "W/m^2 with lengths in m" if conductivity is not None else \
+        "per unit conductivity"
+    fig = plt.figure(figsize=(10.5, 3.6), layout="constrained")
+    plot_rim_flux(fig, rim_flux_profile(estimate, conductivity, level, 360), level, flux_unit)
+    figs.append((save_figure(plt, fig, out / "rim_flux.png"),
+                 f"Radially outward flux density -k du/dr on each rim with its {lvl} interval "
+                 "(rim_flux.csv); its integral over either circle is the net heat flow."))
+    check = None if diagnostics is None else diagnostics.check
+    if check is not None:
+        fig, ax = plt.subplots(figsize=(9, 3.6), layout="constrained")
+        plot_residuals(ax, check)
+        figs.append((save_figure(plt, fig, out / "residuals.png"),
+                     "Residual of the fit over the noise sd, and the leave-one-out z of each "
+                     "reading (its distance from what the other readings predict)."))
+    post = estimate.extras.get("posterior") if estimate.extras else None
+    if post is not None:
+        fig = plt.figure(figsize=(9, 5.5), layout="constrained")
+        shown = plot_traces(fig, post, trace=estimate.extras.get("trace"))
+        if shown:
+            figs.append((save_figure(plt, fig, out / "traces.png"),
+                         f"MCMC traces of the sampled hyperparameters: {shown}."))
+        else:
+            plt.close(fig)
+    return figs
