@@ -61,7 +61,7 @@ import numpy as np
 
 from ..errors import DomainError
 from ..prior import truncation_degree
-from .base import RoundDomain
+from .base import PlanarPolar, RoundDomain
 
 __all__ = ["Annulus", "radial_profiles"]
 
@@ -132,7 +132,7 @@ def radial_profiles(s, t, L, n_modes):
 
 
 @dataclass(frozen=True)
-class Annulus(RoundDomain):
+class Annulus(PlanarPolar, RoundDomain):
     r"""The wall :math:`a \le |x - c| \le b` with both rim functions up to degree ``n_modes``.
 
     Parameters
@@ -355,18 +355,6 @@ class Annulus(RoundDomain):
         on_rim = (rho >= 1 - tol) | (rho <= alpha + tol)
         n_snapped = int(((rho > 1 + 1e-6) | (rho < alpha - 1e-6)).sum())
         return w * scale, on_rim, n_snapped
-
-    def to_polar(self, points):
-        """Return ``(rho, theta)``: radius relative to ``b`` and polar angle in radians."""
-        w = self._w(points)
-        return np.abs(w), np.angle(w)
-
-    def from_polar(self, rho, theta):
-        """Points of shape (n, 2) at relative radius ``rho`` (of ``b``) and angle ``theta``."""
-        rho, theta = np.broadcast_arrays(np.asarray(rho, float), np.asarray(theta, float))
-        x = self.center[0] + self.radius * rho * np.cos(theta)
-        y = self.center[1] + self.radius * rho * np.sin(theta)
-        return np.column_stack([x.ravel(), y.ravel()])
 
     def rotated_design(self, points, angle) -> np.ndarray:
         """Design rows of ``points`` turned about the centre by ``angle`` (radians, ccw).

@@ -25,7 +25,7 @@ import numpy as np
 
 from ..prior import truncation_degree
 
-__all__ = ["Domain", "RoundDomain"]
+__all__ = ["Domain", "RoundDomain", "PlanarPolar"]
 
 
 @runtime_checkable
@@ -289,3 +289,23 @@ class RoundDomain:
             n_modes = truncation_degree(probe, s, tol=probe.truncation_rule()[0],
                                         maximum=cls.initial_max_degree)
         return cls(radius, center, n_modes)
+
+
+class PlanarPolar:
+    """Polar coordinates of a plane region about ``center``, relative to ``radius``.
+
+    Shared by the disk and the annulus; the class provides ``_w(points)``, the complex position
+    ``(z - center) / radius``.
+    """
+
+    def to_polar(self, points):
+        """Return ``(rho, theta)``: radius relative to ``radius`` and polar angle in radians."""
+        w = self._w(points)
+        return np.abs(w), np.angle(w)
+
+    def from_polar(self, rho, theta):
+        """Points of shape (n, 2) at relative radius ``rho`` and angle ``theta`` (radians)."""
+        rho, theta = np.broadcast_arrays(np.asarray(rho, float), np.asarray(theta, float))
+        x = self.center[0] + self.radius * rho * np.cos(theta)
+        y = self.center[1] + self.radius * rho * np.sin(theta)
+        return np.column_stack([x.ravel(), y.ravel()])

@@ -28,7 +28,7 @@ import numpy as np
 
 from ..errors import DomainError
 from .arcs import CircleArcs, arc_fourier_coefficients, arc_harmonic_measure
-from .base import RoundDomain
+from .base import PlanarPolar, RoundDomain
 from .cartesian import grid_moments
 from .polar import ring_variance
 
@@ -90,7 +90,7 @@ def poisson_kernel(r, theta, phi, radius=1.0):
 
 
 @dataclass(frozen=True)
-class Disk(RoundDomain):
+class Disk(PlanarPolar, RoundDomain):
     r"""A disk of radius ``radius`` centred at ``center``, with harmonics up to ``n_modes``.
 
     Parameters
@@ -248,18 +248,6 @@ class Disk(RoundDomain):
         w = np.where(snap, w / np.where(snap, rho, 1.0), w)
         on_rim = rho >= 1 - tol
         return w, on_rim, int((rho > 1 + 1e-6).sum())
-
-    def to_polar(self, points):
-        """Return ``(rho, theta)``: radius relative to ``R`` and polar angle in radians."""
-        w = self._w(points)
-        return np.abs(w), np.angle(w)
-
-    def from_polar(self, rho, theta):
-        """Points of shape (n, 2) at relative radius ``rho`` and angle ``theta`` (radians)."""
-        rho, theta = np.broadcast_arrays(np.asarray(rho, float), np.asarray(theta, float))
-        x = self.center[0] + self.radius * rho * np.cos(theta)
-        y = self.center[1] + self.radius * rho * np.sin(theta)
-        return np.column_stack([x.ravel(), y.ravel()])
 
     def rotated_design(self, points, angle) -> np.ndarray:
         """Design rows of ``points`` turned about the centre by ``angle`` (radians, ccw).

@@ -20,9 +20,8 @@ from .plots import (
     VALUE,
     WARN,
     axis_label,
+    check_and_trace_figures,
     mpl_pyplot,
-    plot_residuals,
-    plot_traces,
     save_figure,
 )
 
@@ -141,19 +140,5 @@ def write_figures_annulus(out_dir, estimate, problem, readings=None, level=0.9, 
                  f"Radially outward flux density -k du/dr on each rim with its {lvl} interval "
                  "(rim_flux.csv); its integral over either circle is the net heat flow."))
     check = None if diagnostics is None else diagnostics.check
-    if check is not None:
-        fig, ax = plt.subplots(figsize=(9, 3.6), layout="constrained")
-        plot_residuals(ax, check)
-        figs.append((save_figure(plt, fig, out / "residuals.png"),
-                     "Residual of the fit over the noise sd, and the leave-one-out z of each "
-                     "reading (its distance from what the other readings predict)."))
-    post = estimate.extras.get("posterior") if estimate.extras else None
-    if post is not None:
-        fig = plt.figure(figsize=(9, 5.5), layout="constrained")
-        shown = plot_traces(fig, post, trace=estimate.extras.get("trace"))
-        if shown:
-            figs.append((save_figure(plt, fig, out / "traces.png"),
-                         f"MCMC traces of the sampled hyperparameters: {shown}."))
-        else:
-            plt.close(fig)
+    figs += check_and_trace_figures(plt, out, estimate, check)
     return figs

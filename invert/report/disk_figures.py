@@ -21,9 +21,8 @@ from .plots import (
     VALUE,
     WARN,
     axis_label,
+    check_and_trace_figures,
     mpl_pyplot,
-    plot_residuals,
-    plot_traces,
     save_figure,
 )
 
@@ -344,20 +343,6 @@ def write_figures_disk(out_dir, estimate, problem, readings=None, level=0.9, uni
     figs.append((save_figure(plt, fig, out / "gap_dependence.png"),
                  "Share of each point's Poisson-kernel weight that falls on unsensed rim arcs: "
                  "where this is large, the estimate there is mostly the prior's guess."))
-    if diagnostics.check is not None:
-        fig, ax = plt.subplots(figsize=(9, 3.6), layout="constrained")
-        plot_residuals(ax, diagnostics.check)
-        figs.append((save_figure(plt, fig, out / "residuals.png"),
-                     "Residual of the fit over the noise sd, and the leave-one-out z of each "
-                     "reading (its distance from what the other readings predict)."))
-    post = estimate.extras.get("posterior") if estimate.extras else None
-    if post is not None:
-        fig = plt.figure(figsize=(9, 5.5), layout="constrained")
-        shown = plot_traces(fig, post, trace=estimate.extras.get("trace"))
-        if shown:
-            figs.append((save_figure(plt, fig, out / "traces.png"),
-                         f"MCMC traces of the sampled hyperparameters: {shown}; histograms of "
-                         "all kept posterior draws."))
-        else:
-            plt.close(fig)
+    figs += check_and_trace_figures(plt, out, estimate, diagnostics.check,
+                                    "; histograms of all kept posterior draws")
     return figs

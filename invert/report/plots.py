@@ -228,3 +228,27 @@ def plot_traces(fig, posterior, max_chains=8, trace=None, max_draws=400):
     axes[0, 0].set_title(f"MCMC traces ({n_ch} of {total} chains, {n_draw} draws each)")
     axes[0, 1].set_title("distribution")
     return f"{n_ch} of {total} chains, {n_draw} draws each ({note})"
+
+
+def check_and_trace_figures(plt, out, estimate, check, trace_note=""):
+    """Draw the residual figure (when a model check ran) and the MCMC trace figure (if drawn).
+
+    Returns a list of ``(path, caption)``; ``trace_note`` is appended to the trace caption.
+    """
+    figs = []
+    if check is not None:
+        fig, ax = plt.subplots(figsize=(9, 3.6), layout="constrained")
+        plot_residuals(ax, check)
+        figs.append((save_figure(plt, fig, out / "residuals.png"),
+                     "Residual of the fit over the noise sd, and the leave-one-out z of each "
+                     "reading (its distance from what the other readings predict)."))
+    post = estimate.extras.get("posterior") if estimate.extras else None
+    if post is not None:
+        fig = plt.figure(figsize=(9, 5.5), layout="constrained")
+        shown = plot_traces(fig, post, trace=estimate.extras.get("trace"))
+        if shown:
+            figs.append((save_figure(plt, fig, out / "traces.png"),
+                         f"MCMC traces of the sampled hyperparameters: {shown}{trace_note}."))
+        else:
+            plt.close(fig)
+    return figs
