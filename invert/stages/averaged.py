@@ -56,6 +56,8 @@ MIN_WEIGHT = 1e-6
 #: Points of the ``log alpha`` grid per ``s`` (log-spaced, three decades beyond the
 #: informative singular values on each side).
 N_ALPHA = 61
+#: Residual degrees of freedom a component must keep when the noise level is estimated.
+RESIDUAL_DOF_FLOOR = 3.0
 #: Default range of ``s`` for this stage: down to 1 (rim profiles of bounded variation; a step
 #: along an arc has Fourier coefficients of order 1/n, i.e. a prior sd n^-s with s near 1).
 AVERAGED_S_BOUNDS = (1.0, 5.0)
@@ -124,6 +126,11 @@ class AveragedPosterior(GaussianPosterior):
                 dof = spec.dof(alphas)
                 df = np.maximum(m - dof, 1e-6)
                 nu2 = spec.residual2(alphas) / df  # Wahba (1983), as the Gaussian stage
+                # An estimated noise level needs residual degrees of freedom: components
+                # that nearly interpolate are left out (the Tikhonov stage's guard, 3 dof),
+                # unless no component keeps them.
+                floor = min(RESIDUAL_DOF_FLOOR, 0.5 * m)
+                logev = np.where(df >= floor, logev, -np.inf)
             else:
                 df = np.full(alphas.shape, np.inf)
                 nu2 = np.full(alphas.shape, float(noise) ** 2)
@@ -139,6 +146,10 @@ class AveragedPosterior(GaussianPosterior):
             raise ValueError("AveragedPosterior averages over tau; it cannot be fixed.")
         rows = self._components(problem, mode, noise)
         top = max(float(np.max(r[3])) for r in rows)
+        if not np.isfinite(top):
+            raise ValueError(f"No smoothness order and prior scale leaves residual degrees of "
+                             f"freedom to estimate the noise level from {problem.n_readings} "
+                             f"readings; give a 'sigma' column or add readings")
         weights = [np.exp(r[3] - top) for r in rows]
         total = sum(float(w.sum()) for w in weights)
         weights = [np.where(w >= MIN_WEIGHT, w, 0.0) / total for w in weights]
