@@ -27,7 +27,7 @@ from .cli_checks import (
     shape_options,
 )
 from .errors import InputError
-from .stages.registry import DEFAULT_METHOD
+from .stages.registry import DEFAULT_METHOD, TIKHONOV_OPTIONS, method_for
 
 EXIT_BAD_INPUT = 2
 #: Exit code when the operating system refused a read or write (disk full, permissions).
@@ -338,9 +338,7 @@ def run_fit(readings_path, *, radius, out, center=None, method=None, query=None,
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         try:
-            if method is None:  # as the command line: Tikhonov options name the Tikhonov stage
-                tik = {"rule", "lam", "noise_sd"} & set(stage_options or {})
-                method = "tikhonov" if tik else DEFAULT_METHOD
+            method = method_for(method, stage_options or {})  # as the command line
             estimate, problem = workflow.robust_stage(problem, method, s=smoothness,
                                                       seed=seed, **(stage_options or {}))
         except ValueError as exc:  # e.g. too few readings: name the file they came from
@@ -525,8 +523,7 @@ def _cmd_batch(args):
 def resolve_method(args):
     """Set ``args.method`` if not given: tikhonov with --rule/--lam/--noise-sd, else the default."""
     if getattr(args, "method", "") is None:
-        tik = any(getattr(args, k, None) is not None for k in ("rule", "lam", "noise_sd"))
-        args.method = "tikhonov" if tik else DEFAULT_METHOD
+        args.method = method_for(None, {k: getattr(args, k, None) for k in TIKHONOV_OPTIONS})
     return args
 
 

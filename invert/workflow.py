@@ -18,7 +18,7 @@ from .geometry import domain_class
 from .io.readings import Readings, load_readings
 from .problem import LinearProblem
 from .stages._truncation import truncation_for
-from .stages.registry import DEFAULT_METHOD, STAGES, stage_names
+from .stages.registry import STAGES, method_for, stage_names
 from .stages.robust import robust_fit
 from .stages.suspects import screened_mixture
 
@@ -136,9 +136,7 @@ def fit(readings, *, radius=1.0, center=None, method=None, rule=None, s=2.0,
     >>> round(float(est.at([[0.0, 0.0]]).mean[0]), 1)
     20.0
     """
-    if method is None:
-        tik = rule is not None or "lam" in options or "noise_sd" in options
-        method = "tikhonov" if tik else DEFAULT_METHOD
+    method = method_for(method, {"rule": rule, **options})
     if method not in METHODS:
         raise ValueError(f"The 'method' parameter of fit must be one of {METHODS} "
                          f"(see invert.fit). Got {method!r} instead.")

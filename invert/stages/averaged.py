@@ -150,30 +150,29 @@ class AveragedPosterior(GaussianPosterior):
             raise ValueError(f"No smoothness order and prior scale leaves residual degrees of "
                              f"freedom to estimate the noise level from {problem.n_readings} "
                              f"readings; give a 'sigma' column or add readings")
-        weights = [np.exp(r[3] - top) for r in rows]
-        total = sum(float(w.sum()) for w in weights)
-        weights = [np.where(w >= MIN_WEIGHT, w, 0.0) / total for w in weights]
+        weights = [np.exp(r[3] - top) for r in rows]  # relative to the largest
+        weights = [np.where(w >= MIN_WEIGHT, w, 0.0) for w in weights]
         norm = sum(float(w.sum()) for w in weights)
         weights = [w / norm for w in weights]
         p = problem.n_coef
-        mean = np.zeros(p)
         means, ws = [], []
         second = np.zeros((p, p))
         for (s, spec, alphas, logev, nu2, df, tau), w in zip(rows, weights):
             keep = np.flatnonzero(w > 0)
             if keep.size == 0:
                 continue
-            B, _ = spec.cov_factor(alphas[0])
-            # Sum over alpha of w * nu^2 * h(alpha), then one product for this s.
-            h_sum = np.zeros(B.shape[1])
-            for k in keep:
-                _, h = spec.cov_factor(alphas[k])
-                h_sum += w[k] * nu2[k] * h
-                means.append(spec.coef(alphas[k]))
-                ws.append(w[k])
-            second += (B * h_sum) @ B.T
-        ws = np.asarray(ws)
-        M = np.asarray(means)
+            a, wn = alphas[keep], w[keep] * nu2[keep]
+            # Every covariance of this s is B diag(h(alpha)) B^T with one B: sum the weighted
+            # h over alpha, then one product (Spectrum.cov_factor gives B and h).
+            B, _ = spec.cov_factor(a[0])
+            h_kept = (1.0 / (spec.s[:, None] ** 2 + a[None, :])) @ wn
+            h_null = np.full(B.shape[1] - spec.s.size, float(np.sum(wn / a)))
+            second += (B * np.concatenate([h_kept, h_null])) @ B.T
+            f = spec.filter_factors(a)  # means of every kept alpha in one product
+            means.append((spec.d[:, None] * (spec.Vt.T @ (f * (spec.beta / spec.s)[:, None]))).T)
+            ws.append(w[keep])
+        ws = np.concatenate(ws)
+        M = np.vstack(means)
         mean = ws @ M
         D = M - mean
         cov = second + (D.T * ws) @ D

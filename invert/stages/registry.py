@@ -24,7 +24,7 @@ from .gaussian import GaussianPosterior
 from .mcmc import MCMCSampler
 from .tikhonov import Tikhonov
 
-__all__ = ["STAGES", "stage_names", "DEFAULT_METHOD"]
+__all__ = ["STAGES", "stage_names", "DEFAULT_METHOD", "method_for"]
 
 #: Method name -> stage class, in the order the command line lists them.
 STAGES = MappingProxyType({
@@ -39,6 +39,22 @@ STAGES = MappingProxyType({
 #: over the hyperparameters, with gross errors left out and doubtful readings mixed in
 #: (chosen by measurement, ``bench/bench_calibration.py``; README "Calibration").
 DEFAULT_METHOD = "averaged"
+
+
+#: Options that belong to the Tikhonov stage: naming one without a method names that stage.
+TIKHONOV_OPTIONS = ("rule", "lam", "noise_sd")
+
+
+def method_for(method, options):
+    """Return ``method``, or when None the stage the ``options`` imply.
+
+    ``tikhonov`` when one of :data:`TIKHONOV_OPTIONS` is set (not None) in ``options``, else
+    :data:`DEFAULT_METHOD`. The command line, ``run_fit`` and ``invert.fit`` all decide here.
+    """
+    if method is not None:
+        return method
+    given = {k for k, v in dict(options).items() if v is not None}
+    return "tikhonov" if given & set(TIKHONOV_OPTIONS) else DEFAULT_METHOD
 
 
 def stage_names() -> tuple:
