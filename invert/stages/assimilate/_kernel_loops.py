@@ -17,7 +17,7 @@ __all__ = ["backward_pass", "forward_pass"]
 _LOG2PI = math.log(2.0 * math.pi)
 # Reassociation lets the row dot products run as SIMD reductions (rounding order only); no
 # "nnan"/"ninf" flags: the kernel tests readings for NaN.
-_JIT = {"cache": True, "fastmath": {"reassoc", "contract"}}
+_JIT = {"cache": True, "nogil": True, "fastmath": {"reassoc", "contract"}}
 
 
 @numba.njit(**_JIT)
