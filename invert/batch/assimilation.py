@@ -44,6 +44,7 @@ from ..stages.assimilate import (
 from .chain import ChainSteps, run_chain
 from .checkpoint import ChunkDone
 from .kernel_chain import RECURSION, chunk_info, chunk_tables_from, kernel_chunks
+from .overlap import overlapped_chunks
 from .statuses import count_statuses, frame_statuses
 
 __all__ = ["assimilation_chunks", "parallel_chunks", "dynamics", "STATE_CLASSES"]
@@ -154,6 +155,11 @@ def assimilation_chunks(job, source, engine, work, hyper):
         extra = {"max_transient": None, "recursion": "exact (NumPy)",
                  "parallel": "associative scan over chunk summaries (Särkkä & "
                              "García-Fernández 2021)"}
+    elif job.max_transient is None and getattr(engine, "workers", 1) > 1:
+        loglik, handover = yield from overlapped_chunks(job, source, engine, work, model,
+                                                        tol=job.handover_tol,
+                                                        warmup=job.warmup)
+        extra = {"max_transient": None, "recursion": RECURSION, "handover": handover}
     elif job.max_transient is None:
         loglik = yield from kernel_chunks(job, source, engine, work, model)
         extra = {"max_transient": None, "recursion": RECURSION}

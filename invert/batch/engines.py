@@ -175,6 +175,11 @@ class DaskEngine:
             self._client.run(_stop_http)
         self.address = self._client.scheduler.address
 
+    @property
+    def workers(self) -> int:
+        """Worker threads of the cluster now (how many tasks can run at once)."""
+        return int(sum(self._client.nthreads().values()))
+
     #: Arguments larger than this (bytes, by ``dask.sizeof``) are scattered before a submit.
     scatter_bytes = 1 << 20
 

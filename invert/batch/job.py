@@ -63,6 +63,12 @@ class BatchJob:
     parallel_in_time : bool, default=False
         Assimilation by the parallel-in-time algorithm (exact mode only:
         ``max_transient=None``).
+    handover_tol : float, default=1e-10
+        Exact mode on an engine with several workers: chunks start from warm-up states, kept
+        when they match the true neighbour state within this many sds (and relative for
+        covariances), else run again (:mod:`invert.batch.overlap`).
+    warmup : int, optional
+        Warm-up length in frames of those starts; default from the time scale.
     unit : str, optional
         Unit of the readings (results.nc).
     time_format : str, optional
@@ -92,6 +98,8 @@ class BatchJob:
     steady_tol: float = 1e-10
     max_transient: int | None = None
     parallel_in_time: bool = False
+    handover_tol: float = 1e-10
+    warmup: int | None = None
     time_format: str | None = None
     unit: str | None = None
     layout_digest: str | None = None
@@ -129,6 +137,7 @@ class BatchJob:
             "fmt": self.fmt, "chunk_rows": self.chunk_rows, "level": self.level,
             "steady_tol": self.steady_tol, "max_transient": self.max_transient,
             "parallel_in_time": bool(self.parallel_in_time), "parts": "arrow-ipc",
+            "handover_tol": self.handover_tol, "warmup": self.warmup,
             "time_format": self.time_format,
             "state": "npz",
         }

@@ -40,7 +40,8 @@ from .chain import ChainSteps, run_chain
 from .statuses import frame_statuses
 from .tables import empty_query, frames_table, query_table
 
-__all__ = ["KERNEL_CLASSES", "RECURSION", "kernel_chunks", "kernel_steps", "chunk_tables_from"]
+__all__ = ["KERNEL_CLASSES", "RECURSION", "SEGMENT", "accepted_frames", "backward_task",
+           "chunk_info", "chunk_tables_from", "filter_part", "kernel_chunks", "kernel_steps"]
 
 #: The dataclasses spilled by this mode (the only ones read back, as data).
 KERNEL_CLASSES = (FilterCarry, Checkpoints, BackwardCarry)
@@ -95,13 +96,26 @@ def chunk_tables_from(info, c_mean, c_sd, nis, n_used, qm, qs, labels, z, kind):
     return ftab, qtab
 
 
+def accepted_frames(chunk, info):
+    """Return the times (seconds) and readings of the frames the filter takes, contiguous."""
+    acc = info["acc"]
+    return np.ascontiguousarray(seconds(chunk.t[acc])), np.ascontiguousarray(chunk.Y[acc])
+
+
+def filter_part(kmodel, carry, t, Y):
+    """Filter accepted frames ``t``, ``Y`` from ``carry``: ``(carry, part)``.
+
+    ``part`` holds what the backward pass needs (frames, checkpoints every :data:`SEGMENT`
+    frames, squared standardised innovations, readings used).
+    """
+    carry, cp, nis, _, n_used = filter_chunk(kmodel, carry, t, Y, every=SEGMENT)
+    return carry, {"t": t, "Y": Y, "cp": cp, "nis": nis, "n_used": n_used}
+
+
 def forward_task(kmodel, carry, chunk, last_time):
     """Filter one chunk (an engine task): ``(carry, part, info, last_time)``."""
     info, last = chunk_info(chunk, last_time)
-    acc = info["acc"]
-    t, Y = np.ascontiguousarray(seconds(chunk.t[acc])), np.ascontiguousarray(chunk.Y[acc])
-    carry, cp, nis, _, n_used = filter_chunk(kmodel, carry, t, Y, every=SEGMENT)
-    part = {"t": t, "Y": Y, "cp": cp, "nis": nis, "n_used": n_used}
+    carry, part = filter_part(kmodel, carry, *accepted_frames(chunk, info))
     return carry, part, info, last
 
 

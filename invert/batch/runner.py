@@ -109,7 +109,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               scheduler=None, fmt="parquet", resume=False, lam=None, noise_sd=None,
               level=0.9, smoothness=2.0, n_modes=None, center=None, time_scale=None,
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
-              ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
+              ml_frames=20000, n_workers=2, parallel_in_time=False, handover_tol=1e-10,
+              warmup=None, time_format=None,
               table=None, time_from=None, time_to=None, unit=None, out_table=None,
               on_chunk=None, say=print, log_options=None):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
@@ -158,6 +159,10 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
     parallel_in_time : bool, default=False
         Assimilation by the NumPy parallel-in-time smoother (associative scan over chunk
         summaries; needs ``max_transient=None``).
+    handover_tol, warmup :
+        Exact mode on dask with several workers: tolerance of the checked hand-overs between
+        chunks started early, and their warm-up length in frames (default from the time
+        scale); :mod:`invert.batch.overlap`.
     time_format : str, optional
         How the log writes its times when not numbers or ISO 8601: ``epoch-s``/``-ms``/
         ``-us``/``-ns`` or a strptime pattern (:mod:`invert.io.times`).
@@ -197,6 +202,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           calibration_frames=calibration_frames, assimilate=assimilate,
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time,
+                          handover_tol=handover_tol, warmup=warmup,
                           time_format=time_format, unit=unit)
     if out_table is not None and not is_database_url(log):
         raise InputError(str(log), "--out-table writes into the log's database: give a "

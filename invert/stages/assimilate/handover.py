@@ -178,20 +178,21 @@ def warm_adjoint(model, checkpoints, t, Y, n):
     return smooth_chunk(model, head, BackwardCarry.final(model), t[:n], Y[:n])[0]
 
 
-def warmup_frames(time_scale, step, tol, *, factor=0.6):
+def warmup_frames(time_scale, step, tol, *, factor=1.0):
     r"""Warm-up length in frames: ``factor`` time scales per e-fold of ``1/tol``.
 
     The slowest mismatch decays on the time scale of the dynamics (the directions the readings
     do not see relax like :math:`e^{-\Delta/T}` and are coupled to the mean level, a random
-    walk); on the demo disk with 26 sensors it was measured to fall like
-    :math:`e^{-k/(0.55\,T)}` over ``k`` frames, hence :math:`B = 0.6\,T \ln(1/\mathrm{tol})`.
+    walk). Measured on the demo disk with 26 sensors (``bench/bench_kernel.make_log``, T =
+    3600 s): the mean mismatch falls by e every 0.55 T (prior tau^2 = 1) to 1.0 T (the batch's
+    estimates on that log, tau^2 = 0.13), hence :math:`B = T \ln(1/\mathrm{tol})` frames.
 
     Parameters
     ----------
     time_scale, step : float
         Time scale of the dynamics and the median time step (same unit).
     tol : float
-    factor : float, default=0.6
+    factor : float, default=1.0
 
     Returns
     -------
