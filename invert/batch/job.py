@@ -115,6 +115,13 @@ class BatchJob:
             raise ValueError("--noise-sd goes with --lam (both fixed, e.g. from a fit summary)")
         if self.lam is not None and self.sigma is None and self.noise_sd is None:
             raise ValueError("--lam needs --noise-sd when the layout has no 'sigma' column")
+        if not (np.isfinite(self.handover_tol) and 0 < self.handover_tol < 1):
+            raise ValueError(f"The 'handover_tol' parameter of batch must be a float in the "
+                             f"range (0, 1). Got {self.handover_tol!r} instead.")
+        if self.warmup is not None and not (isinstance(self.warmup, (int, np.integer))
+                                            and self.warmup >= 1):
+            raise ValueError(f"The 'warmup' parameter of batch must be an int >= 1 or None. "
+                             f"Got {self.warmup!r} instead.")
         if self.parallel_in_time and not self.assimilate:
             object.__setattr__(self, "parallel_in_time", False)
         if self.parallel_in_time and self.max_transient is not None:

@@ -145,7 +145,7 @@ class _Handovers:
         return ok
 
     def summary(self):
-        """The summary.json entry."""
+        """Return the summary.json entry."""
         return dict(self.rec)
 
 
