@@ -15,8 +15,8 @@ true state of the neighbour is known, the task's warm-up is compared with it at 
 the chunk is run again from the true state (always exact; counted). A chunk whose neighbour is
 already committed when it is submitted starts from the true state directly. ``B`` is
 :func:`~invert.stages.assimilate.handover.warmup_frames` of the time scale (or the job's
-``warmup``), doubled after a failed check; a chunk is not started early when ``B`` exceeds
-half its frames (the warm-up would cost more than it saves).
+``warmup``), extrapolated from the mismatch after a failed check; a chunk is not started
+early when ``B`` exceeds half its frames (the warm-up would cost more than it saves).
 
 What is done is recorded in the manifest exactly as for the sequential chain (the same files,
 the same counters), so ``--resume`` continues either way; the manifest's ``handover`` entry
