@@ -173,13 +173,17 @@ def build_parser():
     p.add_argument("--center", type=finite("--center"), nargs="+", metavar="C", default=None,
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
     p.add_argument("--domain", default="disk", choices=_domains(),
-                   help="region of the readings (default: disk); advice needs rim arcs, so a "
-                        "ball is refused with one line")
+                   help="region of the readings (default: disk); advice needs rim circles (a "
+                        "disk, or an annulus with --inner-radius), so a ball is refused with one "
+                        "line")
+    p.add_argument("--inner-radius", type=_positive("--inner-radius"), default=None,
+                   metavar="A", help="annulus: radius of the bore, 0 < A < --radius")
     p.add_argument("--count", type=int, default=5,
                    help="new sensors to choose (default: 5)")
     p.add_argument("--candidates", type=Path,
-                   help="POINTS.csv of candidate positions (default: every degree on the rim "
-                        "and rings at 1/4, 1/2, 3/4 of the radius)")
+                   help="POINTS.csv of candidate positions (default: every degree on each rim "
+                        "and rings 1/4, 1/2, 3/4 of the way from the centre, or the bore, to the "
+                        "outer rim)")
     p.add_argument("--query", type=Path,
                    help="POINTS.csv: reduce the variance at these points instead of over the disk")
     p.add_argument("--min-spacing", type=finite("--min-spacing", 0.0), default=None,
@@ -430,12 +434,14 @@ def _cmd_advise(args):
     if args.center is not None and len(args.center) != dim:
         raise ValueError(f"--center needs {dim} numbers for a {args.domain}, got "
                          f"{len(args.center)}")
+    shape = shape_options(domain_class(args.domain), args.domain, args.radius,
+                          inner_radius=args.inner_radius)
     readings = load_readings(args.readings, dim=dim, center=args.center, **_dialect(args))
     domain = workflow.make_domain(args.radius, args.center, kind=args.domain,
-                                  s=args.smoothness)
-    if getattr(domain, "rim_arcs", None) is None:
-        raise ValueError(f"advise needs a region with a rim circle (a disk); the {args.domain} "
-                         f"has none, so no sensor advice can be given")
+                                  s=args.smoothness, **shape)
+    if getattr(domain, "rim_circles", None) is None:
+        raise ValueError(f"advise needs a region with a rim circle (a disk or an annulus); the "
+                         f"{args.domain} has none, so no sensor advice can be given")
     problem = workflow.problem_from_readings(readings, domain)
     cand, query = points(args.candidates), points(args.query)
     with warnings.catch_warnings():
@@ -479,8 +485,9 @@ def _write_advice(args, adv, estimate, problem):
     if len(rframe):
         print(f"repair first: {rframe['sensor'][0]} (cuts it by {rframe['reduction'][0]:.3g})")
     r0 = cframe.iloc[0]
-    where = f"rim at {r0['theta_deg']:.1f} deg" if r0["position"] == "rim" else \
-        f"interior at ({r0['x']:.4g}, {r0['y']:.4g})"
+    where = f"{r0['position']} at ({r0['x']:.4g}, {r0['y']:.4g})"
+    if np.isfinite(r0["theta_deg"]):  # on a rim: its angle says where
+        where = f"{r0['position']} at {r0['theta_deg']:.1f} deg"
     print(f"best new sensor: {where} (cuts it by {r0['reduction']:.3g})")
     print(f"written to {args.out}/ (candidates.csv, repair.csv, advice.json)")
 
