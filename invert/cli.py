@@ -214,13 +214,20 @@ def _add_batch_parser(sub):
                    help="database LOG: only frames with time >= TIME")
     p.add_argument("--to", dest="time_to", default=None, metavar="TIME",
                    help="database LOG: only frames with time < TIME")
-    p.add_argument("--layout", type=Path, required=True, help="LAYOUT.csv: sensor,x,y[,sigma]")
+    p.add_argument("--layout", type=Path, required=True,
+                   help="LAYOUT.csv: sensor,x,y[,sigma] (or sensor,r,theta_deg[,sigma])")
     p.add_argument("--radius", type=_positive("--radius"), required=True,
                    help="radius of the region, in the unit of the x, y (z) columns")
+    p.add_argument("--domain", default="disk", choices=("disk", "annulus"),
+                   help="region: disk (default) or annulus (a wall between --inner-radius and "
+                        "--radius)")
+    p.add_argument("--inner-radius", type=_positive("--inner-radius"), default=None,
+                   metavar="A", help="annulus: radius of the bore, 0 < A < --radius")
     p.add_argument("--out", type=Path, required=True, help="output folder")
     p.add_argument("--center", type=finite("--center"), nargs=2, metavar=("X", "Y"), default=None,
                    help="centre of the disk (default: 0 0)")
-    p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] (default: the centre)")
+    p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] (default: the centre; "
+                                              "on an annulus mid-wall at 0 and 180 degrees)")
     p.add_argument("--assimilate", action="store_true",
                    help="Kalman filter + RTS smoother over time instead of per-frame fits")
     p.add_argument("--engine", default="local", choices=["local", "dask"],
@@ -503,8 +510,11 @@ def _scheduler_timeout(args):
 
 def _cmd_batch(args):
     from .batch.runner import run_batch
+    from .geometry import domain_class
 
     check_batch_args(args)
+    shape = shape_options(domain_class(args.domain), args.domain, args.radius,
+                          inner_radius=args.inner_radius)
     fresh = not args.out.exists()
     with _scheduler_timeout(args), no_work_left_on_bad_input(args, fresh):
         summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
@@ -517,7 +527,8 @@ def _cmd_batch(args):
                             max_transient=args.max_transient or None,
                             time_format=args.time_format, table=args.table,
                             out_table=args.out_table, time_from=args.time_from,
-                            time_to=args.time_to, unit=args.unit)
+                            time_to=args.time_to, unit=args.unit, kind=args.domain,
+                            **shape)
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]
