@@ -25,7 +25,8 @@ from .plots import (
     save_figure,
 )
 
-__all__ = ["write_figures_annulus", "plot_rim_profiles", "plot_wall_maps", "plot_rim_flux"]
+__all__ = ["write_figures_annulus", "plot_rim_profiles", "plot_wall_maps", "plot_rim_flux",
+           "plot_rim_depth"]
 
 #: Relative distance (of the outer radius) within which a sensor is drawn on a rim's profile.
 ON_RIM = 1e-3
@@ -139,6 +140,62 @@ def write_figures_annulus(out_dir, estimate, problem, readings=None, level=0.9, 
     figs.append((save_figure(plt, fig, out / "rim_flux.png"),
                  f"Radially outward flux density -k du/dr on each rim with its {lvl} interval "
                  "(rim_flux.csv); its integral over either circle is the net heat flow."))
+    if diagnostics is not None and diagnostics.radial is not None:
+        fig = plt.figure(figsize=(12, 3.6), layout="constrained")
+        plot_rim_depth(fig, estimate, diagnostics, unit)
+        figs.append((save_figure(plt, fig, out / "rim_depth.png"),
+                     "Depth of information from each rim: how a rim's harmonic of degree n fades "
+                     "across the wall (solid: from the outer rim, dashed: from the inner rim), "
+                     "the posterior-to-prior variance ratio of each rim function's harmonics "
+                     "(near 0: fixed by the data, near 1: prior only), and the posterior sd "
+                     "against the radius."))
     check = None if diagnostics is None else diagnostics.check
     figs += check_and_trace_figures(plt, out, estimate, check)
     return figs
+
+
+def plot_rim_depth(fig, estimate, diagnostics, unit=""):
+    """Attenuation from each rim, variance ratio per rim and degree, posterior sd by radius."""
+    d = estimate.domain
+    circles = d.rim_circles
+    axes = fig.subplots(1, 3)
+    rho = np.linspace(d.inner_relative_radius, 1.0, 201)
+    ax = axes[0]
+    for n, colour in zip((1, 2, 4, 8), ("C0", "C1", "C2", "C3"), strict=True):
+        for k, style in ((0, "-"), (1, "--")):
+            ax.plot(rho, circles.attenuation(k, rho, [n])[:, 0], style, color=colour,
+                    label=f"n = {n}" if k == 0 else None)
+    ax.set_xlabel("relative radius r/b")
+    ax.set_ylabel("rim harmonic n (solid: outer, dashed: inner)")
+    ax.set_title("fading across the wall", fontsize=10)
+    ax.legend(fontsize=7)
+    ax = axes[1]
+    rims = diagnostics.rims
+    if rims is not None and rims.variance_ratio is not None:
+        top = 0
+        for k, name in enumerate(rims.names):
+            ratio = rims.variance_ratio[name]
+            low = np.flatnonzero(ratio > 0.98)
+            top = max(top, int(min(len(ratio) - 1, max(12, 2 * low[0] if low.size else 0))))
+        for k, name in enumerate(rims.names):
+            ratio = rims.variance_ratio[name][: top + 1]
+            ax.plot(np.arange(ratio.size), ratio, "o-" if k == 0 else "s--", ms=3,
+                    label=f"{name} rim")
+        ax.axhline(0.5, color="grey", lw=0.7, ls=":")
+        ax.set_ylim(0, 1.05)
+        ax.set_xlabel("harmonic degree n")
+        ax.set_ylabel("posterior / prior variance")
+        dof = diagnostics.resolution.effective_dof
+        ax.set_title(f"per rim and degree (effective dof {dof:.1f})", fontsize=10)
+        ax.legend(fontsize=7)
+    else:
+        ax.set_axis_off()
+        ax.text(0.5, 0.5, "no prior recorded:\nresolution not available", ha="center")
+    ax = axes[2]
+    rp = diagnostics.radial
+    ax.fill_between(rp.rho, rp.min_sd, rp.max_sd, color=BAND, label="range over angle")
+    ax.plot(rp.rho, rp.rms_sd, color=LINE, label="rms over angle")
+    ax.set_xlabel("relative radius r/b (bore to outer rim)")
+    ax.set_ylabel(axis_label("posterior sd", unit, VALUE))
+    ax.set_title("posterior sd across the wall", fontsize=10)
+    ax.legend(fontsize=7)
