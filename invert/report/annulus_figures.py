@@ -48,13 +48,30 @@ def _profile(ax, frame, rim, label, ylabel):
     ax.set_ylabel(ylabel)
 
 
-def plot_rim_profiles(fig, estimate, problem, level=0.9, unit=""):
-    """Outer and inner rim profiles with their bands, the readings on each and failed sensors."""
+def _shade_arcs(ax, arcs, label):
+    # Unsensed arcs (radians, ccw, the end may pass 2 pi) as grey spans on a 0-360 deg axis.
+    first = True
+    for a, e in np.rad2deg(np.asarray(arcs, float).reshape(-1, 2)):
+        a = a % 360.0
+        e = a + (e - a if e - a <= 360.0 else 360.0)
+        for lo, hi in ((a, min(e, 360.0)), (0.0, e - 360.0)):
+            if hi > lo:
+                ax.axvspan(lo, hi, color="0.88", zorder=0, label=label if first else None)
+                first = False
+
+
+def plot_rim_profiles(fig, estimate, problem, level=0.9, unit="", arcs=None):
+    """Outer and inner rim profiles with their bands, the readings on each and failed sensors.
+
+    ``arcs``: rim name -> unsensed arcs (radians), shaded grey (``RimDiagnostics.arcs``).
+    """
     domain = estimate.domain
     b = estimate.boundary(720, level)
     axes = fig.subplots(2, 1, sharex=True)
     lvl = f"{round(level * 100):g} % interval"
     for ax, rim in zip(axes, ("outer", "inner"), strict=True):
+        if arcs is not None and len(arcs.get(rim, ())):
+            _shade_arcs(ax, arcs[rim], "unsensed arc")
         _profile(ax, b, rim, lvl, axis_label(f"value on the {rim} rim", unit, VALUE))
         on, deg = _on(domain, problem.points, rim)
         err = None if problem.sigma is None else problem.sigma[on]
@@ -66,7 +83,8 @@ def plot_rim_profiles(fig, estimate, problem, level=0.9, unit=""):
             ax.plot(gdeg[gon], np.full(int(gon.sum()), part["lower"].min()), "x", color=WARN,
                     mew=1.5, label="sensor without reading")
         ax.set_title(f"{rim} rim", fontsize=10)
-        ax.legend(loc="best", fontsize=7)
+        # beside the axes: inside, a legend hides readings or failed sensors
+        ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=7)
     axes[1].set_xlabel("angle θ (degrees, counter-clockwise from +x)")
 
 
@@ -97,7 +115,13 @@ def plot_wall_maps(fig, estimate, problem, level=0.9, n=121, unit="", length_uni
         ax.set_title(title)
         ax.set_xlabel(axis_label("x", length_unit, LENGTH))
         ax.set_ylabel(axis_label("y", length_unit, LENGTH))
-    axes[1].legend(loc="lower right", fontsize=7)
+        # a margin so that markers on the outer rim are not cut by the axes
+        pad = 0.06 * domain.radius
+        cx, cy = domain.center
+        ax.set_xlim(cx - domain.radius - pad, cx + domain.radius + pad)
+        ax.set_ylim(cy - domain.radius - pad, cy + domain.radius + pad)
+    # below the maps: a legend inside would cover part of the wall
+    axes[1].legend(loc="upper center", bbox_to_anchor=(0.5, -0.14), ncol=2, fontsize=7)
 
 
 def plot_rim_flux(fig, frame, level=0.9, flux_unit=""):
@@ -125,16 +149,24 @@ def write_figures_annulus(out_dir, estimate, problem, readings=None, level=0.9, 
     lvl = f"{round(level * 100):g} %"
     figs = []
     fig = plt.figure(figsize=(9, 6), layout="constrained")
-    plot_rim_profiles(fig, estimate, problem, level, unit)
+    rims = None if diagnostics is None else diagnostics.rims
+    plot_rim_profiles(fig, estimate, problem, level, unit,
+                      arcs=None if rims is None else rims.arcs)
     figs.append((save_figure(plt, fig, out / "rim_profiles.png"),
                  f"Outer and inner rim profiles: estimate and {lvl} interval, readings on each "
-                 "rim with ± sigma bars, crosses: sensors without a reading."))
+                 "rim with ± sigma bars, crosses: sensors without a reading"
+                 + (", grey: arcs farther than half the rim's sensor spacing from its "
+                    "working sensors." if rims is not None else ".")))
     fig = plt.figure(figsize=(10.5, 4.4), layout="constrained")
     plot_wall_maps(fig, estimate, problem, level, unit=unit, length_unit=length_unit)
     figs.append((save_figure(plt, fig, out / "wall_maps.png"),
                  "Estimate and posterior sd across the wall (polar grid of field.csv)."))
-    flux_unit = "W/m^2 with lengths in m" if conductivity is not None else \
-        "per unit conductivity"
+    if conductivity is None:
+        flux_unit = "per unit conductivity"
+    elif length_unit == "m":
+        flux_unit = "W/m²"
+    else:  # k in W/m/K times a gradient per unit of the coordinates
+        flux_unit = f"W/m per {length_unit or 'unit of the radius'}"
     fig = plt.figure(figsize=(10.5, 3.6), layout="constrained")
     plot_rim_flux(fig, rim_flux_profile(estimate, conductivity, level, 360), level, flux_unit)
     figs.append((save_figure(plt, fig, out / "rim_flux.png"),
