@@ -63,6 +63,7 @@ from ..errors import DomainError
 from ..prior import truncation_degree
 from .base import PlanarPolar, RoundDomain
 from .rims import RimCircles
+from .wall_profiles import radial_profiles, wall_mean_square_blocks
 
 __all__ = ["Annulus", "radial_profiles"]
 
@@ -86,50 +87,6 @@ def _power_series(C, z):
         acc *= z
         acc += Cn
     return acc * z
-
-
-def radial_profiles(s, t, L, n_modes):
-    r"""Radial profiles :math:`\sinh(ns)/\sinh(nL)` and their derivatives in :math:`s`.
-
-    Parameters
-    ----------
-    s, t : ndarray of shape (m,)
-        :math:`s = \ln(r/a) \ge 0` and :math:`t = \ln(b/r) \ge 0` with :math:`s + t = L`.
-    L : float
-        :math:`\ln(b/a) > 0`.
-    n_modes : int
-
-    Returns
-    -------
-    value, slope : ndarray of shape (m, n_modes + 1)
-        ``value[:, n]`` is :math:`\sinh(ns)/\sinh(nL)` (:math:`s/L` at :math:`n = 0`) and
-        ``slope[:, n]`` its derivative in :math:`s`, :math:`n\cosh(ns)/\sinh(nL)`
-        (:math:`1/L` at :math:`n = 0`).
-
-    Notes
-    -----
-    :math:`\sinh(ns)/\sinh(nL) = e^{-nt}\,\operatorname{expm1}(-2ns)/\operatorname{expm1}(-2nL)`
-    and :math:`n\cosh(ns)/\sinh(nL) = n e^{-nt}(1 + e^{-2ns})/(-\operatorname{expm1}(-2nL))`:
-    no factor exceeds 1 in size except the slope's, which is at most :math:`\approx n/\tanh
-    nL`.
-
-    Examples
-    --------
-    >>> v, d = radial_profiles(np.array([0.0, 0.5, 1.0]), np.array([1.0, 0.5, 0.0]), 1.0, 1)
-    >>> v.round(6).tolist()
-    [[0.0, 0.0], [0.5, 0.443409], [1.0, 1.0]]
-    """
-    s = np.asarray(s, float)[:, None]
-    t = np.asarray(t, float)[:, None]
-    n = np.arange(1, int(n_modes) + 1, dtype=float)[None, :]
-    den = np.expm1(-2.0 * n * L)
-    decay = np.exp(-n * t)
-    value = np.empty((s.shape[0], n.shape[1] + 1))
-    slope = np.empty_like(value)
-    value[:, :1], slope[:, :1] = s / L, 1.0 / L
-    value[:, 1:] = decay * np.expm1(-2.0 * n * s) / den
-    slope[:, 1:] = -n * decay * (1.0 + np.exp(-2.0 * n * s)) / den
-    return value, slope
 
 
 @dataclass(frozen=True)
@@ -278,26 +235,11 @@ class Annulus(PlanarPolar, RoundDomain):
     def region_mean_square(self) -> np.ndarray:
         r"""Matrix :math:`M = \frac{1}{\pi(b^2-a^2)}\int_\text{wall} h h^\top dA` (not diagonal).
 
-        Notes
-        -----
-        Over angle the columns of different degree or trigonometric factor are orthogonal; the
-        outer and inner columns of one degree and factor share the angular factor, so :math:`M`
-        has 2 x 2 blocks :math:`\frac{c_n}{\pi(1-\alpha^2)}\int_\alpha^1 p\,q\,\rho\,d\rho`
-        with :math:`p, q \in \{f_n, g_n\}`, :math:`c_0 = 2\pi`, :math:`c_n = \pi`. The radial
-        integrals are taken in :math:`s = \ln(r/a)` (:math:`\rho\,d\rho = \alpha^2 e^{2s} ds`)
-        by 2000-point Gauss–Legendre quadrature: the steepest profile,
-        :math:`e^{-n(L-s)}`, has :math:`nL \le 900` for :math:`N \le 128`,
-        :math:`a/b \ge 10^{-3}`, well inside what 2000 nodes integrate to rounding.
+        The outer and inner columns of one degree and trigonometric factor share their angular
+        factor, so :math:`M` has 2 x 2 blocks (:func:`wall_mean_square_blocks`); columns of
+        different degree or factor are orthogonal over angle.
         """
-        L, alpha, N = self.log_ratio, self.alpha, self.n_modes
-        x, w = np.polynomial.legendre.leggauss(2000)
-        s = 0.5 * L * (x + 1.0)
-        w = 0.5 * L * w * alpha**2 * np.exp(2.0 * s)
-        fo, _ = radial_profiles(s, L - s, L, N)
-        fi, _ = radial_profiles(L - s, s, L, N)
-        scale = np.where(np.arange(N + 1) == 0, 2.0, 1.0) / (1.0 - alpha**2)
-        oo, oi, ii = (scale * ((p * q) * w[:, None]).sum(axis=0)
-                      for p, q in ((fo, fo), (fo, fi), (fi, fi)))
+        oo, oi, ii = wall_mean_square_blocks(self.alpha, self.log_ratio, self.n_modes)
         deg, inner = self.degrees, self.inner_columns
         k = np.arange(self.n_coef)
         same = (deg[:, None] == deg[None, :]) & (self.sine_columns[:, None] ==
