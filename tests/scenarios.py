@@ -48,3 +48,38 @@ def write_ring_layout(path, n_sensors):
     path.write_text("sensor,x,y\n" + "".join(f"s{i},{np.cos(t):.12f},{np.sin(t):.12f}\n"
                                              for i, t in enumerate(th)))
     return path
+
+
+def annulus_laplace_fd(a, b, fo, fi, n_r, n_t):
+    """Finite-difference Laplace solve on the annulus a <= r <= b (rim functions fo, fi)."""
+    # Second-order finite differences of Laplace's equation in polar coordinates,
+    # u_rr + u_r / r + u_tt / r^2 = 0, on n_r radii from a to b (Dirichlet values fi, fo at the
+    # ends) and n_t periodic angles; one sparse solve (scipy.sparse.linalg.spsolve).
+    r = np.linspace(a, b, n_r)
+    t = 2 * np.pi * np.arange(n_t) / n_t
+    hr, ht = r[1] - r[0], t[1] - t[0]
+    m = n_r - 2
+    idx = np.arange(m * n_t).reshape(m, n_t)
+    rows, cols, vals = [], [], []
+    rhs = np.zeros(m * n_t)
+    for i in range(m):
+        ri = r[i + 1]
+        lo, hi = 1 / hr**2 - 1 / (2 * ri * hr), 1 / hr**2 + 1 / (2 * ri * hr)
+        ang = 1 / (ri * ht) ** 2
+        for j in range(n_t):
+            k = idx[i, j]
+            rows += [k, k, k]
+            cols += [k, idx[i, (j + 1) % n_t], idx[i, (j - 1) % n_t]]
+            vals += [-2 / hr**2 - 2 * ang, ang, ang]
+            for nb, coef, edge in ((i - 1, lo, fi(t[j])), (i + 1, hi, fo(t[j]))):
+                if 0 <= nb < m:
+                    rows.append(k)
+                    cols.append(idx[nb, j])
+                    vals.append(coef)
+                else:
+                    rhs[k] -= coef * edge
+    from scipy import sparse
+    from scipy.sparse.linalg import spsolve
+
+    A = sparse.csr_matrix((vals, (rows, cols)), shape=(m * n_t, m * n_t))
+    return r[1:-1], t, spsolve(A, rhs).reshape(m, n_t)

@@ -121,7 +121,9 @@ class BatchJob:
     def options(self):
         """Return the settings a resumed run must share (JSON-serialisable)."""
         dom = self.domain
+        shape = {k: getattr(dom, k) for k in getattr(dom, "shape_parameters", ())}
         return {
+            **({"shape": shape} if shape else {}),
             "layout": self.layout_digest, "query": self.query_digest,
             "radius": dom.radius, "center": list(dom.center), "n_modes": dom.n_modes,
             "s": self.s, "lam": self.lam, "noise_sd": self.noise_sd,

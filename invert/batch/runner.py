@@ -4,7 +4,8 @@ r"""Reanalysis of logged frames: per-frame inversion or Kalman smoothing, resuma
 ``frames.<fmt>`` (``time, frame, status, reason, n_used, centre_mean, centre_sd, chi2``) and
 writes ``query.<fmt>`` (``time, label, mean, sd, lower, upper``) for the frames with an
 estimate. ``frame`` is the record number in the log; ``centre_mean``/``centre_sd`` are the mean
-level :math:`a_0` (the value at the centre); ``chi2`` is the whitened residual sum of squares of
+level :math:`a_0` (the value at the centre; on an annulus coefficient 0, the outer rim's mean
+level ``o_a0``); ``chi2`` is the whitened residual sum of squares of
 the frame's fit (static) or its normalised innovation squared :math:`v^\top S^{-1}v`
 (assimilation).
 
@@ -66,7 +67,7 @@ def _digest(path):
 
 
 def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n_modes=None,
-                   **settings):
+                   kind="disk", inner_radius=None, **settings):
     """Load the layout and query points, make the domain, and describe the job.
 
     Parameters
@@ -74,11 +75,16 @@ def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n
     layout : str or Path
         LAYOUT.csv: ``sensor,x,y[,sigma]``.
     query : str or Path, optional
-        POINTS.csv; default the centre of the disk (label ``centre``).
+        POINTS.csv; default the domain's reference points (the centre of a disk, label
+        ``centre``; mid-wall at 0 and 180 degrees on an annulus).
     radius : float
     center : (float, float), optional
     smoothness : float, default=2.0
     n_modes : int, optional
+    kind : str, default="disk"
+        A name in :data:`invert.geometry.DOMAINS` (``"annulus"`` with ``inner_radius``).
+    inner_radius : float, optional
+        The bore of an annulus.
     **settings
         The other fields of :class:`~invert.batch.job.BatchJob` (``out`` is required).
 
@@ -93,14 +99,17 @@ def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n
     """
     from ..workflow import make_domain
 
-    sensors, points, sigma, rows = load_layout(layout)
-    domain = make_domain(radius, center, s=smoothness, n_modes=n_modes)
+    sensors, points, sigma, rows = load_layout(layout, center=center)
+    shape = {} if inner_radius is None else {"inner_radius": inner_radius}
+    domain = make_domain(radius, center, kind=kind, s=smoothness, n_modes=n_modes, **shape)
     check_inside(domain, points, rows, Path(layout).name)
     if query is not None:
         qpts, qlabels, qrows = load_points(query)
         check_inside(domain, qpts, qrows, Path(query).name)
     else:
-        qpts, qlabels = np.array([list(domain.center)]), np.array(["centre"])
+        ref = domain.reference_points()
+        qpts = np.array([np.asarray(p, float) for _, p in ref])
+        qlabels = np.array([name for name, _ in ref])
     return BatchJob(domain, sensors, points, sigma, qpts, qlabels, s=smoothness,
                     layout_digest=_digest(layout), query_digest=_digest(query), **settings)
 
@@ -111,7 +120,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
               ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
               table=None, time_from=None, time_to=None, unit=None, out_table=None,
-              on_chunk=None, say=print, log_options=None):
+              on_chunk=None, say=print, log_options=None, kind="disk", inner_radius=None):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -176,6 +185,10 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         Unused; kept for callers.
     log_options : dict, optional
         Passed to :func:`~invert.io.logs.open_log` (``sep``, ``decimal`` of a CSV log).
+    kind : str, default="disk"
+        Domain name (``"annulus"``: a wall, with ``inner_radius``).
+    inner_radius : float, optional
+        The bore of an annulus.
 
     Returns
     -------
@@ -197,7 +210,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           calibration_frames=calibration_frames, assimilate=assimilate,
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time,
-                          time_format=time_format, unit=unit)
+                          time_format=time_format, unit=unit, kind=kind,
+                          inner_radius=inner_radius)
     if out_table is not None and not is_database_url(log):
         raise InputError(str(log), "--out-table writes into the log's database: give a "
                                    "database log (sqlite:///FILE or postgresql://...)")

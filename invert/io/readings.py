@@ -255,13 +255,18 @@ def _from_cells(header, rows, numbers, source, dim, center=None, *, decimal=".",
     return Readings(points, value, sigma, sensor.astype(str), source, numbers, tuple(notes))
 
 
-def _read_with_columns(path, required, dim, sep=None, decimal=None):
-    """Read a table that must have rows and the columns ``required`` plus the axes."""
+def _read_with_columns(path, required, dim, sep=None, decimal=None, polar=False):
+    """Read a table that must have rows and the columns ``required`` plus the axes.
+
+    With ``polar`` a plane table may give ``r,theta_deg`` instead of ``x,y``.
+    """
     source = Path(path).name
     header, rows, numbers, dialect = read_table(path, source=source, sep=sep, decimal=decimal)
     if not rows:
         raise InputError(source, "has a header but no rows")
     axes = ["x", "y", "z"][:dim]
+    if polar and dim == 2 and "r" in header and "theta_deg" in header:
+        axes = []
     missing = [a for a in [*required, *axes] if a not in header]
     if missing:
         raise InputError(source, f"missing required column(s) {', '.join(missing)}; "
@@ -288,8 +293,11 @@ def load_points(path, *, dim=2, sep=None, decimal=None):
     return pts, labels, t.numbers
 
 
-def load_layout(path, *, dim=2, sep=None, decimal=None):
-    """Load LAYOUT.csv: ``sensor,x,y[,z][,sigma]``.
+def load_layout(path, *, dim=2, sep=None, decimal=None, center=None):
+    """Load LAYOUT.csv: ``sensor,x,y[,z][,sigma]`` (a plane layout may give ``r,theta_deg``).
+
+    ``r,theta_deg`` are relative to ``center`` (default the origin); given with ``x,y`` they
+    must agree, as for readings.
 
     Returns
     -------
@@ -298,7 +306,7 @@ def load_layout(path, *, dim=2, sep=None, decimal=None):
     sigma : ndarray or None
     rows : ndarray of int
     """
-    t, axes = _read_with_columns(path, ["sensor"], dim, sep, decimal)
+    t, _ = _read_with_columns(path, ["sensor"], dim, sep, decimal, polar=True)
     source, numbers = t.source, t.numbers
     sensor = t.text("sensor")
     blank = np.flatnonzero(sensor == "")
@@ -310,7 +318,13 @@ def load_layout(path, *, dim=2, sep=None, decimal=None):
             raise InputError(source, f"sensor '{sid}' is listed twice (first at row {seen[sid]})",
                              row=int(numbers[i]), column="sensor")
         seen[sid] = int(numbers[i])
-    pts = np.column_stack([t.column(a) for a in axes])
+    axes = ["x", "y", "z"][:dim]
+    if all(a in t for a in axes):
+        pts = np.column_stack([t.column(a) for a in axes])
+        if dim == 2 and "r" in t and "theta_deg" in t:
+            check_polar_agrees(pts, _polar(t, center), numbers, source)
+    else:
+        pts = _polar(t, center)
     sigma = None
     if "sigma" in t:
         sigma = t.column("sigma")
