@@ -45,6 +45,7 @@ from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publ
 from ..io.readings import check_inside, load_layout, load_points
 from ..io.sql import is_database_url
 from ..io.writers import write_json
+from ..problem import interval_z
 from ..progress import progress
 from ..report.batch_report import write_batch_report
 from ..report.files import CAUTIONS, to_jsonable
@@ -111,7 +112,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
               ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
               table=None, time_from=None, time_to=None, unit=None, out_table=None,
-              on_chunk=None, say=print, log_options=None):
+              on_chunk=None, say=print, log_options=None, sensor_health=False, offset_sd=None,
+              offset_rate=None, health_block="1000"):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -176,6 +178,14 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         Unused; kept for callers.
     log_options : dict, optional
         Passed to :func:`~invert.io.logs.open_log` (``sep``, ``decimal`` of a CSV log).
+    sensor_health : bool, default=False
+        Assimilation with per-sensor offsets and faulty readings down-weighted; also writes
+        sensors.<fmt> and spikes.<fmt> (:mod:`invert.batch.health_tables`).
+    offset_sd, offset_rate : float, optional
+        Prior sd of an offset and sd of its change over one time scale (default 10 and 3
+        median noise sds).
+    health_block : str, default="1000"
+        Blocks of the sensors table: a record count, or a duration (``30min``, ``2h``).
 
     Returns
     -------
@@ -197,7 +207,9 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           calibration_frames=calibration_frames, assimilate=assimilate,
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time,
-                          time_format=time_format, unit=unit)
+                          time_format=time_format, unit=unit, sensor_health=sensor_health,
+                          offset_sd=offset_sd, offset_rate=offset_rate,
+                          health_block=health_block)
     if out_table is not None and not is_database_url(log):
         raise InputError(str(log), "--out-table writes into the log's database: give a "
                                    "database log (sqlite:///FILE or postgresql://...)")
@@ -272,6 +284,8 @@ def _run_locked(job, source, engine, lock, on_chunk):
     try:
         merge_outputs(work, work.manifest["n_chunks"], stage, job.table_fmt,
                       source.time_kind or "number")
+        if job.sensor_health:
+            extra = _merge_health(job, source, work, stage, extra)
         summary = _summary(job, source, engine, work, hyper, extra,
                            _time.perf_counter() - t_start, lock.note)
         if job.fmt == "netcdf":
@@ -290,6 +304,16 @@ def _run_locked(job, source, engine, lock, on_chunk):
     return summary
 
 
+def _merge_health(job, source, work, stage, extra):
+    from .health_tables import merge_health
+
+    health, warnings = merge_health(work, work.manifest["n_chunks"], stage, job.table_fmt,
+                                    sensors=list(job.sensors), z=interval_z(job.level),
+                                    kind=work.manifest.get("time_kind") or "number",
+                                    settings=work.manifest.get("health", {}))
+    return {**extra, "sensor_health": health, "health_warnings": warnings}
+
+
 def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
     counts = work.manifest["counts"]
     missing = source.missing_sensors
@@ -298,6 +322,8 @@ def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
     warnings += _keep_log_warnings(work.manifest, source)
     if note:
         warnings.append(note)
+    extra = dict(extra)
+    warnings += extra.pop("health_warnings", [])
     where = {"scheduler": engine.address} if getattr(engine, "address", None) else {}
     summary = {
         "command": "batch",
