@@ -101,12 +101,20 @@ def health_log(rng, *, n_frames=3000, n_rim=24, sigma=0.05, tau=0.05, time_scale
             "offset": off, "spike": spike, "step_frame": step, "model": model}
 
 
-def write_health_log(folder, log):
-    """Write ``log`` (from :func:`health_log`) as ``log.csv`` and ``layout.csv`` in ``folder``."""
+#: Sensors a seeded health log marks trusted (none of them faulty).
+HEALTH_TRUSTED = ("s00", "s06", "s12", "p0", "p1")
+
+
+def write_health_log(folder, log, *, trusted=False):
+    """Write ``log`` (from :func:`health_log`) as ``log.csv`` and ``layout.csv`` in ``folder``;
+    with ``trusted`` the layout marks :data:`HEALTH_TRUSTED` in a ``trusted`` column."""
     import pandas as pd
 
-    pd.DataFrame({"sensor": log["ids"], "x": log["points"][:, 0],
-                  "y": log["points"][:, 1]}).to_csv(folder / "layout.csv", index=False)
+    lay = pd.DataFrame({"sensor": log["ids"], "x": log["points"][:, 0],
+                        "y": log["points"][:, 1]})
+    if trusted:
+        lay["trusted"] = [int(i in HEALTH_TRUSTED) for i in log["ids"]]
+    lay.to_csv(folder / "layout.csv", index=False)
     frame = pd.DataFrame(log["Y"], columns=log["ids"])
     frame.insert(0, "time", log["t"])
     frame.to_csv(folder / "log.csv", index=False, float_format="%.10g")

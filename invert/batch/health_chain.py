@@ -139,7 +139,7 @@ def _block_sums(block, t, om, ov, flagged):
             "spikes": np.add.reduceat(flagged.astype(np.int64), starts, axis=0)}
 
 
-def backward_task(kmodel, n_coef, block, part, back, info, Hq, labels, z, kind):
+def backward_task(kmodel, n_coef, block, trusted, part, back, info, Hq, labels, z, kind):
     """Smooth one chunk (an engine task): ``(back, (frames, sensors part, spikes part), query)``.
 
     ``Hq`` is the chain's query design over the ``n_coef`` field coefficients (first row: the
@@ -148,7 +148,7 @@ def backward_task(kmodel, n_coef, block, part, back, info, Hq, labels, z, kind):
     ns = kmodel.H.shape[0]
     nq = Hq.shape[0]
     rows = np.vstack([np.hstack([Hq, np.zeros((nq, kmodel.n_coef - n_coef))]),
-                      offset_rows(n_coef, ns)])
+                      offset_rows(n_coef, ns, trusted)])
     back, _, qm, qs, _, _ = smooth_chunk(kmodel, part["cp"], back, part["t"], part["Y"], rows)
     ftab, qtab = chunk_tables_from(info, qm[:, 0], qs[:, 0], part["nis"], part["n_used"],
                                    qm[:, 1:nq], qs[:, 1:nq], labels, z, kind)
@@ -162,11 +162,11 @@ def backward_task(kmodel, n_coef, block, part, back, info, Hq, labels, z, kind):
     return back, (ftab, sens, spk), qtab
 
 
-def health_steps(model, settings, block):
+def health_steps(model, settings, block, trusted=None):
     """Return the chain steps of the health model on ``model`` (a ``CoefficientDynamics``)."""
-    kmodel = augment(model, settings)
+    kmodel = augment(model, settings, trusted)
     return ChainSteps(partial(forward_task, kmodel),
-                      partial(backward_task, kmodel, model.n_coef, block),
+                      partial(backward_task, kmodel, model.n_coef, block, trusted),
                       FilterCarry.initial(kmodel), BackwardCarry.final(kmodel),
                       lambda carry: carry.loglik, KERNEL_CLASSES, "h")
 
@@ -197,5 +197,15 @@ def health_chunks(job, source, engine, work, model):
         "block": block.describe(),
         "references": ["Simon 2006 (bias states)", "Ting, Theodorou & Schaal 2007 (weighted "
                        "update)", "Agamennoni, Nieto & Nebot 2012 (good/faulty weights)"]}
-    steps = health_steps(model, settings, block)
+    trusted = job.trusted
+    if trusted is not None and trusted.any():
+        work.manifest["health"]["reference"] = (
+            f"anchored: the {int(trusted.sum())} sensor(s) marked trusted in the layout "
+            f"({', '.join(str(s) for s in np.asarray(job.sensors)[trusted])}) have no offset")
+    else:
+        work.manifest["health"]["reference"] = (
+            "zero sum: offsets sum to zero over the sensors of the layout (an offset common to "
+            "every sensor is the mean level), each relative to the average of all sensors; "
+            "a sensor's offset d biases the field's mean level by d / n_sensors")
+    steps = health_steps(model, settings, block, trusted)
     return (yield from run_chain(job, source, engine, HealthWork(work), steps, model.n_coef))

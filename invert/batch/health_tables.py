@@ -10,10 +10,11 @@ chunks' parts (blocks that straddle two chunks are summed together):
   conservative for the block average;
 - ``spikes``: readings of the block with fault probability above 0.5;
 - ``flag``: the interval lies away from zero by at least ``FLAG_MARGIN`` sds beyond its
-  half-width, :math:`|m| \ge (z + \text{FLAG\_MARGIN})\,sd`.
+  half-width, :math:`|m| \ge (z + \text{FLAG\_MARGIN})\,sd` (never for a trusted sensor,
+  whose offset is 0 with sd 0).
 
-Offsets are relative to the average of all sensors (they sum to zero, see
-:mod:`invert.stages.assimilate.health`).
+Offsets are relative to the sensors marked trusted in the layout, else to the average of
+all sensors (they sum to zero), see :mod:`invert.stages.assimilate.health`.
 """
 
 from __future__ import annotations
@@ -25,15 +26,10 @@ from ..io.writers import write_table
 from .health_chain import SPIKE_PROBABILITY, health_part
 from .tables import time_array
 
-__all__ = ["FLAG_MARGIN", "merge_health", "IDENTIFIABILITY"]
+__all__ = ["FLAG_MARGIN", "merge_health"]
 
 #: Sds beyond the interval's half-width by which a flagged offset's interval clears zero.
 FLAG_MARGIN = 2.0
-
-#: What summary.json and the report say about the offsets' reference.
-IDENTIFIABILITY = ("offsets are constrained to sum to zero over the sensors of the layout (an "
-                   "offset common to every sensor is the mean level): each offset is relative "
-                   "to the average of all sensors")
 
 
 def _load_parts(work, n_chunks):
@@ -142,13 +138,13 @@ def merge_health(work, n_chunks, out, fmt, *, sensors, z, kind, settings):
     """
     sens, spk = _load_parts(work, n_chunks)
     _, t0, t1, n, mean, sd, spikes = _combine(sens, len(sensors))
-    flag = np.abs(mean) >= (z + FLAG_MARGIN) * sd
+    flag = (np.abs(mean) >= (z + FLAG_MARGIN) * sd) & (sd > 0)  # trusted sensors: sd 0
     write_table(_sensors_table(sensors, t0, t1, n, mean, sd, spikes, flag, z, kind),
                 out / f"sensors.{fmt}", fmt)
     write_table(_spikes_table(spk, sensors, kind), out / f"spikes.{fmt}", fmt)
     flagged, warnings = _flagged(sensors, t0, mean, sd, flag, kind)
     n_spikes = int(sum(len(s["p"]) for s in spk))
-    summary = {**settings, "identifiability": IDENTIFIABILITY,
+    summary = {**settings,
                "flag_rule": f"|offset_mean| >= (z + {FLAG_MARGIN:g}) offset_sd, z = {z:.4g}",
                "spike_rule": f"fault probability > {SPIKE_PROBABILITY:g}",
                "n_blocks": int(len(n)), "spikes": n_spikes, "flagged": flagged}

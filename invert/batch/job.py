@@ -77,6 +77,8 @@ class BatchJob:
         default 10 and 3 median noise sds (:mod:`invert.stages.assimilate.health`).
     health_block : str, default="1000"
         Blocks of the sensors table: a record count or a duration (``30min``, ``2h``).
+    trusted : ndarray of bool, shape (n_sensors,), optional
+        Sensors marked trusted in the layout (no offset; the reference of the others).
     """
 
     domain: object
@@ -108,6 +110,7 @@ class BatchJob:
     offset_sd: float | None = None
     offset_rate: float | None = None
     health_block: str = "1000"
+    trusted: np.ndarray | None = None
 
     def __post_init__(self):
         object.__setattr__(self, "level", check_level(self.level, where="batch"))

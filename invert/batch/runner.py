@@ -42,7 +42,7 @@ import numpy as np
 from ..errors import InputError
 from ..io.logs import open_log
 from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
-from ..io.readings import check_inside, load_layout, load_points
+from ..io.readings import check_inside, load_layout, load_points, load_trusted
 from ..io.sql import is_database_url
 from ..io.writers import write_json
 from ..problem import interval_z
@@ -95,6 +95,11 @@ def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n
     from ..workflow import make_domain
 
     sensors, points, sigma, rows = load_layout(layout)
+    if settings.get("sensor_health"):
+        settings["trusted"] = load_trusted(layout)
+        if settings["trusted"] is not None and settings["trusted"].all():
+            raise InputError(Path(layout).name, "every sensor is marked trusted: no offset is "
+                             "left to estimate (mark the suspect sensors 0)", column="trusted")
     domain = make_domain(radius, center, s=smoothness, n_modes=n_modes)
     check_inside(domain, points, rows, Path(layout).name)
     if query is not None:

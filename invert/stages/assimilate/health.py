@@ -3,14 +3,19 @@ r"""Sensor health: per-sensor offsets as random-walk states, and faulty readings
 Notes
 -----
 Offsets (bias states, Simon 2006, §7.1). Each sensor :math:`i` reads
-:math:`y_i = h_i^\top c + o_i + e_i`. An offset common to every sensor is the mean level
-:math:`a_0` (every design row has a 1 in that column), so the offsets are constrained to sum
-to zero over the sensors of the layout: :math:`o = B u` with :math:`B` an orthonormal basis
-of the vectors with zero sum (:func:`contrast_basis`, :math:`n \times (n-1)`), and the state
-becomes :math:`(c, u)`. An estimated offset is therefore the sensor's offset relative to the
-average of all sensors (a true offset :math:`\delta` on one of :math:`n` sensors appears as
-:math:`\delta(1 - 1/n)` there and :math:`-\delta/n` on the others; the mean level takes
-:math:`\delta/n`).
+:math:`y_i = h_i^\top c + o_i + e_i`, :math:`o = B u`, and the state becomes :math:`(c, u)`.
+An offset common to every sensor is the mean level :math:`a_0` (every design row has a 1 in
+that column), so the offsets need a reference (:func:`offset_basis`):
+
+- anchored (the layout marks some sensors ``trusted``): trusted sensors have no offset,
+  every other sensor its own, :math:`B = [e_i]_{i \text{ not trusted}}`; the trusted sensors
+  fix the mean level, and the field is not biased by the others' offsets;
+- zero sum (no sensor marked): :math:`B` an orthonormal basis of the vectors with zero sum
+  (:func:`contrast_basis`, :math:`n \times (n-1)`). An estimated offset is then the sensor's
+  offset relative to the average of all sensors: a true offset :math:`\delta` on one of
+  :math:`n` sensors appears as :math:`\delta(1 - 1/n)` there and :math:`-\delta/n` on the
+  others, and the field's mean level takes :math:`\delta/n` (a bias the field's intervals
+  do not include).
 
 Because :math:`B` is orthonormal, a prior :math:`u \sim N(0, \sigma_o^2 I)` gives
 :math:`o \sim N(0, \sigma_o^2 (I - \mathbf{1}\mathbf{1}^\top/n))`, and a random walk
@@ -58,7 +63,7 @@ from scipy.linalg import null_space
 
 from .kernel import KernelModel
 
-__all__ = ["HealthSettings", "contrast_basis", "augment", "offset_rows"]
+__all__ = ["HealthSettings", "contrast_basis", "offset_basis", "augment", "offset_rows"]
 
 #: Default prior probability that a reading is faulty.
 FAULT_PRIOR = 0.01
@@ -109,7 +114,36 @@ def contrast_basis(n):
     return null_space(np.ones((1, int(n))))
 
 
-def augment(model, settings=None):
+def offset_basis(n, trusted=None):
+    """The columns ``B`` of ``o = B u``: anchored to ``trusted`` sensors, else zero sum.
+
+    Parameters
+    ----------
+    n : int
+        Number of sensors.
+    trusted : ndarray of bool, shape (n,), optional
+        Sensors without an offset; None or none marked: the zero-sum basis.
+
+    Returns
+    -------
+    ndarray of shape (n, k)
+        Orthonormal columns (``k = n - 1`` for zero sum, the untrusted count when anchored).
+
+    Raises
+    ------
+    ValueError
+        When every sensor is trusted (no offset left to estimate).
+    """
+    if trusted is None or not np.any(trusted):
+        return contrast_basis(n)
+    trusted = np.asarray(trusted, bool)
+    if trusted.all():
+        raise ValueError("every sensor of the layout is marked trusted: no offset is left to "
+                         "estimate (mark the suspect sensors trusted=0)")
+    return np.eye(n)[:, ~trusted]
+
+
+def augment(model, settings=None, trusted=None):
     """The kernel model of the coefficients and the sensor offsets.
 
     Parameters
@@ -117,16 +151,21 @@ def augment(model, settings=None):
     model : CoefficientDynamics
         With its time scale set.
     settings : HealthSettings, optional
+    trusted : ndarray of bool, shape (n_sensors,), optional
+        Anchored offsets (see :func:`offset_basis`).
 
     Returns
     -------
     KernelModel
-        State ``(c, u)``: ``model.n_coef`` coefficients then ``n_sensors - 1`` offset
-        contrasts; mean-level columns those of ``model``.
+        State ``(c, u)``: ``model.n_coef`` coefficients then the offset columns of
+        :func:`offset_basis`; mean-level columns those of ``model``.
     """
     settings = HealthSettings() if settings is None else settings
+    if not 0.0 <= settings.fault_prior < 1.0:
+        raise ValueError(f"The 'fault_prior' parameter must be in [0, 1). Got "
+                         f"{settings.fault_prior!r} instead.")
     ns, p = model.H.shape
-    B = contrast_basis(ns)
+    B = offset_basis(ns, trusted)
     sd, rate = settings.resolved(model.noise_var)
     k = B.shape[1]
     km = KernelModel.build(np.hstack([model.H, B]), model.noise_var,
@@ -139,12 +178,13 @@ def augment(model, settings=None):
                        np.flatnonzero(model.random_walk))
 
 
-def offset_rows(n_coef, n_sensors):
+def offset_rows(n_coef, n_sensors, trusted=None):
     """Rows picking each sensor's offset ``o = B u`` out of the augmented state.
 
     Returns
     -------
-    ndarray of shape (n_sensors, n_coef + n_sensors - 1)
+    ndarray of shape (n_sensors, n_coef + k)
+        ``k`` columns of :func:`offset_basis` (a trusted sensor's row is zero).
     """
-    B = contrast_basis(n_sensors)
+    B = offset_basis(n_sensors, trusted)
     return np.hstack([np.zeros((n_sensors, n_coef)), B])
