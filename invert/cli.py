@@ -263,7 +263,7 @@ def _add_batch_parser(sub):
                         "readings (default: 10 noise sds)")
     p.add_argument("--offset-rate", type=_positive("--offset-rate"), default=None,
                    help="with --sensor-health: sd of an offset's change over one time scale "
-                        "of the dynamics (default: 3 noise sds)")
+                        "of the dynamics (default: 1 noise sd)")
     p.add_argument("--health-block", default=None, metavar="SIZE",
                    help="with --sensor-health: blocks of the sensors table, a record count "
                         "(default: 1000) or a duration such as 30min, 2h")

@@ -187,7 +187,7 @@ def health_chunks(job, source, engine, work, model):
     block = parse_block(job.health_block)
     sd, rate = settings.resolved(model.noise_var)
     how = "given" if job.offset_sd is not None else "default: 10 median noise sds"
-    how_rate = "given" if job.offset_rate is not None else "default: 3 median noise sds"
+    how_rate = "given" if job.offset_rate is not None else "default: 1 median noise sd"
     work.manifest["health"] = {
         "offset_sd": sd, "offset_sd_how": how, "offset_rate": rate,
         "offset_rate_how": how_rate,

@@ -74,7 +74,7 @@ class BatchJob:
         (:mod:`invert.batch.health_chain`; the exact kernel only).
     offset_sd, offset_rate : float, optional
         Prior sd of an offset and sd of its change over one time scale (readings' units);
-        default 10 and 3 median noise sds (:mod:`invert.stages.assimilate.health`).
+        default 10 and 1 median noise sds (:mod:`invert.stages.assimilate.health`).
     health_block : str, default="1000"
         Blocks of the sensors table: a record count or a duration (``30min``, ``2h``).
     trusted : ndarray of bool, shape (n_sensors,), optional

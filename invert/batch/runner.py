@@ -187,7 +187,7 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         Assimilation with per-sensor offsets and faulty readings down-weighted; also writes
         sensors.<fmt> and spikes.<fmt> (:mod:`invert.batch.health_tables`).
     offset_sd, offset_rate : float, optional
-        Prior sd of an offset and sd of its change over one time scale (default 10 and 3
+        Prior sd of an offset and sd of its change over one time scale (default 10 and 1
         median noise sds).
     health_block : str, default="1000"
         Blocks of the sensors table: a record count, or a duration (``30min``, ``2h``).

@@ -72,7 +72,7 @@ FAULT_SCALE = 30.0
 #: Default prior sd of an offset, in (median) noise sds.
 OFFSET_SD = 10.0
 #: Default sd of an offset's change over one time scale of the dynamics, in noise sds.
-OFFSET_RATE = 3.0
+OFFSET_RATE = 1.0
 
 
 @dataclass(frozen=True)
