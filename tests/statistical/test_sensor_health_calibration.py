@@ -47,7 +47,7 @@ def _field_hits(log, query):
     return (lo <= truth) & (truth <= hi)
 
 
-def test_seeded_faults_are_found(tmp_path):
+def test_seeded_faults_are_found(tmp_path, monkeypatch):
     # Step: flagged within one block (100 frames) of the change, on either side (the smoother
     # spreads a step over the frames around it). Drift: flagged before it reaches half its
     # final size (2.5 noise sds, frame 1500). No other sensor flagged. Spikes: >= 95 % of the
@@ -56,8 +56,9 @@ def test_seeded_faults_are_found(tmp_path):
     # 85-95 % (3 x 3000 frames per seed, strongly autocorrelated: the band is wide on purpose).
     # Offsets: block intervals cover the block-averaged truth in >= 90 % (they are
     # conservative by construction, health_tables docstring).
+    monkeypatch.setattr("invert.batch.runner.write_batch_report", lambda *a, **k: None)
     found = seeded = 0
-    hits, cover = [], []
+    hits, cover, n_false, since = [], [], 0, []
     for seed in (0, 1, 2):
         log, s, sens, spk, query = _run(tmp_path, seed, faults=True, trusted=True)
         flagged = {f["sensor"]: f["since"] for f in s["sensor_health"]["flagged"]}
@@ -69,6 +70,8 @@ def test_seeded_faults_are_found(tmp_path):
         found += int((listed & log["spike"]).sum())
         seeded += int(log["spike"].sum())
         false = listed & ~log["spike"]
+        n_false += int(false.sum())
+        since.append((flagged["s03"], flagged["s10"]))
         assert (false.sum(axis=0) <= 0.01 * (~log["spike"]).sum(axis=0)).all()
         assert false[:, 17].sum() <= max(1, 0.01 * listed[:, 17].sum())
         hits.append(_field_hits(log, query))
@@ -76,22 +79,27 @@ def test_seeded_faults_are_found(tmp_path):
             k = log["ids"].index(r["sensor"])
             a, b = int(r["time_start"]), int(r["time_end"]) + 1
             cover.append(r["offset_lower"] <= log["offset"][a:b, k].mean() <= r["offset_upper"])
-    assert found >= 0.95 * seeded, (found, seeded)
     rate = np.mean(hits)
+    print(f"spikes found {found} of {seeded}; false listings {n_false}; flagged from "
+          f"{since}; field coverage {rate:.4f}; offset block coverage {np.mean(cover):.4f}")
+    assert found >= 0.95 * seeded, (found, seeded)
     assert 0.85 <= rate <= 0.95, rate
     assert np.mean(cover) >= 0.90, np.mean(cover)
 
 
-def test_clean_logs_are_not_flagged(tmp_path):
-    # 20 clean logs (zero-sum offsets, the default reference): no sensor flagged in >= 95 %
-    # of the runs, i.e. at most 1 of 20; the field's pooled 90 % coverage within 85-95 %.
+def test_clean_logs_are_not_flagged(tmp_path, monkeypatch):
+    # 40 clean logs (zero-sum offsets, the default reference): no sensor flagged in >= 95 %
+    # of the runs, i.e. at most 2 of 40; the field's pooled 90 % coverage within 85-95 %.
+    # The report's figures (tested in tests/e2e) are skipped here to keep the runs short.
+    monkeypatch.setattr("invert.batch.runner.write_batch_report", lambda *a, **k: None)
     flagged_runs, hits = 0, []
-    for seed in range(100, 120):
-        log, s, _, _, query = _run(tmp_path, seed, faults=False, trusted=False, n_frames=800)
+    for seed in range(100, 140):
+        log, s, _, _, query = _run(tmp_path, seed, faults=False, trusted=False, n_frames=1500)
         flagged_runs += bool(s["sensor_health"]["flagged"])
         assert s["sensor_health"]["reference"].startswith("zero sum")
         hits.append(_field_hits(log, query))
-    assert flagged_runs <= 1, flagged_runs
+    print(f"clean runs flagged: {flagged_runs} of 40; field coverage {np.mean(hits):.4f}")
+    assert flagged_runs <= 2, flagged_runs
     assert 0.85 <= np.mean(hits) <= 0.95, np.mean(hits)
 
 
