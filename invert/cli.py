@@ -508,7 +508,7 @@ def _scheduler_timeout(args):
 
 
 def _health_options(args):
-    """The sensor-health arguments of run_batch (none without --sensor-health)."""
+    """Return the sensor-health arguments of run_batch (none without --sensor-health)."""
     if not args.sensor_health:
         return {}
     return {"sensor_health": True, "offset_sd": args.offset_sd,

@@ -177,8 +177,11 @@ def check_batch_args(args):
 
 
 def check_health_args(args):
-    """Refuse sensor-health options without --sensor-health, and --sensor-health without the
-    exact assimilation; read ``--health-block`` (a ValueError naming it)."""
+    """Refuse sensor-health options that do not fit the run.
+
+    Options of the health model without --sensor-health, and --sensor-health without the
+    exact assimilation, are refused; ``--health-block`` is read (a ValueError naming it).
+    """
     own = [o for o, v in (("--offset-sd", args.offset_sd), ("--offset-rate", args.offset_rate),
                           ("--health-block", args.health_block)) if v is not None]
     if own and not args.sensor_health:

@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-
 import scenarios
+
 from invert.batch.runner import run_batch
 from invert.cli import main
 from invert.stages.assimilate import health, kernel

@@ -14,8 +14,8 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
-
 import scenarios
+
 from invert.batch.runner import run_batch
 from invert.stages.assimilate import health, kernel
 from invert.stages.assimilate.dynamics import CoefficientDynamics

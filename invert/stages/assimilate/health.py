@@ -115,7 +115,7 @@ def contrast_basis(n):
 
 
 def offset_basis(n, trusted=None):
-    """The columns ``B`` of ``o = B u``: anchored to ``trusted`` sensors, else zero sum.
+    """Return the columns ``B`` of ``o = B u``: anchored to ``trusted`` sensors, else zero sum.
 
     Parameters
     ----------
@@ -144,7 +144,7 @@ def offset_basis(n, trusted=None):
 
 
 def augment(model, settings=None, trusted=None):
-    """The kernel model of the coefficients and the sensor offsets.
+    """Return the kernel model of the coefficients and the sensor offsets.
 
     Parameters
     ----------
