@@ -265,6 +265,19 @@ def _add_batch_parser(sub):
                         "frame (compiled); N > 0 = the steady-state shortcut: exact steps for up "
                         "to N frames after a change of drop-out pattern or time step, then the "
                         "cached steady-state gain")
+    p.add_argument("--sensor-health", action="store_true",
+                   help="assimilation: also estimate a slowly varying offset per sensor "
+                        "(offsets sum to zero over the sensors) and down-weight readings "
+                        "judged faulty; writes sensors.<fmt> and spikes.<fmt>")
+    p.add_argument("--offset-sd", type=_positive("--offset-sd"), default=None,
+                   help="with --sensor-health: prior sd of an offset, in the unit of the "
+                        "readings (default: 10 noise sds)")
+    p.add_argument("--offset-rate", type=_positive("--offset-rate"), default=None,
+                   help="with --sensor-health: sd of an offset's change over one time scale "
+                        "of the dynamics (default: 1 noise sd)")
+    p.add_argument("--health-block", default=None, metavar="SIZE",
+                   help="with --sensor-health: blocks of the sensors table, a record count "
+                        "(default: 1000) or a duration such as 30min, 2h")
 
 
 #: Default of --max-steps (mcmc only; None on the parser so that a stray one is seen).
@@ -508,6 +521,14 @@ def _scheduler_timeout(args):
     return dask.config.set({"distributed.comm.timeouts.connect": f"{SCHEDULER_TIMEOUT:g}s"})
 
 
+def _health_options(args):
+    """Return the sensor-health arguments of run_batch (none without --sensor-health)."""
+    if not args.sensor_health:
+        return {}
+    return {"sensor_health": True, "offset_sd": args.offset_sd,
+            "offset_rate": args.offset_rate, "health_block": args.health_block or "1000"}
+
+
 def _cmd_batch(args):
     from .batch.runner import run_batch
     from .geometry import domain_class
@@ -528,7 +549,7 @@ def _cmd_batch(args):
                             time_format=args.time_format, table=args.table,
                             out_table=args.out_table, time_from=args.time_from,
                             time_to=args.time_to, unit=args.unit, kind=args.domain,
-                            **shape)
+                            **shape, **_health_options(args))
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]

@@ -43,9 +43,10 @@ import numpy as np
 from ..errors import InputError
 from ..io.logs import open_log
 from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
-from ..io.readings import check_inside, load_layout, load_points
+from ..io.readings import check_inside, load_layout, load_points, load_trusted
 from ..io.sql import is_database_url
 from ..io.writers import write_json
+from ..problem import interval_z
 from ..progress import progress
 from ..report.batch_report import write_batch_report
 from ..report.files import CAUTIONS, to_jsonable
@@ -100,6 +101,11 @@ def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n
     from ..workflow import make_domain
 
     sensors, points, sigma, rows = load_layout(layout, center=center)
+    if settings.get("sensor_health"):
+        settings["trusted"] = load_trusted(layout)
+        if settings["trusted"] is not None and settings["trusted"].all():
+            raise InputError(Path(layout).name, "every sensor is marked trusted: no offset is "
+                             "left to estimate (mark the suspect sensors 0)", column="trusted")
     shape = {} if inner_radius is None else {"inner_radius": inner_radius}
     domain = make_domain(radius, center, kind=kind, s=smoothness, n_modes=n_modes, **shape)
     check_inside(domain, points, rows, Path(layout).name)
@@ -120,7 +126,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               chunk_rows=65536, steady_tol=1e-10, max_transient=None, calibration_frames=2000,
               ml_frames=20000, n_workers=2, parallel_in_time=False, time_format=None,
               table=None, time_from=None, time_to=None, unit=None, out_table=None,
-              on_chunk=None, say=print, log_options=None, kind="disk", inner_radius=None):
+              on_chunk=None, say=print, log_options=None, kind="disk", inner_radius=None,
+              sensor_health=False, offset_sd=None, offset_rate=None, health_block="1000"):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -189,6 +196,14 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         Domain name (``"annulus"``: a wall, with ``inner_radius``).
     inner_radius : float, optional
         The bore of an annulus.
+    sensor_health : bool, default=False
+        Assimilation with per-sensor offsets and faulty readings down-weighted; also writes
+        sensors.<fmt> and spikes.<fmt> (:mod:`invert.batch.health_tables`).
+    offset_sd, offset_rate : float, optional
+        Prior sd of an offset and sd of its change over one time scale (default 10 and 1
+        median noise sds).
+    health_block : str, default="1000"
+        Blocks of the sensors table: a record count, or a duration (``30min``, ``2h``).
 
     Returns
     -------
@@ -211,7 +226,9 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time,
                           time_format=time_format, unit=unit, kind=kind,
-                          inner_radius=inner_radius)
+                          inner_radius=inner_radius, sensor_health=sensor_health,
+                          offset_sd=offset_sd, offset_rate=offset_rate,
+                          health_block=health_block)
     if out_table is not None and not is_database_url(log):
         raise InputError(str(log), "--out-table writes into the log's database: give a "
                                    "database log (sqlite:///FILE or postgresql://...)")
@@ -286,6 +303,8 @@ def _run_locked(job, source, engine, lock, on_chunk):
     try:
         merge_outputs(work, work.manifest["n_chunks"], stage, job.table_fmt,
                       source.time_kind or "number")
+        if job.sensor_health:
+            extra = _merge_health(job, source, work, stage, extra)
         summary = _summary(job, source, engine, work, hyper, extra,
                            _time.perf_counter() - t_start, lock.note)
         if job.fmt == "netcdf":
@@ -304,6 +323,16 @@ def _run_locked(job, source, engine, lock, on_chunk):
     return summary
 
 
+def _merge_health(job, source, work, stage, extra):
+    from .health_tables import merge_health
+
+    health, warnings = merge_health(work, work.manifest["n_chunks"], stage, job.table_fmt,
+                                    sensors=list(job.sensors), z=interval_z(job.level),
+                                    kind=work.manifest.get("time_kind") or "number",
+                                    settings=work.manifest.get("health", {}))
+    return {**extra, "sensor_health": health, "health_warnings": warnings}
+
+
 def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
     counts = work.manifest["counts"]
     missing = source.missing_sensors
@@ -312,6 +341,8 @@ def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
     warnings += _keep_log_warnings(work.manifest, source)
     if note:
         warnings.append(note)
+    extra = dict(extra)
+    warnings += extra.pop("health_warnings", [])
     where = {"scheduler": engine.address} if getattr(engine, "address", None) else {}
     summary = {
         "command": "batch",

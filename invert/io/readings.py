@@ -18,7 +18,8 @@ from ..errors import DomainError, InputError
 from .checks import check_magnitudes, check_polar_agrees, check_sensor_ids, coincident_notes
 from .dialect import read_table, to_number_text
 
-__all__ = ["Readings", "load_readings", "load_points", "load_layout", "row_of", "check_inside"]
+__all__ = ["Readings", "load_readings", "load_points", "load_layout", "load_trusted", "row_of",
+           "check_inside"]
 
 
 def row_of(rows, index):
@@ -333,3 +334,32 @@ def load_layout(path, *, dim=2, sep=None, decimal=None, center=None):
             raise InputError(source, f"must be > 0, got {sigma[bad[0]]:g}",
                              row=int(numbers[bad[0]]), column="sigma")
     return sensor.astype(str), pts, sigma, numbers
+
+
+#: Cells of a layout's ``trusted`` column (case-insensitive; blank is not trusted).
+_TRUSTED = {"1": True, "true": True, "yes": True, "0": False, "false": False, "no": False,
+            "": False}
+
+
+def load_trusted(path, *, dim=2, sep=None, decimal=None):
+    """Read LAYOUT.csv's optional ``trusted`` column (1/0, true/false, yes/no; blank: no).
+
+    Returns
+    -------
+    ndarray of bool, shape (n_sensors,), or None
+        None when the layout has no ``trusted`` column.
+
+    Raises
+    ------
+    InputError
+        A cell that is none of these, naming its row.
+    """
+    t, _ = _read_with_columns(path, ["sensor"], dim, sep, decimal)
+    if "trusted" not in t:
+        return None
+    cells = [str(c).strip().lower() for c in t.text("trusted")]
+    for i, c in enumerate(cells):
+        if c not in _TRUSTED:
+            raise InputError(t.source, f"must be 1/0, true/false or yes/no, got {c!r}",
+                             row=int(t.numbers[i]), column="trusted")
+    return np.array([_TRUSTED[c] for c in cells], bool)
