@@ -11,7 +11,7 @@ PYTHON ?= $(shell for c in python3.13 python3.12 \
 	  if command -v $$c >/dev/null 2>&1 && $$c -c 'import sys; sys.exit(0 if sys.version_info >= (3, 12) else 1)' >/dev/null 2>&1; then \
 	    echo $$c; break; fi; done)
 
-.PHONY: demo test lint bench clean venv
+.PHONY: demo demo-annulus test lint bench clean venv
 
 venv: $(STAMP)
 
@@ -28,6 +28,12 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(VENV)/bin/rim-invert demo --out demo-output
 
+# The wall demo (synthetic: an insulated steam line, datasets/make_annulus_demo.py), ~10 s.
+demo-annulus: $(STAMP)
+	$(VENV)/bin/rim-invert fit datasets/annulus_readings.csv --domain annulus --radius 0.1 \
+	  --inner-radius 0.05 --conductivity 0.05 --query datasets/annulus_query.csv \
+	  --unit °C --length-unit m --out demo-output-annulus
+
 # One BLAS thread: the suite's matrices are small, and threads oversubscribe the two cores
 # when dask workers or parallel tests run beside them.
 test: $(STAMP)
@@ -41,4 +47,4 @@ bench: $(STAMP)
 	for b in bench/bench_*.py; do $(VENV)/bin/python $$b || exit 1; done
 
 clean:
-	rm -rf $(VENV) demo-output .pytest_cache build *.egg-info
+	rm -rf $(VENV) demo-output demo-output-annulus .pytest_cache build *.egg-info

@@ -173,13 +173,17 @@ def build_parser():
     p.add_argument("--center", type=finite("--center"), nargs="+", metavar="C", default=None,
                    help="centre: X Y for a disk, X Y Z for a ball (default: the origin)")
     p.add_argument("--domain", default="disk", choices=_domains(),
-                   help="region of the readings (default: disk); advice needs rim arcs, so a "
-                        "ball is refused with one line")
+                   help="region of the readings (default: disk); advice needs rim circles (a "
+                        "disk, or an annulus with --inner-radius), so a ball is refused with one "
+                        "line")
+    p.add_argument("--inner-radius", type=_positive("--inner-radius"), default=None,
+                   metavar="A", help="annulus: radius of the bore, 0 < A < --radius")
     p.add_argument("--count", type=int, default=5,
                    help="new sensors to choose (default: 5)")
     p.add_argument("--candidates", type=Path,
-                   help="POINTS.csv of candidate positions (default: every degree on the rim "
-                        "and rings at 1/4, 1/2, 3/4 of the radius)")
+                   help="POINTS.csv of candidate positions (default: every degree on each rim "
+                        "and rings 1/4, 1/2, 3/4 of the way from the centre, or the bore, to the "
+                        "outer rim)")
     p.add_argument("--query", type=Path,
                    help="POINTS.csv: reduce the variance at these points instead of over the disk")
     p.add_argument("--min-spacing", type=finite("--min-spacing", 0.0), default=None,
@@ -210,13 +214,20 @@ def _add_batch_parser(sub):
                    help="database LOG: only frames with time >= TIME")
     p.add_argument("--to", dest="time_to", default=None, metavar="TIME",
                    help="database LOG: only frames with time < TIME")
-    p.add_argument("--layout", type=Path, required=True, help="LAYOUT.csv: sensor,x,y[,sigma]")
+    p.add_argument("--layout", type=Path, required=True,
+                   help="LAYOUT.csv: sensor,x,y[,sigma] (or sensor,r,theta_deg[,sigma])")
     p.add_argument("--radius", type=_positive("--radius"), required=True,
                    help="radius of the region, in the unit of the x, y (z) columns")
+    p.add_argument("--domain", default="disk", choices=("disk", "annulus"),
+                   help="region: disk (default) or annulus (a wall between --inner-radius and "
+                        "--radius)")
+    p.add_argument("--inner-radius", type=_positive("--inner-radius"), default=None,
+                   metavar="A", help="annulus: radius of the bore, 0 < A < --radius")
     p.add_argument("--out", type=Path, required=True, help="output folder")
     p.add_argument("--center", type=finite("--center"), nargs=2, metavar=("X", "Y"), default=None,
                    help="centre of the disk (default: 0 0)")
-    p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] (default: the centre)")
+    p.add_argument("--query", type=Path, help="POINTS.csv: x,y[,label] (default: the centre; "
+                                              "on an annulus mid-wall at 0 and 180 degrees)")
     p.add_argument("--assimilate", action="store_true",
                    help="Kalman filter + RTS smoother over time instead of per-frame fits")
     p.add_argument("--engine", default="local", choices=["local", "dask"],
@@ -254,6 +265,19 @@ def _add_batch_parser(sub):
                         "frame (compiled); N > 0 = the steady-state shortcut: exact steps for up "
                         "to N frames after a change of drop-out pattern or time step, then the "
                         "cached steady-state gain")
+    p.add_argument("--sensor-health", action="store_true",
+                   help="assimilation: also estimate a slowly varying offset per sensor "
+                        "(offsets sum to zero over the sensors) and down-weight readings "
+                        "judged faulty; writes sensors.<fmt> and spikes.<fmt>")
+    p.add_argument("--offset-sd", type=_positive("--offset-sd"), default=None,
+                   help="with --sensor-health: prior sd of an offset, in the unit of the "
+                        "readings (default: 10 noise sds)")
+    p.add_argument("--offset-rate", type=_positive("--offset-rate"), default=None,
+                   help="with --sensor-health: sd of an offset's change over one time scale "
+                        "of the dynamics (default: 1 noise sd)")
+    p.add_argument("--health-block", default=None, metavar="SIZE",
+                   help="with --sensor-health: blocks of the sensors table, a record count "
+                        "(default: 1000) or a duration such as 30min, 2h")
 
 
 #: Default of --max-steps (mcmc only; None on the parser so that a stray one is seen).
@@ -430,12 +454,14 @@ def _cmd_advise(args):
     if args.center is not None and len(args.center) != dim:
         raise ValueError(f"--center needs {dim} numbers for a {args.domain}, got "
                          f"{len(args.center)}")
+    shape = shape_options(domain_class(args.domain), args.domain, args.radius,
+                          inner_radius=args.inner_radius)
     readings = load_readings(args.readings, dim=dim, center=args.center, **_dialect(args))
     domain = workflow.make_domain(args.radius, args.center, kind=args.domain,
-                                  s=args.smoothness)
-    if getattr(domain, "rim_arcs", None) is None:
-        raise ValueError(f"advise needs a region with a rim circle (a disk); the {args.domain} "
-                         f"has none, so no sensor advice can be given")
+                                  s=args.smoothness, **shape)
+    if getattr(domain, "rim_circles", None) is None:
+        raise ValueError(f"advise needs a region with a rim circle (a disk or an annulus); the "
+                         f"{args.domain} has none, so no sensor advice can be given")
     problem = workflow.problem_from_readings(readings, domain)
     cand, query = points(args.candidates), points(args.query)
     with warnings.catch_warnings():
@@ -479,8 +505,9 @@ def _write_advice(args, adv, estimate, problem):
     if len(rframe):
         print(f"repair first: {rframe['sensor'][0]} (cuts it by {rframe['reduction'][0]:.3g})")
     r0 = cframe.iloc[0]
-    where = f"rim at {r0['theta_deg']:.1f} deg" if r0["position"] == "rim" else \
-        f"interior at ({r0['x']:.4g}, {r0['y']:.4g})"
+    where = f"{r0['position']} at ({r0['x']:.4g}, {r0['y']:.4g})"
+    if np.isfinite(r0["theta_deg"]):  # on a rim: its angle says where
+        where = f"{r0['position']} at {r0['theta_deg']:.1f} deg"
     print(f"best new sensor: {where} (cuts it by {r0['reduction']:.3g})")
     print(f"written to {args.out}/ (candidates.csv, repair.csv, advice.json)")
 
@@ -494,10 +521,21 @@ def _scheduler_timeout(args):
     return dask.config.set({"distributed.comm.timeouts.connect": f"{SCHEDULER_TIMEOUT:g}s"})
 
 
+def _health_options(args):
+    """Return the sensor-health arguments of run_batch (none without --sensor-health)."""
+    if not args.sensor_health:
+        return {}
+    return {"sensor_health": True, "offset_sd": args.offset_sd,
+            "offset_rate": args.offset_rate, "health_block": args.health_block or "1000"}
+
+
 def _cmd_batch(args):
     from .batch.runner import run_batch
+    from .geometry import domain_class
 
     check_batch_args(args)
+    shape = shape_options(domain_class(args.domain), args.domain, args.radius,
+                          inner_radius=args.inner_radius)
     fresh = not args.out.exists()
     with _scheduler_timeout(args), no_work_left_on_bad_input(args, fresh):
         summary = run_batch(args.log, args.layout, radius=args.radius, out=args.out,
@@ -510,7 +548,8 @@ def _cmd_batch(args):
                             max_transient=args.max_transient or None,
                             time_format=args.time_format, table=args.table,
                             out_table=args.out_table, time_from=args.time_from,
-                            time_to=args.time_to, unit=args.unit)
+                            time_to=args.time_to, unit=args.unit, kind=args.domain,
+                            **shape, **_health_options(args))
     for w in summary["warnings"]:  # e.g. a repeated header, a stale lock taken over
         print(f"rim-invert: warning: {w}", file=sys.stderr)
     f = summary["frames"]

@@ -165,6 +165,7 @@ def check_batch_args(args):
     if args.calibrate and args.lam is not None:
         raise ValueError("--calibrate and --lam exclude each other")
     check_level(args.level, "level", "batch")
+    check_health_args(args)
     from .io.sql import is_database_url
 
     if not is_database_url(args.log) and Path(args.log).is_dir():
@@ -173,6 +174,27 @@ def check_batch_args(args):
     if not args.resume:
         check_output_path(args.out, "batch")
     check_scheduler(args.scheduler, args.engine)
+
+
+def check_health_args(args):
+    """Refuse sensor-health options that do not fit the run.
+
+    Options of the health model without --sensor-health, and --sensor-health without the
+    exact assimilation, are refused; ``--health-block`` is read (a ValueError naming it).
+    """
+    own = [o for o, v in (("--offset-sd", args.offset_sd), ("--offset-rate", args.offset_rate),
+                          ("--health-block", args.health_block)) if v is not None]
+    if own and not args.sensor_health:
+        raise ValueError(f"{', '.join(own)} belong(s) to --sensor-health")
+    if not args.sensor_health:
+        return
+    if not args.assimilate or args.max_transient:
+        raise ValueError("--sensor-health needs --assimilate with the exact filter "
+                         "(--max-transient 0)")
+    if args.health_block is not None:
+        from .batch.health_chain import parse_block
+
+        parse_block(args.health_block)
 
 
 @contextlib.contextmanager

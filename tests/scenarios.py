@@ -48,3 +48,109 @@ def write_ring_layout(path, n_sensors):
     path.write_text("sensor,x,y\n" + "".join(f"s{i},{np.cos(t):.12f},{np.sin(t):.12f}\n"
                                              for i, t in enumerate(th)))
     return path
+
+
+def annulus_laplace_fd(a, b, fo, fi, n_r, n_t):
+    """Finite-difference Laplace solve on the annulus a <= r <= b (rim functions fo, fi)."""
+    # Second-order finite differences of Laplace's equation in polar coordinates,
+    # u_rr + u_r / r + u_tt / r^2 = 0, on n_r radii from a to b (Dirichlet values fi, fo at the
+    # ends) and n_t periodic angles; one sparse solve (scipy.sparse.linalg.spsolve).
+    r = np.linspace(a, b, n_r)
+    t = 2 * np.pi * np.arange(n_t) / n_t
+    hr, ht = r[1] - r[0], t[1] - t[0]
+    m = n_r - 2
+    idx = np.arange(m * n_t).reshape(m, n_t)
+    rows, cols, vals = [], [], []
+    rhs = np.zeros(m * n_t)
+    for i in range(m):
+        ri = r[i + 1]
+        lo, hi = 1 / hr**2 - 1 / (2 * ri * hr), 1 / hr**2 + 1 / (2 * ri * hr)
+        ang = 1 / (ri * ht) ** 2
+        for j in range(n_t):
+            k = idx[i, j]
+            rows += [k, k, k]
+            cols += [k, idx[i, (j + 1) % n_t], idx[i, (j - 1) % n_t]]
+            vals += [-2 / hr**2 - 2 * ang, ang, ang]
+            for nb, coef, edge in ((i - 1, lo, fi(t[j])), (i + 1, hi, fo(t[j]))):
+                if 0 <= nb < m:
+                    rows.append(k)
+                    cols.append(idx[nb, j])
+                    vals.append(coef)
+                else:
+                    rhs[k] -= coef * edge
+    from scipy import sparse
+    from scipy.sparse.linalg import spsolve
+
+    A = sparse.csr_matrix((vals, (rows, cols)), shape=(m * n_t, m * n_t))
+    return r[1:-1], t, spsolve(A, rhs).reshape(m, n_t)
+
+
+def health_log(rng, *, n_frames=3000, n_rim=24, sigma=0.05, tau=0.05, time_scale=200.0,
+               faults=True, radius=1.0):
+    """A SYNTHETIC log of a field drawn from the assimilation model, with seeded sensor faults.
+
+    The coefficients follow the batch runner's dynamics (smoothness prior s = 2 with scale
+    ``tau`` as stationary law, time scale ``time_scale`` frames, mean level a random walk
+    around 20), 1 s steps; ``n_rim`` rim sensors ``s00...`` and probes ``p0``, ``p1``; noise sd
+    ``sigma``. With ``faults``: sensor ``s03`` gains a step offset of 5 sigma at frame
+    ``n_frames // 2``, ``s10`` drifts linearly from 0 to 5 sigma over the log, and ``s17``
+    throws isolated spikes of +-20 sigma in 0.5 % of the frames.
+
+    Returns
+    -------
+    dict
+        ``t``, ``Y`` (readings), ``ids``, ``points``, ``domain``, ``coef`` (true coefficients
+        per frame), ``offset`` (true offsets, n_frames x n_sensors), ``spike`` (bool mask of
+        the spiked readings), ``step_frame``.
+    """
+    from invert import make_domain
+    from invert.stages.assimilate.dynamics import CoefficientDynamics
+
+    dom = make_domain(radius)  # the batch runner's domain (truncation for s = 2)
+    th = ring_angles(n_rim)
+    pts = np.vstack([radius * np.c_[np.cos(th), np.sin(th)], [[0.2, 0.1], [-0.3, -0.25]]])
+    ids = [f"s{i:02d}" for i in range(n_rim)] + ["p0", "p1"]
+    shape = SmoothnessPrior(s=2.0).shape(dom.eigenvalues, dom.degrees)
+    model = CoefficientDynamics.from_prior(dom.design(pts), np.full(len(pts), sigma**2), shape,
+                                           dom.degrees, tau2=tau**2, time_scale=time_scale)
+    t = np.arange(n_frames, dtype=float)
+    c = np.empty((n_frames, dom.n_coef))
+    v0 = np.where(model.random_walk, tau**2, model.prior_var)
+    c[0] = np.sqrt(v0) * rng.standard_normal(dom.n_coef)
+    c[0, 0] += 20.0
+    f, q = model.transition(1.0)
+    for k in range(1, n_frames):
+        c[k] = f * c[k - 1] + np.sqrt(q) * rng.standard_normal(dom.n_coef)
+    Y = c @ model.H.T + sigma * rng.standard_normal((n_frames, len(pts)))
+    off = np.zeros_like(Y)
+    spike = np.zeros(Y.shape, bool)
+    step = n_frames // 2
+    if faults:
+        off[step:, 3] = 5 * sigma
+        off[:, 10] = 5 * sigma * np.arange(n_frames) / (n_frames - 1)
+        hit = rng.random(n_frames) < 0.005
+        spike[hit, 17] = True
+        Y[hit, 17] += 20 * sigma * rng.choice([-1.0, 1.0], hit.sum())
+    Y += off
+    return {"t": t, "Y": Y, "ids": ids, "points": pts, "domain": dom, "coef": c,
+            "offset": off, "spike": spike, "step_frame": step, "model": model}
+
+
+#: Sensors a seeded health log marks trusted (none of them faulty).
+HEALTH_TRUSTED = ("s00", "s06", "s12", "p0", "p1")
+
+
+def write_health_log(folder, log, *, trusted=False):
+    """Write ``log`` (from :func:`health_log`) as ``log.csv`` and ``layout.csv`` in ``folder``;
+    with ``trusted`` the layout marks :data:`HEALTH_TRUSTED` in a ``trusted`` column."""
+    import pandas as pd
+
+    lay = pd.DataFrame({"sensor": log["ids"], "x": log["points"][:, 0],
+                        "y": log["points"][:, 1]})
+    if trusted:
+        lay["trusted"] = [int(i in HEALTH_TRUSTED) for i in log["ids"]]
+    lay.to_csv(folder / "layout.csv", index=False)
+    frame = pd.DataFrame(log["Y"], columns=log["ids"])
+    frame.insert(0, "time", log["t"])
+    frame.to_csv(folder / "log.csv", index=False, float_format="%.10g")
+    return folder / "log.csv", folder / "layout.csv"

@@ -52,6 +52,11 @@ __all__ = ["assimilation_chunks", "parallel_chunks", "dynamics", "STATE_CLASSES"
 #: The dataclasses spilled to the working folder (the only ones read back, as data).
 STATE_CLASSES = (FilterState, FilterSegment, SmootherState)
 
+#: Added to the recursion's description with the sensor-health model.
+HEALTH_RECURSION = ("; state augmented by per-sensor offsets (zero-sum random-walk contrasts), "
+                    "each reading weighted by its probability of being good (good/faulty "
+                    "predictive mixture)")
+
 _DYNAMICS = ("per-harmonic Ornstein-Uhlenbeck with the smoothness prior as stationary law; "
              "random-walk mean level")
 
@@ -155,6 +160,11 @@ def assimilation_chunks(job, source, engine, work, hyper):
         extra = {"max_transient": None, "recursion": "exact (NumPy)",
                  "parallel": "associative scan over chunk summaries (Särkkä & "
                              "García-Fernández 2021)"}
+    elif job.sensor_health:
+        from .health_chain import health_chunks  # only runs with --sensor-health load it
+
+        loglik = yield from health_chunks(job, source, engine, work, model)
+        extra = {"max_transient": None, "recursion": RECURSION + HEALTH_RECURSION}
     elif job.max_transient is None and getattr(engine, "workers", 1) > 1:
         loglik, handover = yield from overlapped_chunks(job, source, engine, work, model,
                                                         tol=job.handover_tol,

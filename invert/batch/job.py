@@ -75,6 +75,16 @@ class BatchJob:
         How the log writes its times (:mod:`invert.io.times`); None: numbers or ISO 8601.
     layout_digest, query_digest : str, optional
         Content hashes of the input files (part of the resume signature).
+    sensor_health : bool, default=False
+        Assimilation with per-sensor offsets and faulty readings down-weighted
+        (:mod:`invert.batch.health_chain`; the exact kernel only).
+    offset_sd, offset_rate : float, optional
+        Prior sd of an offset and sd of its change over one time scale (readings' units);
+        default 10 and 1 median noise sds (:mod:`invert.stages.assimilate.health`).
+    health_block : str, default="1000"
+        Blocks of the sensors table: a record count or a duration (``30min``, ``2h``).
+    trusted : ndarray of bool, shape (n_sensors,), optional
+        Sensors marked trusted in the layout (no offset; the reference of the others).
     """
 
     domain: object
@@ -104,6 +114,11 @@ class BatchJob:
     unit: str | None = None
     layout_digest: str | None = None
     query_digest: str | None = None
+    sensor_health: bool = False
+    offset_sd: float | None = None
+    offset_rate: float | None = None
+    health_block: str = "1000"
+    trusted: np.ndarray | None = None
 
     def __post_init__(self):
         object.__setattr__(self, "level", check_level(self.level, where="batch"))
@@ -124,6 +139,14 @@ class BatchJob:
                              f"Got {self.warmup!r} instead.")
         if self.parallel_in_time and not self.assimilate:
             object.__setattr__(self, "parallel_in_time", False)
+        if self.sensor_health and not (self.assimilate and self.max_transient is None
+                                       and not self.parallel_in_time):
+            raise ValueError("--sensor-health needs --assimilate with the exact filter "
+                             "(--max-transient 0, not parallel in time)")
+        if self.sensor_health:
+            from .health_chain import parse_block
+
+            parse_block(self.health_block)
         if self.parallel_in_time and self.max_transient is not None:
             raise ValueError("The parallel-in-time smoother is exact: it needs "
                              f"max_transient=None. Got {self.max_transient!r} instead.")
@@ -136,7 +159,11 @@ class BatchJob:
     def options(self):
         """Return the settings a resumed run must share (JSON-serialisable)."""
         dom = self.domain
+        shape = {k: getattr(dom, k) for k in getattr(dom, "shape_parameters", ())}
+        health = ({"health": {"offset_sd": self.offset_sd, "offset_rate": self.offset_rate,
+                              "block": self.health_block}} if self.sensor_health else {})
         return {
+            **({"shape": shape} if shape else {}),
             "layout": self.layout_digest, "query": self.query_digest,
             "radius": dom.radius, "center": list(dom.center), "n_modes": dom.n_modes,
             "s": self.s, "lam": self.lam, "noise_sd": self.noise_sd,
@@ -146,7 +173,7 @@ class BatchJob:
             "parallel_in_time": bool(self.parallel_in_time), "parts": "arrow-ipc",
             "handover_tol": self.handover_tol, "warmup": self.warmup,
             "time_format": self.time_format,
-            "state": "npz",
+            "state": "npz", **health,
         }
 
 

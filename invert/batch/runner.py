@@ -4,7 +4,8 @@ r"""Reanalysis of logged frames: per-frame inversion or Kalman smoothing, resuma
 ``frames.<fmt>`` (``time, frame, status, reason, n_used, centre_mean, centre_sd, chi2``) and
 writes ``query.<fmt>`` (``time, label, mean, sd, lower, upper``) for the frames with an
 estimate. ``frame`` is the record number in the log; ``centre_mean``/``centre_sd`` are the mean
-level :math:`a_0` (the value at the centre); ``chi2`` is the whitened residual sum of squares of
+level :math:`a_0` (the value at the centre; on an annulus coefficient 0, the outer rim's mean
+level ``o_a0``); ``chi2`` is the whitened residual sum of squares of
 the frame's fit (static) or its normalised innovation squared :math:`v^\top S^{-1}v`
 (assimilation).
 
@@ -42,9 +43,10 @@ import numpy as np
 from ..errors import InputError
 from ..io.logs import open_log
 from ..io.publish import OutputLock, check_own_folder, clean_stale_staging, publish, staging_folder
-from ..io.readings import check_inside, load_layout, load_points
+from ..io.readings import check_inside, load_layout, load_points, load_trusted
 from ..io.sql import is_database_url
 from ..io.writers import write_json
+from ..problem import interval_z
 from ..progress import progress
 from ..report.batch_report import write_batch_report
 from ..report.files import CAUTIONS, to_jsonable
@@ -66,7 +68,7 @@ def _digest(path):
 
 
 def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n_modes=None,
-                   **settings):
+                   kind="disk", inner_radius=None, **settings):
     """Load the layout and query points, make the domain, and describe the job.
 
     Parameters
@@ -74,11 +76,16 @@ def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n
     layout : str or Path
         LAYOUT.csv: ``sensor,x,y[,sigma]``.
     query : str or Path, optional
-        POINTS.csv; default the centre of the disk (label ``centre``).
+        POINTS.csv; default the domain's reference points (the centre of a disk, label
+        ``centre``; mid-wall at 0 and 180 degrees on an annulus).
     radius : float
     center : (float, float), optional
     smoothness : float, default=2.0
     n_modes : int, optional
+    kind : str, default="disk"
+        A name in :data:`invert.geometry.DOMAINS` (``"annulus"`` with ``inner_radius``).
+    inner_radius : float, optional
+        The bore of an annulus.
     **settings
         The other fields of :class:`~invert.batch.job.BatchJob` (``out`` is required).
 
@@ -93,14 +100,22 @@ def job_from_files(layout, query=None, *, radius, center=None, smoothness=2.0, n
     """
     from ..workflow import make_domain
 
-    sensors, points, sigma, rows = load_layout(layout)
-    domain = make_domain(radius, center, s=smoothness, n_modes=n_modes)
+    sensors, points, sigma, rows = load_layout(layout, center=center)
+    if settings.get("sensor_health"):
+        settings["trusted"] = load_trusted(layout)
+        if settings["trusted"] is not None and settings["trusted"].all():
+            raise InputError(Path(layout).name, "every sensor is marked trusted: no offset is "
+                             "left to estimate (mark the suspect sensors 0)", column="trusted")
+    shape = {} if inner_radius is None else {"inner_radius": inner_radius}
+    domain = make_domain(radius, center, kind=kind, s=smoothness, n_modes=n_modes, **shape)
     check_inside(domain, points, rows, Path(layout).name)
     if query is not None:
         qpts, qlabels, qrows = load_points(query)
         check_inside(domain, qpts, qrows, Path(query).name)
     else:
-        qpts, qlabels = np.array([list(domain.center)]), np.array(["centre"])
+        ref = domain.reference_points()
+        qpts = np.array([np.asarray(p, float) for _, p in ref])
+        qlabels = np.array([name for name, _ in ref])
     return BatchJob(domain, sensors, points, sigma, qpts, qlabels, s=smoothness,
                     layout_digest=_digest(layout), query_digest=_digest(query), **settings)
 
@@ -112,7 +127,8 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
               ml_frames=20000, n_workers=2, parallel_in_time=False, handover_tol=1e-10,
               warmup=None, time_format=None,
               table=None, time_from=None, time_to=None, unit=None, out_table=None,
-              on_chunk=None, say=print, log_options=None):
+              on_chunk=None, say=print, log_options=None, kind="disk", inner_radius=None,
+              sensor_health=False, offset_sd=None, offset_rate=None, health_block="1000"):
     """Reanalyse a log of frames; write frames.<fmt>, query.<fmt> and summary.json into ``out``.
 
     Parameters
@@ -181,6 +197,18 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
         Unused; kept for callers.
     log_options : dict, optional
         Passed to :func:`~invert.io.logs.open_log` (``sep``, ``decimal`` of a CSV log).
+    kind : str, default="disk"
+        Domain name (``"annulus"``: a wall, with ``inner_radius``).
+    inner_radius : float, optional
+        The bore of an annulus.
+    sensor_health : bool, default=False
+        Assimilation with per-sensor offsets and faulty readings down-weighted; also writes
+        sensors.<fmt> and spikes.<fmt> (:mod:`invert.batch.health_tables`).
+    offset_sd, offset_rate : float, optional
+        Prior sd of an offset and sd of its change over one time scale (default 10 and 1
+        median noise sds).
+    health_block : str, default="1000"
+        Blocks of the sensors table: a record count, or a duration (``30min``, ``2h``).
 
     Returns
     -------
@@ -203,7 +231,10 @@ def run_batch(log, layout, *, radius, out, query=None, assimilate=False, engine=
                           time_scale=time_scale, ml_frames=ml_frames, steady_tol=steady_tol,
                           max_transient=max_transient, parallel_in_time=parallel_in_time,
                           handover_tol=handover_tol, warmup=warmup,
-                          time_format=time_format, unit=unit)
+                          time_format=time_format, unit=unit, kind=kind,
+                          inner_radius=inner_radius, sensor_health=sensor_health,
+                          offset_sd=offset_sd, offset_rate=offset_rate,
+                          health_block=health_block)
     if out_table is not None and not is_database_url(log):
         raise InputError(str(log), "--out-table writes into the log's database: give a "
                                    "database log (sqlite:///FILE or postgresql://...)")
@@ -278,6 +309,8 @@ def _run_locked(job, source, engine, lock, on_chunk):
     try:
         merge_outputs(work, work.manifest["n_chunks"], stage, job.table_fmt,
                       source.time_kind or "number")
+        if job.sensor_health:
+            extra = _merge_health(job, source, work, stage, extra)
         summary = _summary(job, source, engine, work, hyper, extra,
                            _time.perf_counter() - t_start, lock.note)
         if job.fmt == "netcdf":
@@ -296,6 +329,16 @@ def _run_locked(job, source, engine, lock, on_chunk):
     return summary
 
 
+def _merge_health(job, source, work, stage, extra):
+    from .health_tables import merge_health
+
+    health, warnings = merge_health(work, work.manifest["n_chunks"], stage, job.table_fmt,
+                                    sensors=list(job.sensors), z=interval_z(job.level),
+                                    kind=work.manifest.get("time_kind") or "number",
+                                    settings=work.manifest.get("health", {}))
+    return {**extra, "sensor_health": health, "health_warnings": warnings}
+
+
 def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
     counts = work.manifest["counts"]
     missing = source.missing_sensors
@@ -304,6 +347,8 @@ def _summary(job, source, engine, work, hyper, extra, elapsed, note=None):
     warnings += _keep_log_warnings(work.manifest, source)
     if note:
         warnings.append(note)
+    extra = dict(extra)
+    warnings += extra.pop("health_warnings", [])
     where = {"scheduler": engine.address} if getattr(engine, "address", None) else {}
     summary = {
         "command": "batch",

@@ -3,8 +3,9 @@ r"""Where to add a sensor, and which failed sensor to repair first.
 A new reading :math:`g^\top c + e`, :math:`e \sim N(0,\sigma^2)`, changes the posterior
 covariance by a rank-one update, so the gain of every candidate is known before any reading is
 taken (the design needs no data). Depends on NumPy only (pandas inside :meth:`to_frames`).
-Rim angles (sensor spacing, candidate rings) come from the domain's ``rim_arcs``; a domain
-without them (a ball) gets a clear ``ValueError``.
+Rims, rim angles (sensor spacing) and candidate rings come from the domain's ``rim_circles``
+(:mod:`invert.geometry.rims`: the disk's rim; an annulus's outer and inner rims and its wall); a
+domain without them (a ball) gets a clear ``ValueError``.
 
 Notes
 -----
@@ -36,8 +37,6 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .gaps import require_arcs
-
 __all__ = [
     "SensorAdvice",
     "advise",
@@ -47,6 +46,7 @@ __all__ = [
     "rank_one_update",
     "greedy_design",
     "default_candidates",
+    "require_circles",
 ]
 
 
@@ -77,13 +77,17 @@ def target_matrix(domain, query=None) -> np.ndarray:
     query : ndarray of shape (n_points, dim), optional
         With query points the target is the mean variance at them, :math:`H = G_q/\sqrt{n_q}`;
         otherwise the mean variance over the region: closed form when the domain gives
-        ``region_mean_square()`` (the disk, :func:`disk_mean_variance_weights`), a grid average
-        otherwise.
+        ``region_mean_square()`` (the disk's diagonal, :func:`disk_mean_variance_weights`; the
+        annulus's full matrix, factored by ``eigh``), a grid average otherwise.
     """
     if query is not None:
         q = np.asarray(query, float)
         return domain.design(q) / np.sqrt(len(q))
     weights = domain.region_mean_square()
+    if weights is not None and np.ndim(weights) == 2:
+        # a full matrix M (an annulus's rims overlap): H = diag(sqrt(w)) V^T, M = V diag(w) V^T
+        w, V = np.linalg.eigh(0.5 * (weights + np.transpose(weights)))
+        return np.sqrt(np.clip(w, 0.0, None))[:, None] * V.T
     if weights is not None:
         return np.diag(np.sqrt(weights))
     pts, _ = domain.field_grid(41)
@@ -156,16 +160,27 @@ def greedy_design(cov, H, rows, noise_var, count, *, points=None, min_distance=0
     return picks, gains, cov
 
 
+def require_circles(domain, what):
+    """Return the domain's ``rim_circles``; ``ValueError`` naming ``what`` when it has none."""
+    circles = getattr(domain, "rim_circles", None)
+    if circles is None:
+        raise ValueError(f"{what} needs a region bounded by circles about its centre (a disk or "
+                         f"an annulus); {type(domain).__name__} has none.")
+    return circles
+
+
 def default_candidates(domain, n_rim=360):
     """Return the default candidate positions for new sensors.
 
-    Rim positions every ``360/n_rim`` degrees and interior points on rings at 1/4, 1/2 and
-    3/4 of the radius every 10 degrees (rings from the domain's ``rim_arcs``).
+    Positions every ``360/n_rim`` degrees on every rim (``domain.rim_grid``: the disk's rim,
+    both rims of an annulus) and interior points every 10 degrees on rings 1/4, 1/2 and 3/4 of
+    the way from the inner boundary (the centre of a disk, the bore of an annulus) to the outer
+    rim (:meth:`~invert.geometry.rims.RimCircles.interior_radii`).
     """
-    rings = require_arcs(domain, "default_candidates")
+    circles = require_circles(domain, "default_candidates")
     rim, _ = domain.rim_grid(n_rim)
     th = np.deg2rad(np.arange(0, 360, 10.0))
-    inner = np.vstack([rings.ring(r, th) for r in (0.25, 0.5, 0.75)])
+    inner = np.vstack([circles.ring(r, th) for r in circles.interior_radii()])
     return np.vstack([rim, inner])
 
 
@@ -185,6 +200,9 @@ class SensorAdvice:
     on_rim : ndarray of bool
     theta_deg : ndarray
         Rim angle of each (NaN for interior positions).
+    position : ndarray of str
+        Where each lies: the rim's name (``rim``; ``outer``, ``inner``) or the interior's
+        (``interior``; ``wall``), from the domain's ``rim_circles``.
     reduction : ndarray
         Reduction of the target by each pick, given the ones before it.
     target_after : ndarray
@@ -210,6 +228,7 @@ class SensorAdvice:
     repair_reduction: np.ndarray
     noise_sd: float
     min_spacing_deg: float
+    position: np.ndarray = None
 
     def to_frames(self):
         """``(candidates, repair)`` pandas DataFrames as written to CSV."""
@@ -219,7 +238,8 @@ class SensorAdvice:
             "rank": np.arange(1, len(self.points) + 1),
             "x": self.points[:, 0], "y": self.points[:, 1],
             "theta_deg": self.theta_deg,
-            "position": np.where(self.on_rim, "rim", "interior"),
+            "position": (np.where(self.on_rim, "rim", "interior") if self.position is None
+                         else self.position),
             "reduction": self.reduction, "target_after": self.target_after,
         })
         rp = self.repair_points.reshape(-1, 2)
@@ -233,13 +253,19 @@ class SensorAdvice:
 
 
 def _nominal_spacing(domain, problem):
-    # Median ccw gap between consecutive rim sensors (working or failed), radians.
+    # Median ccw gap between consecutive sensors (working or failed) along each rim, pooled over
+    # the rims with at least two sensors; radians.
+    circles = require_circles(domain, "advise")
     pts = [p for p in (problem.points, problem.gap_points) if p is not None and len(p)]
-    rho, th = require_arcs(domain, "advise").polar(np.vstack(pts))
-    a = np.sort(np.mod(th[rho > 0.999], 2 * np.pi))
-    if a.size < 2:
+    pts = np.vstack(pts)
+    gaps = []
+    for k in range(len(circles.names)):
+        a = np.sort(circles.rim_angles(pts, k))
+        if a.size >= 2:
+            gaps.append(np.diff(np.append(a, a[0] + 2 * np.pi)))
+    if not gaps:
         return np.deg2rad(10.0)
-    return float(np.median(np.diff(np.append(a, a[0] + 2 * np.pi))))
+    return float(np.median(np.concatenate(gaps)))
 
 
 def advise(estimate, problem, *, count=5, candidates=None, query=None, min_spacing_deg=None,
@@ -288,8 +314,9 @@ def advise(estimate, problem, *, count=5, candidates=None, query=None, min_spaci
     before = float(np.sum((H @ cov) * H)) * factor
     cand = default_candidates(d) if candidates is None else np.asarray(candidates, float)
     rows = d.design(cand)
-    rho, th = require_arcs(d, "advise").polar(cand)
-    on_rim = rho > 0.999
+    circles = require_circles(d, "advise")
+    _, th = circles.polar(cand)
+    on_rim = circles.which(cand) >= 0
     if min_spacing_deg is None:
         min_spacing_deg = float(np.rad2deg(_nominal_spacing(d, problem))) / 2
     min_dist = 2 * d.radius * np.sin(np.deg2rad(min_spacing_deg) / 2)
@@ -306,9 +333,10 @@ def advise(estimate, problem, *, count=5, candidates=None, query=None, min_spaci
     theta = np.where(on_rim[picks], np.mod(np.rad2deg(th[picks]), 360.0), np.nan)
     return SensorAdvice(
         target="mean variance at the query points" if query is not None
-        else "mean variance over the disk",
+        else f"mean variance over the {circles.region}",
         target_before=before, points=cand[picks], on_rim=on_rim[picks], theta_deg=theta,
         reduction=gains, target_after=before - np.cumsum(gains), repair_sensor=rep_s,
         repair_points=rep_p, repair_reduction=rep_g, noise_sd=float(noise_sd),
         min_spacing_deg=float(min_spacing_deg),
+        position=circles.position_names(cand[picks]),
     )

@@ -220,12 +220,17 @@ def radial_sd_profile(estimate, *, n_radii=41, n_angles=180) -> RadialProfile:
 
     Notes
     -----
+    Rings run from the inner boundary (``inner_relative_radius``: the centre of a disk, the
+    bore of an annulus) to the rim; a domain without ``rim_arcs`` uses its ``rim_circles``.
     The rms over angle on a ring is :math:`(\frac{1}{2\pi}\oint \mathrm{sd}^2\,d\theta)^{1/2}`;
     for a diagonal coefficient posterior with equal variance :math:`p_n` on :math:`a_n, b_n`
     it is :math:`(p_0 + \sum_n \rho^{2n} p_n)^{1/2}`.
     """
-    arcs = require_arcs(estimate.domain, "radial_sd_profile")
-    rho = np.linspace(0.0, 1.0, n_radii)
+    d = estimate.domain
+    arcs = getattr(d, "rim_circles", None) if getattr(d, "rim_arcs", None) is None else None
+    arcs = require_arcs(d, "radial_sd_profile") if arcs is None else arcs
+    # from the centre of a disk (or the bore of an annulus) to the outer rim
+    rho = np.linspace(float(getattr(d, "inner_relative_radius", 0.0)), 1.0, n_radii)
     th = np.arange(n_angles) * (2 * np.pi / n_angles)
     R, T = np.meshgrid(rho, th, indexing="ij")
     sd = estimate.at(arcs.ring(R.ravel(), T.ravel())).sd.reshape(n_radii, n_angles)

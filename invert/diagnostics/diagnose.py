@@ -28,6 +28,7 @@ from .depth import (
 from .exceedance import MaxExceedance, exceedance_probability, max_exceedance
 from .gaps import GapDependence, gap_dependence, half_mass_width, unsensed_arcs
 from .model_check import CHECK_ALPHA, ModelCheck, model_check, psis_loo
+from .rims import RimDiagnostics, rim_diagnostics
 
 __all__ = [
     "Resolution",
@@ -36,6 +37,7 @@ __all__ = [
     "MaxExceedance",
     "ModelCheck",
     "Diagnostics",
+    "RimDiagnostics",
     "CHECK_ALPHA",
     "attenuation",
     "prior_variances",
@@ -66,6 +68,7 @@ class Diagnostics:
     threshold: float | None
     warnings: tuple = ()
     gap_labels: tuple = ()
+    rims: RimDiagnostics | None = None
 
     def to_dict(self) -> dict:
         """Return the ``diagnostics`` block of ``summary.json``."""
@@ -77,8 +80,9 @@ class Diagnostics:
             out["depth"] = {
                 "effective_dof": r.effective_dof,
                 "variance_ratio_by_degree": r.variance_ratio.tolist(),
-                "resolved_degree_at_relative_radius": self.resolved_degree_at,
             }
+            if self.resolved_degree_at:
+                out["depth"]["resolved_degree_at_relative_radius"] = self.resolved_degree_at
         if self.radial is not None:
             out.setdefault("depth", {})["posterior_sd_rms_at_relative_radius"] = {
                 f"{rr:.2f}": float(v) for rr, v in zip(self.radial.rho[::10],
@@ -97,6 +101,18 @@ class Diagnostics:
                               "width of the rim arc below the point holding half its kernel "
                               "mass",
             }
+        if self.rims is not None:
+            by_rim = self.rims.to_dict()
+            out.setdefault("depth", {})["by_rim"] = by_rim["depth"]
+            out["depth"]["resolved_degree_definition"] = (
+                "highest degree of the rim's function that a ring of all the sensors, at the "
+                "given fraction of the wall away from that rim, resolves (data precision above "
+                "prior precision)")
+            out["gaps"] = {"by_rim": by_rim["gaps"], "definition": (
+                "unsensed arcs: arcs of each rim farther than half that rim's sensor spacing "
+                "from its working sensors (the whole rim when it has none); share_at_points: "
+                "harmonic measure of those arcs, the share of the value at the point that "
+                "comes from them")}
         if self.max_exceed is not None:
             e = self.max_exceed
             out["exceedance"] = {
@@ -122,6 +138,18 @@ def _gap_points(domain, rim, query, labels):
             return q, qn  # the user already asks about the centre
         return np.vstack([pts, q]), names + qn
     return pts, names
+
+
+def _reference_and_query(domain, query, labels):
+    # The domain's reference points and the query points, with their labels.
+    ref = domain.reference_points()
+    pts, names = [np.asarray(p, float) for _, p in ref], [n for n, _ in ref]
+    if query is not None and len(query):
+        q = np.asarray(query, float)
+        pts += list(q)
+        names += [str(x) for x in labels] if labels is not None else \
+            [f"p{k + 1}" for k in range(len(q))]
+    return np.array(pts), names
 
 
 def diagnose(estimate, problem, *, level=0.9, threshold=None, query=None, labels=None,
@@ -150,9 +178,11 @@ def diagnose(estimate, problem, *, level=0.9, threshold=None, query=None, labels
     Notes
     -----
     The depth and gap diagnostics need a domain with ``rim_arcs`` (a rim parametrised by one
-    angle, as on a disk); for other domains (a ball) only the model check and the exceedance
-    probability are computed. Warnings found (a failed model check, suspect
-    sensors) are returned in ``warnings`` and issued as :class:`ModelCheckWarning`.
+    angle, as on a disk) or ``rim_circles`` (several rim circles, an annulus: reported rim by
+    rim in ``rims``, :mod:`~invert.diagnostics.rims`); for other domains (a ball) only the
+    model check and the exceedance probability are computed. Warnings found (a failed model
+    check, suspect sensors) are returned in ``warnings`` and issued as
+    :class:`ModelCheckWarning`.
     """
     rim = estimate.domain.rim_arcs
     has_prior = None not in prior_params(estimate)
@@ -165,10 +195,17 @@ def diagnose(estimate, problem, *, level=0.9, threshold=None, query=None, labels
         deg = resolved_degree(estimate, radii, n_readings=problem.n_readings)
         at = {f"{r:.2f}": int(k) for r, k in zip(radii, deg)}
     names = ["centre"]
+    by_rim = None
     if rim is not None:
         radial = radial_sd_profile(estimate)
         pts, names = _gap_points(estimate.domain, rim, query, labels)
         gaps = gap_dependence(problem, pts)
+    elif getattr(estimate.domain, "rim_circles", None) is not None:
+        if has_prior:
+            res = resolution(estimate, problem)
+        radial = radial_sd_profile(estimate)
+        pts, names = _reference_and_query(estimate.domain, query, labels)
+        by_rim = rim_diagnostics(estimate, problem, pts, names, res)
     if has_prior and problem.n_readings < 3:
         warn.append(f"model check skipped: it needs at least 3 readings, got "
                     f"{problem.n_readings}; nothing here tests whether the field is harmonic")
@@ -184,4 +221,5 @@ def diagnose(estimate, problem, *, level=0.9, threshold=None, query=None, labels
         mx = max_exceedance(estimate, float(threshold), level=level, rng=rng)
     for w in warn:
         warnings.warn(w, ModelCheckWarning, stacklevel=2)
-    return Diagnostics(res, at, radial, gaps, check, mx, threshold, tuple(warn), tuple(names))
+    return Diagnostics(res, at, radial, gaps, check, mx, threshold, tuple(warn), tuple(names),
+                       by_rim)

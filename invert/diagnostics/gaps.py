@@ -20,8 +20,8 @@ import numpy as np
 
 from ..geometry.arcs import half_mass_width
 
-__all__ = ["GapDependence", "require_arcs", "unsensed_arcs", "half_mass_width",
-           "gap_dependence"]
+__all__ = ["GapDependence", "require_arcs", "unsensed_arcs", "arcs_from_angles",
+           "half_mass_width", "gap_dependence"]
 
 
 def require_arcs(domain, what):
@@ -62,6 +62,28 @@ def unsensed_arcs(problem, *, spacing=None) -> np.ndarray:
     rim = require_arcs(problem.domain, "unsensed_arcs")
     work = rim.rim_angles(problem.points)
     every = np.concatenate([work, rim.rim_angles(problem.gap_points)])
+    return arcs_from_angles(work, every, max(int(getattr(problem.domain, "n_modes", 1)), 1),
+                            spacing=spacing)
+
+
+def arcs_from_angles(work, every, n_modes, *, spacing=None) -> np.ndarray:
+    """Unsensed arcs of one rim circle from its sensors' angles (the rule of :func:`unsensed_arcs`).
+
+    Parameters
+    ----------
+    work : ndarray
+        Angles (radians) of the working sensors on the rim.
+    every : ndarray
+        Angles of every sensor on the rim, working or failed (for the nominal spacing).
+    n_modes : int
+        Highest harmonic of the model (the dense-line rule).
+    spacing : float, optional
+        Nominal spacing; default as in :func:`unsensed_arcs`.
+
+    Returns
+    -------
+    ndarray of shape (n_arcs, 2)
+    """
     if work.size == 0:
         return np.array([[0.0, 2 * np.pi]])
     if spacing is None:
@@ -70,7 +92,6 @@ def unsensed_arcs(problem, *, spacing=None) -> np.ndarray:
         # coefficient) is spaced far below what the model resolves, and its random spacing
         # would make every gap above the median an "arc": there, gaps narrower than half a
         # period of the highest harmonic, pi / n_modes, are no unsensed arcs (our rule)
-        n_modes = max(int(getattr(problem.domain, "n_modes", 1)), 1)
         if every.size > 4 * (2 * n_modes + 1):
             spacing = max(spacing, np.pi / n_modes)
     half = 0.5 * spacing

@@ -62,6 +62,8 @@ import numpy as np
 from ..errors import DomainError
 from ..prior import truncation_degree
 from .base import PlanarPolar, RoundDomain
+from .rims import RimCircles
+from .wall_profiles import radial_profiles, wall_mean_square_blocks
 
 __all__ = ["Annulus", "radial_profiles"]
 
@@ -85,50 +87,6 @@ def _power_series(C, z):
         acc *= z
         acc += Cn
     return acc * z
-
-
-def radial_profiles(s, t, L, n_modes):
-    r"""Radial profiles :math:`\sinh(ns)/\sinh(nL)` and their derivatives in :math:`s`.
-
-    Parameters
-    ----------
-    s, t : ndarray of shape (m,)
-        :math:`s = \ln(r/a) \ge 0` and :math:`t = \ln(b/r) \ge 0` with :math:`s + t = L`.
-    L : float
-        :math:`\ln(b/a) > 0`.
-    n_modes : int
-
-    Returns
-    -------
-    value, slope : ndarray of shape (m, n_modes + 1)
-        ``value[:, n]`` is :math:`\sinh(ns)/\sinh(nL)` (:math:`s/L` at :math:`n = 0`) and
-        ``slope[:, n]`` its derivative in :math:`s`, :math:`n\cosh(ns)/\sinh(nL)`
-        (:math:`1/L` at :math:`n = 0`).
-
-    Notes
-    -----
-    :math:`\sinh(ns)/\sinh(nL) = e^{-nt}\,\operatorname{expm1}(-2ns)/\operatorname{expm1}(-2nL)`
-    and :math:`n\cosh(ns)/\sinh(nL) = n e^{-nt}(1 + e^{-2ns})/(-\operatorname{expm1}(-2nL))`:
-    no factor exceeds 1 in size except the slope's, which is at most :math:`\approx n/\tanh
-    nL`.
-
-    Examples
-    --------
-    >>> v, d = radial_profiles(np.array([0.0, 0.5, 1.0]), np.array([1.0, 0.5, 0.0]), 1.0, 1)
-    >>> v.round(6).tolist()
-    [[0.0, 0.0], [0.5, 0.443409], [1.0, 1.0]]
-    """
-    s = np.asarray(s, float)[:, None]
-    t = np.asarray(t, float)[:, None]
-    n = np.arange(1, int(n_modes) + 1, dtype=float)[None, :]
-    den = np.expm1(-2.0 * n * L)
-    decay = np.exp(-n * t)
-    value = np.empty((s.shape[0], n.shape[1] + 1))
-    slope = np.empty_like(value)
-    value[:, :1], slope[:, :1] = s / L, 1.0 / L
-    value[:, 1:] = decay * np.expm1(-2.0 * n * s) / den
-    slope[:, 1:] = -n * decay * (1.0 + np.exp(-2.0 * n * s)) / den
-    return value, slope
 
 
 @dataclass(frozen=True)
@@ -254,6 +212,46 @@ class Annulus(PlanarPolar, RoundDomain):
         """``("o_a0", "i_a0", "o_a1", "o_b1", "i_a1", "i_b1", ...)``."""
         return ("o_a0", "i_a0") + tuple(f"{rim}_{ab}{n}" for n in range(1, self.n_modes + 1)
                                         for rim in "oi" for ab in "ab")
+
+    @property
+    def rim_circles(self) -> RimCircles:
+        """The two rims, ``outer`` (relative radius 1) and ``inner`` (``a/b``), and the ``wall``."""
+        return RimCircles(self, ("outer", "inner"), (1.0, self.alpha), "wall", "wall")
+
+    def rim_attenuation(self, k, rho, degrees) -> np.ndarray:
+        r"""Value at relative radius ``rho`` of rim ``k``'s degree-``n`` harmonic.
+
+        Rim 0 (outer): :math:`\sinh(n\ln(r/a))/\sinh(n\ln(b/a))`; rim 1 (inner): the same with
+        :math:`\ln(b/r)` (:func:`radial_profiles`; 1 on its rim, 0 on the other). Shape
+        ``(n_rho, n_degrees)``.
+        """
+        rho = np.clip(np.atleast_1d(np.asarray(rho, float)), self.alpha, 1.0)
+        deg = np.atleast_1d(np.asarray(degrees, int))
+        s, t = np.log1p((rho - self.alpha) / self.alpha), np.log1p((1.0 - rho) / rho)
+        first, second = (s, t) if k == 0 else (t, s)
+        value, _ = radial_profiles(first, second, self.log_ratio, int(deg.max(initial=0)))
+        return value[:, deg]
+
+    def region_mean_square(self) -> np.ndarray:
+        r"""Matrix :math:`M = \frac{1}{\pi(b^2-a^2)}\int_\text{wall} h h^\top dA` (not diagonal).
+
+        The outer and inner columns of one degree and trigonometric factor share their angular
+        factor, so :math:`M` has 2 x 2 blocks (:func:`wall_mean_square_blocks`); columns of
+        different degree or factor are orthogonal over angle.
+        """
+        oo, oi, ii = wall_mean_square_blocks(self.alpha, self.log_ratio, self.n_modes)
+        deg, inner = self.degrees, self.inner_columns
+        k = np.arange(self.n_coef)
+        same = (deg[:, None] == deg[None, :]) & (self.sine_columns[:, None] ==
+                                                 self.sine_columns[None, :])
+        pair = np.where(inner[:, None] & inner[None, :], ii[deg][:, None],
+                        np.where(~inner[:, None] & ~inner[None, :], oo[deg][:, None],
+                                 oi[deg][:, None]))
+        return np.where(same | (k[:, None] == k[None, :]), pair, 0.0)
+
+    def rim_column_mask(self, k) -> np.ndarray:
+        """Mask of the columns of rim ``k``'s function (0: outer, 1: inner)."""
+        return self.inner_columns if k == 1 else ~self.inner_columns
 
     def rim_search_size(self) -> int:
         """``max(720, 16 * n_modes)`` angles per rim: 16 points per shortest wavelength."""

@@ -56,8 +56,12 @@ class Domain(Protocol):
     mean_columns : ndarray of int
         The broad mean-level columns (degree 0), which get a flat prior.
     rim_arcs : object or None
-        Angle-based rim tools (rim angles of points, harmonic measure of rim arcs, rings at a
-        relative radius); ``None`` when the rim is not a circle.
+        Angle-based rim tools of a rim that is one circle (rim angles of points, harmonic
+        measure of rim arcs, rings at a relative radius); ``None`` otherwise.
+    rim_circles : RimCircles or None
+        The boundary circles about the centre, named (``rim``; ``outer``, ``inner``), with
+        each rim's attenuation with depth (:mod:`invert.geometry.rims`); advice and the per-rim
+        diagnostics use it. ``None`` for a ball.
     inner_relative_radius : float
         Relative radius of the inner boundary: 0 when the region reaches its centre (disk,
         ball), ``a/b`` for an annulus, whose ``relative_radius`` is ``r/b`` in ``[a/b, 1]``.
@@ -147,7 +151,7 @@ class Domain(Protocol):
         """Return the ``rim_grid`` argument fine enough to find a field's maximum on the rim."""
 
     def region_mean_square(self):
-        """Diagonal of the region mean of the squared columns, or None (no closed form)."""
+        """Region mean of the squared columns: its diagonal, a full matrix, or None."""
 
     def source_field(self, points) -> np.ndarray:
         """Field of a uniform source with zero values on every rim, 1 at its maximum."""
@@ -209,6 +213,11 @@ class RoundDomain:
     @property
     def rim_arcs(self):
         """None: the rim is not a circle parametrised by one angle (no arc diagnostics)."""
+        return None
+
+    @property
+    def rim_circles(self):
+        """None: the boundary is not made of circles about the centre (no sensor advice)."""
         return None
 
     def source_field(self, points) -> np.ndarray:

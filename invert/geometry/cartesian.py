@@ -45,10 +45,11 @@ the first because :math:`(i^k w)^q = i^{kr} w^q` for :math:`q \equiv r`, the sec
 :math:`(x_0 + x_2) \pm (x_1 + x_3)` for :math:`k = 0, 2` and :math:`(x_0 - x_2) \pm (y_3 -
 y_1)` for :math:`k = 1, 3`; the reflections likewise with :math:`Y_r = x'_r + iy'_r`,
 :math:`(x'_0 + x'_2) \pm (x'_1 + x'_3)` for :math:`k = 0, 2` and :math:`(x'_0 - x'_2) \pm (y'_1
-- y'_3)` for :math:`k = 1, 3` (:func:`image_matrix`). A field :math:`h^\top c =
-\operatorname{Re}\sum_n (a_n - ib_n) w^n` is the same sum with constant coefficients
-:math:`\alpha_n = a_n`, :math:`\beta_n = -b_n` (:func:`field_chains`), so the mean costs one
-matrix product with the powers of :math:`w^4` for eight grid points. The variance costs one
+- y'_3)` for :math:`k = 1, 3` (:func:`image_matrix`; in closed form in the compiled loop,
+:mod:`._grid_loops`). A field :math:`h^\top c = \operatorname{Re}\sum_n (a_n - ib_n) w^n` is
+the same sum with constant coefficients :math:`\alpha_n = a_n`, :math:`\beta_n = -b_n`
+(:func:`field_chains`), so the mean costs one Horner-like chain in :math:`w^4` for eight grid
+points. The variance costs one
 table of :math:`G_q` per distinct radius (a matrix product) and :math:`16(N/2 + 1)` real
 multiply-adds per canonical point, against :math:`N` complex ones per point for the mean map
 by Horner's rule.
@@ -77,11 +78,12 @@ from __future__ import annotations
 
 import numpy as np
 
+from ._grid_loops import image_moments
 from .grid_fold import GridFold, fold_grid, image_maps
 from .polar import band_table
 
 __all__ = ["GridFold", "fold_grid", "image_maps", "leading_directions", "band_chains",
-           "band_parts", "field_chains", "power_columns", "image_values", "image_matrix",
+           "band_parts", "field_chains", "image_matrix",
            "fold_moments", "grid_moments", "ROUNDING_LIMIT", "REST_FACTOR", "MIN_SHARING"]
 
 #: Images whose estimated relative rounding error of the variance exceeds this are recomputed
@@ -204,16 +206,6 @@ def field_chains(coefs, n_modes) -> np.ndarray:
     return T.reshape(N // 4 + 1, -1)
 
 
-def power_columns(w, steps) -> np.ndarray:
-    """Powers ``(w**4)**k``, ``k < steps``: complex array of shape (steps, n)."""
-    w4 = (w * w) ** 2
-    W = np.empty((steps, w.size), complex)
-    W[0] = 1.0
-    for k in range(1, steps):
-        np.multiply(W[k - 1], w4, out=W[k])
-    return W
-
-
 def image_matrix() -> np.ndarray:
     r"""Return the linear map from the residue sums to the eight image values, shape (8, 16).
 
@@ -235,38 +227,6 @@ def image_matrix() -> np.ndarray:
             M[g, 0, r, 1] += cy
             M[g, 1, r, 0] += sgn * cy
     return M.reshape(8, 16)
-
-
-_IMAGES = image_matrix()
-
-
-def image_values(z, w):
-    r"""Values of :math:`\operatorname{Re}\sum_q (\alpha_q + i\beta_q) z^q` at the 8 images.
-
-    Parameters
-    ----------
-    z : ndarray of complex, shape (8, J, n)
-        :math:`\sum_k c_{k,(part,r)}\,(w^4)^k` for the parts :math:`\alpha, \beta` and
-        residues :math:`r` (axis 0, as in :func:`band_chains`) of ``J`` sums; overwritten.
-    w : ndarray of complex, shape (n,)
-
-    Returns
-    -------
-    values : ndarray of shape (8, J, n)
-        Images in the order of :class:`GridFold` (:func:`image_matrix` applied to
-        :math:`P_r, R_r`).
-    size : ndarray of shape (n,)
-        :math:`2\sum_r |P_r| + |R_r|` of the first sum (absolute real and imaginary parts),
-        a bound on :math:`\sum_r |X_r| + |Y_r|`: the scale of its rounding.
-    """
-    w2 = w * w
-    J = z.shape[1]
-    z = z.reshape(2, 4, J, w.size)
-    z[:, 1:] *= np.stack([w, w2, w2 * w])[:, None, :]  # times w^r
-    parts = np.ascontiguousarray(z.view(float).reshape(8, J, w.size, 2).transpose(0, 3, 1, 2))
-    parts = parts.reshape(16, J, w.size)
-    size = 2 * np.abs(parts[:, 0]).sum(axis=0)
-    return (_IMAGES @ parts.reshape(16, -1)).reshape(8, J, w.size), size
 
 
 def _radius_powers(s, n_modes, tol):
@@ -313,24 +273,16 @@ def fold_moments(fold, coef, root, n_modes, design_rows):
     Tc = field_chains(np.column_stack([coef, root[:, p - K:]]), N)  # mean, leading fields
     rest = root[:, : p - K]
     parts = band_parts(band_chains(rest @ rest.T, N), N)
-    steps, sc = parts[-1][1], Tc.shape[0]
     mean_flat, var_flat = np.full(8 * n + 1, np.nan), np.full(8 * n + 1, np.nan)
     mean, var, size = mean_flat[:-1].reshape(8, n), var_flat[:-1].reshape(8, n), np.empty(n)
     S, group = _radius_powers(w.real**2 + w.imag**2, N, 4 * eps)  # w sorted by radius
+    chains = np.ascontiguousarray(Tc)
     for start in range(0, n, _BLOCK):
         sl = slice(start, start + _BLOCK)
-        g, wb = group[sl], w[sl]
+        g = group[sl]
         Sb = S[:, g[0]: g[-1] + 1].T
-        W = power_columns(wb, max(steps, sc))
-        Wv = np.ascontiguousarray(W.view(float).reshape(W.shape[0], -1, 2).transpose(1, 0, 2))
-        acc = sum(np.matmul(np.take(Sb[:, : Ep.shape[0]] @ Ep, g - g[0], axis=0).reshape(
-            g.size, hi - lo, 8).transpose(0, 2, 1), Wv[:, lo:hi]) for lo, hi, Ep in parts)
-        z = np.empty((8, K + 2, wb.size), complex)  # the band sum, the mean, leading fields
-        z[:, 0] = acc.view(complex)[:, :, 0].T
-        z[:, 1:] = (Tc.T @ W[:sc].view(float)).view(complex).reshape(8, K + 1, wb.size)
-        F, size[sl] = image_values(z, wb)
-        mean[:, sl] = F[:, 1]
-        var[:, sl] = F[:, 0] + np.einsum("gki,gki->gi", F[:, 2:], F[:, 2:])
+        bands = np.hstack([Sb[:, : Ep.shape[0]] @ Ep for _, _, Ep in parts])
+        image_moments(w[sl], g - g[0], bands, chains, mean[:, sl], var[:, sl], size[sl])
     bad_g, bad_j = np.nonzero(8 * eps * size > ROUNDING_LIMIT * var)
     if bad_g.size:
         rows = design_rows(w[bad_j])

@@ -31,6 +31,7 @@ from .arcs import CircleArcs, arc_fourier_coefficients, arc_harmonic_measure
 from .base import PlanarPolar, RoundDomain
 from .cartesian import grid_moments
 from .polar import ring_variance
+from .rims import RimCircles
 
 __all__ = [
     "Disk",
@@ -198,6 +199,21 @@ class Disk(PlanarPolar, RoundDomain):
     def rim_arcs(self) -> CircleArcs:
         """Angle-based rim tools (:class:`~invert.geometry.arcs.CircleArcs`)."""
         return CircleArcs(self)
+
+    @property
+    def rim_circles(self) -> RimCircles:
+        """The rim as one named circle (:class:`~invert.geometry.rims.RimCircles`)."""
+        return RimCircles(self, ("rim",), (1.0,), "interior", "disk")
+
+    @staticmethod
+    def rim_attenuation(k, rho, degrees) -> np.ndarray:
+        r"""Damping :math:`\rho^n` of the rim's degree-``n`` harmonic (``k`` is 0, the rim)."""
+        rho = np.atleast_1d(np.asarray(rho, float))
+        return rho[:, None] ** np.atleast_1d(np.asarray(degrees))[None, :]
+
+    def rim_column_mask(self, k) -> np.ndarray:
+        """Mask of the columns of rim ``k``'s function: every column (one rim)."""
+        return np.ones(self.n_coef, bool)
 
     # --- geometry ------------------------------------------------------------------------------
     def _w(self, points) -> np.ndarray:

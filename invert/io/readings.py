@@ -18,7 +18,8 @@ from ..errors import DomainError, InputError
 from .checks import check_magnitudes, check_polar_agrees, check_sensor_ids, coincident_notes
 from .dialect import read_table, to_number_text
 
-__all__ = ["Readings", "load_readings", "load_points", "load_layout", "row_of", "check_inside"]
+__all__ = ["Readings", "load_readings", "load_points", "load_layout", "load_trusted", "row_of",
+           "check_inside"]
 
 
 def row_of(rows, index):
@@ -255,13 +256,18 @@ def _from_cells(header, rows, numbers, source, dim, center=None, *, decimal=".",
     return Readings(points, value, sigma, sensor.astype(str), source, numbers, tuple(notes))
 
 
-def _read_with_columns(path, required, dim, sep=None, decimal=None):
-    """Read a table that must have rows and the columns ``required`` plus the axes."""
+def _read_with_columns(path, required, dim, sep=None, decimal=None, polar=False):
+    """Read a table that must have rows and the columns ``required`` plus the axes.
+
+    With ``polar`` a plane table may give ``r,theta_deg`` instead of ``x,y``.
+    """
     source = Path(path).name
     header, rows, numbers, dialect = read_table(path, source=source, sep=sep, decimal=decimal)
     if not rows:
         raise InputError(source, "has a header but no rows")
     axes = ["x", "y", "z"][:dim]
+    if polar and dim == 2 and "r" in header and "theta_deg" in header:
+        axes = []
     missing = [a for a in [*required, *axes] if a not in header]
     if missing:
         raise InputError(source, f"missing required column(s) {', '.join(missing)}; "
@@ -288,8 +294,11 @@ def load_points(path, *, dim=2, sep=None, decimal=None):
     return pts, labels, t.numbers
 
 
-def load_layout(path, *, dim=2, sep=None, decimal=None):
-    """Load LAYOUT.csv: ``sensor,x,y[,z][,sigma]``.
+def load_layout(path, *, dim=2, sep=None, decimal=None, center=None):
+    """Load LAYOUT.csv: ``sensor,x,y[,z][,sigma]`` (a plane layout may give ``r,theta_deg``).
+
+    ``r,theta_deg`` are relative to ``center`` (default the origin); given with ``x,y`` they
+    must agree, as for readings.
 
     Returns
     -------
@@ -298,7 +307,7 @@ def load_layout(path, *, dim=2, sep=None, decimal=None):
     sigma : ndarray or None
     rows : ndarray of int
     """
-    t, axes = _read_with_columns(path, ["sensor"], dim, sep, decimal)
+    t, _ = _read_with_columns(path, ["sensor"], dim, sep, decimal, polar=True)
     source, numbers = t.source, t.numbers
     sensor = t.text("sensor")
     blank = np.flatnonzero(sensor == "")
@@ -310,7 +319,13 @@ def load_layout(path, *, dim=2, sep=None, decimal=None):
             raise InputError(source, f"sensor '{sid}' is listed twice (first at row {seen[sid]})",
                              row=int(numbers[i]), column="sensor")
         seen[sid] = int(numbers[i])
-    pts = np.column_stack([t.column(a) for a in axes])
+    axes = ["x", "y", "z"][:dim]
+    if all(a in t for a in axes):
+        pts = np.column_stack([t.column(a) for a in axes])
+        if dim == 2 and "r" in t and "theta_deg" in t:
+            check_polar_agrees(pts, _polar(t, center), numbers, source)
+    else:
+        pts = _polar(t, center)
     sigma = None
     if "sigma" in t:
         sigma = t.column("sigma")
@@ -319,3 +334,32 @@ def load_layout(path, *, dim=2, sep=None, decimal=None):
             raise InputError(source, f"must be > 0, got {sigma[bad[0]]:g}",
                              row=int(numbers[bad[0]]), column="sigma")
     return sensor.astype(str), pts, sigma, numbers
+
+
+#: Cells of a layout's ``trusted`` column (case-insensitive; blank is not trusted).
+_TRUSTED = {"1": True, "true": True, "yes": True, "0": False, "false": False, "no": False,
+            "": False}
+
+
+def load_trusted(path, *, dim=2, sep=None, decimal=None):
+    """Read LAYOUT.csv's optional ``trusted`` column (1/0, true/false, yes/no; blank: no).
+
+    Returns
+    -------
+    ndarray of bool, shape (n_sensors,), or None
+        None when the layout has no ``trusted`` column.
+
+    Raises
+    ------
+    InputError
+        A cell that is none of these, naming its row.
+    """
+    t, _ = _read_with_columns(path, ["sensor"], dim, sep, decimal)
+    if "trusted" not in t:
+        return None
+    cells = [str(c).strip().lower() for c in t.text("trusted")]
+    for i, c in enumerate(cells):
+        if c not in _TRUSTED:
+            raise InputError(t.source, f"must be 1/0, true/false or yes/no, got {c!r}",
+                             row=int(t.numbers[i]), column="trusted")
+    return np.array([_TRUSTED[c] for c in cells], bool)

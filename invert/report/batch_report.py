@@ -11,7 +11,9 @@ passes over the tables:
 * the status of every frame along the log (counts of ok, no-data and rejected per column);
 * a sensor-by-frame map of missing readings (fraction missing per sensor and block of frames,
   gathered as the log was read);
-* the fitted hyperparameters and time scale, the warnings and the cautions (first).
+* the fitted hyperparameters and time scale, the warnings and the cautions (first);
+* with the sensor-health model, the offsets' reference, the flag rule, the flagged sensors
+  and their offsets over time with bands (:mod:`.health_figures`).
 """
 
 from __future__ import annotations
@@ -227,6 +229,13 @@ def write_batch_report(out, summary, *, table_fmt, labels, missing=None, unit=No
     frames, query = out / f"frames.{table_fmt}", out / f"query.{table_fmt}"
     figs = _figures(out, frames, query, list(labels), missing, unit or "",
                     summary.get("level", 0.9))
+    health = summary.get("sensor_health")
+    if health is not None:
+        from .health_figures import health_figure, health_html
+
+        fig = health_figure(out, table_fmt, health.get("flagged", []), unit=unit or "",
+                            level=summary.get("level", 0.9))
+        figs = figs + ([fig] if fig is not None else [])
     e = html.escape
     fr = summary.get("frames", {})
     rows = [("frames", f"{fr.get('total', 0):,} ({fr.get('ok', 0):,} ok, "
@@ -248,6 +257,8 @@ def write_batch_report(out, summary, *, table_fmt, labels, missing=None, unit=No
     parts.append("<h2>Run</h2><table>" + "".join(
         f"<tr><td>{e(k)}</td><td>{e(str(v))}</td></tr>" for k, v in rows if v is not None)
         + "</table>")
+    if health is not None:
+        parts.append(health_html(health))
     for path, cap in figs:
         data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
         parts.append(f"<figure><img alt='{e(Path(path).stem)}' src='data:image/png;base64,"

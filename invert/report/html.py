@@ -149,6 +149,7 @@ def write_report(out_dir, estimate, problem, readings, *, level=0.9, unit="", le
     parts.append(_table(["fit", "value"], _fit_rows(estimate, problem, u)))
     parts += _depth_section(diagnostics, problem)
     parts += _gap_section(diagnostics, length_unit)
+    parts += _rim_sections(diagnostics, problem, length_unit)
     parts.append("<h2>Figures</h2>")
     for path, cap in figs:
         data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
@@ -256,6 +257,8 @@ def _depth_section(diagnostics, problem):
     if diagnostics.resolution is None:
         return []
     rd = diagnostics.resolved_degree_at
+    if not rd:  # several rims: reported rim by rim (_rim_sections)
+        return []
     return ["<p>Depth of information — highest harmonic degree a ring of these "
             f"{problem.n_readings} sensors resolves at relative radius r/R: " +
             ", ".join(f"{k}: {v}" for k, v in rd.items()) + ". Effective degrees of "
@@ -281,4 +284,40 @@ def _gap_section(diagnostics, length_unit):
             for lab, p, sh, w in zip(labels, g.points, g.share, g.half_mass_width_deg)]
     parts.append(_table(["dependence on gaps at", "kernel weight on unsensed arcs",
                          "width of the rim arc holding half the weight"], rows))
+    return parts
+
+
+def _rim_sections(diagnostics, problem, length_unit):
+    # Gaps and depth of information rim by rim (a region with several rim circles).
+    r = diagnostics.rims
+    if r is None:
+        return []
+    parts = []
+    for name in r.names:
+        arcs = r.arcs[name]
+        if len(arcs) == 1 and arcs[0, 1] - arcs[0, 0] >= 2 * np.pi - 1e-12:
+            text = f"no working sensor on the {name} rim: all of it is unsensed"
+        elif len(arcs):
+            text = f"unsensed arcs of the {name} rim (farther than half its sensor spacing " \
+                   "from its working sensors): " + "; ".join(
+                       f"{a:.0f}° to {b:.0f}°" for a, b in np.rad2deg(arcs))
+        else:
+            text = f"every part of the {name} rim is within half a sensor spacing of a " \
+                   "working sensor"
+        parts.append(f"<p>{_esc(text[0].upper() + text[1:])}.</p>")
+    if r.resolved_degree:
+        fr = list(r.resolved_degree[r.names[0]])
+        rows = [[_esc(name)] + [str(r.resolved_degree[name][f]) for f in fr] for name in r.names]
+        parts.append(f"<p>Depth of information from each rim — highest degree of that rim's "
+                     f"function a ring of these {problem.n_readings} sensors resolves at a "
+                     "fraction of the wall away from the rim (0: on the rim, 1: on the other "
+                     "rim). Effective degrees of freedom "
+                     f"{diagnostics.resolution.effective_dof:.1f}.</p>")
+        parts.append(_table(["rim"] + [f"depth {f}" for f in fr], rows))
+    lu = f" {length_unit}" if length_unit else ""
+    rows = [[f"{_esc(lab)} ({_fmt(p[0], 3)}, {_fmt(p[1], 3)}{lu})"] +
+            [f"{100 * r.share[name][i]:.1f} %" for name in r.names]
+            for i, (lab, p) in enumerate(zip(r.labels, r.points))]
+    parts.append(_table(["dependence on gaps at"] + [f"weight on unsensed arcs of the {n} rim"
+                                                     for n in r.names], rows))
     return parts

@@ -27,6 +27,10 @@ and since every :math:`\Sigma_k` of one :math:`s` shares the singular vectors of
 :math:`s`, the sum costs one :math:`p\times p` product per :math:`s`. Components below
 :data:`MIN_WEIGHT` of the largest are dropped.
 
+When the truth lies outside every prior of the grid, the held-out readings say so: the
+covariance is then widened by the block cross-validated scale of :mod:`.cv_scale` (never
+narrowed; ``info["calibration"]`` records the check and the factor).
+
 References
 ----------
 .. [1] J. A. Hoeting, D. Madigan, A. E. Raftery and C. T. Volinsky, "Bayesian model averaging:
@@ -44,6 +48,7 @@ from ..prior import SmoothnessPrior
 from ..problem import Estimate, PriorSummary
 from ._blas import single_thread
 from ._spectrum import unit_factor
+from .cv_scale import block_scale
 from .gaussian import GaussianPosterior, evidence_for
 
 __all__ = ["AveragedPosterior", "S_GRID", "MIN_WEIGHT"]
@@ -73,6 +78,9 @@ class AveragedPosterior(GaussianPosterior):
         prior) when None.
     s_bounds : (float, float), default=AVERAGED_S_BOUNDS
         Range of the smoothness orders of :data:`S_GRID` averaged over.
+    calibrate : bool, default=True
+        Widen the covariance by the block cross-validated scale when the held-out readings
+        are predicted worse than the posterior says (:mod:`invert.stages.cv_scale`).
 
     Attributes
     ----------
@@ -86,8 +94,9 @@ class AveragedPosterior(GaussianPosterior):
     See the module docstring.
     """
 
-    def __init__(self, *, noise_sd=None, s_bounds=AVERAGED_S_BOUNDS):
+    def __init__(self, *, noise_sd=None, s_bounds=AVERAGED_S_BOUNDS, calibrate=True):
         super().__init__(None, noise_sd=noise_sd, s_bounds=s_bounds)
+        self.calibrate = bool(calibrate)
 
     @classmethod
     def from_settings(cls, *, s=2.0, seed=None, **options):
@@ -176,9 +185,12 @@ class AveragedPosterior(GaussianPosterior):
         mean = ws @ M
         D = M - mean
         cov = second + (D.T * ws) @ D
-        return self._estimate(problem, rows, weights, mean, cov, mode)
+        calibration = block_scale(problem, rows, weights) if self.calibrate else None
+        if calibration is not None and calibration["factor"] > 1.0:
+            cov = cov * calibration["factor"]
+        return self._estimate(problem, rows, weights, mean, cov, mode, calibration)
 
-    def _estimate(self, problem, rows, weights, mean, cov, mode):
+    def _estimate(self, problem, rows, weights, mean, cov, mode, calibration=None):
         s_all = np.concatenate([np.full(len(r[2]), r[0]) for r in rows])
         w_all = np.concatenate(weights)
         tau_all = np.concatenate([r[6] for r in rows])
@@ -220,6 +232,7 @@ class AveragedPosterior(GaussianPosterior):
                             if estimated else ""),
             "interval_df": df,
             "notes": list(problem.assembly_notes),
+            "calibration": calibration,
         }
         info["residual_dof"] = problem.n_readings - info["effective_dof"]
         noise_pred = nu * (float(np.median(problem.sigma)) if known else 1.0)

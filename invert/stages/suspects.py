@@ -85,7 +85,8 @@ def mix_suspects(estimate, problem, fit_fn, *, rate=FAULT_RATE):
     Estimate
         Unchanged when no reading's fault probability reaches :data:`MIN_PROBABILITY`;
         otherwise the mixture, with ``info["suspects"]`` (sensor -> probability) and a warning
-        for each suspect above :data:`NAME_PROBABILITY`.
+        for each suspect above :data:`NAME_PROBABILITY`. A refit is widened to at least the
+        cross-validated scale of ``estimate`` (``info["calibration"]``, :mod:`.cv_scale`).
     """
     if estimate.cov is None or problem.n_readings < 6:
         return estimate
@@ -107,7 +108,7 @@ def mix_suspects(estimate, problem, fit_fn, *, rate=FAULT_RATE):
     if not sus:
         return estimate
     weights = [max(1.0 - float(sum(p[i] for i in sus)), 0.0)] + [float(p[i]) for i in sus]
-    parts = [estimate] + [refits[i] for i in sus]
+    parts = [estimate] + [_at_scale(refits[i], estimate) for i in sus]
     mean, cov = gaussian_mixture(weights, parts)
     sensors = np.asarray(problem.sensor).astype(str)
     notes = [f"sensor {sensors[i]} may be faulty (fault probability {p[i]:.3g} under the "
@@ -124,6 +125,18 @@ def mix_suspects(estimate, problem, fit_fn, *, rate=FAULT_RATE):
     }
     return dataclasses.replace(estimate, mean=mean, cov=cov, info=info,
                                warnings=tuple(estimate.warnings) + tuple(notes))
+
+
+def _at_scale(refit, estimate):
+    # The held-out check on all readings sets the least scale of every component: a refit
+    # without a suspect is widened to the full fit's cross-validated factor (invert.stages.
+    # cv_scale), so dropping a reading that may be a real sharp feature does not make the
+    # rest look better calibrated than the readings showed.
+    full = (estimate.info.get("calibration") or {}).get("factor", 1.0)
+    own = (refit.info.get("calibration") or {}).get("factor", 1.0)
+    if full <= own:
+        return refit
+    return dataclasses.replace(refit, cov=refit.cov * (full / own))
 
 
 def screened_mixture(problem, fit_fn):

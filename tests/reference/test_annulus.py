@@ -15,8 +15,7 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import sparse
-from scipy.sparse.linalg import spsolve
+from scenarios import annulus_laplace_fd
 
 import invert
 from invert.diagnostics.heat_flow import heat_flow, rim_flux_profile
@@ -144,37 +143,6 @@ def test_field_is_harmonic_by_finite_differences(rng):
     assert np.abs(uxx).max() > 1e-1
 
 
-def _laplace_fd(a, b, fo, fi, n_r, n_t):
-    # Second-order finite differences of Laplace's equation in polar coordinates,
-    # u_rr + u_r / r + u_tt / r^2 = 0, on n_r radii from a to b (Dirichlet values fi, fo at the
-    # ends) and n_t periodic angles; one sparse solve (scipy.sparse.linalg.spsolve).
-    r = np.linspace(a, b, n_r)
-    t = 2 * np.pi * np.arange(n_t) / n_t
-    hr, ht = r[1] - r[0], t[1] - t[0]
-    m = n_r - 2
-    idx = np.arange(m * n_t).reshape(m, n_t)
-    rows, cols, vals = [], [], []
-    rhs = np.zeros(m * n_t)
-    for i in range(m):
-        ri = r[i + 1]
-        lo, hi = 1 / hr**2 - 1 / (2 * ri * hr), 1 / hr**2 + 1 / (2 * ri * hr)
-        ang = 1 / (ri * ht) ** 2
-        for j in range(n_t):
-            k = idx[i, j]
-            rows += [k, k, k]
-            cols += [k, idx[i, (j + 1) % n_t], idx[i, (j - 1) % n_t]]
-            vals += [-2 / hr**2 - 2 * ang, ang, ang]
-            for nb, coef, edge in ((i - 1, lo, fi(t[j])), (i + 1, hi, fo(t[j]))):
-                if 0 <= nb < m:
-                    rows.append(k)
-                    cols.append(idx[nb, j])
-                    vals.append(coef)
-                else:
-                    rhs[k] -= coef * edge
-    A = sparse.csr_matrix((vals, (rows, cols)), shape=(m * n_t, m * n_t))
-    return r[1:-1], t, spsolve(A, rhs).reshape(m, n_t)
-
-
 def test_solution_equals_finite_difference_laplace_solve():
     # Rim functions with a few harmonics; the annulus field (their coefficients) against the
     # finite-difference solution. The scheme is second order: the error at the coarse grid
@@ -188,7 +156,7 @@ def test_solution_equals_finite_difference_laplace_solve():
     c = coefficients_of(d, {"a0": 20, "a1": 3, "b3": -2}, {"a0": 80, "a2": 5, "b1": 1})
     errs = []
     for n_r, n_t in ((41, 96), (81, 192)):
-        r, t, U = _laplace_fd(a, b, fo, fi, n_r, n_t)
+        r, t, U = annulus_laplace_fd(a, b, fo, fi, n_r, n_t)
         pts = d.from_polar(r[:, None] / b, t[None, :])
         errs.append(np.abs(d.field(c, pts) - U.ravel()).max())
     assert errs[1] < 1e-3 * 60  # 60 = range of the rim values

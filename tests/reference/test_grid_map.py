@@ -203,3 +203,33 @@ def test_grid_outside_the_disk():
     est = gap_fit(3)
     got = est.grid_map([2.0, 3.0], [2.0, 3.0, 4.0])
     assert got.sd.shape == (3, 2) and np.isnan(got.sd).all() and np.isnan(got.mean).all()
+
+
+def test_compiled_images_equal_the_image_matrix():
+    # The compiled loop's closed-form image values against image_matrix applied to the residue
+    # sums (the signed-permutation derivation in cartesian's Notes), on random coefficient
+    # tables: one field (J = 1) and a band sum, at random canonical points. Sums of <= 8
+    # terms of size <= 10: 1e-12 absolute.
+    from invert.geometry._grid_loops import image_moments
+    from invert.geometry.cartesian import image_matrix
+
+    rng = np.random.default_rng(5)
+    n, steps, n_chain = 40, 3, 2
+    w = rng.uniform(0, 1, n) * np.exp(1j * rng.uniform(0, np.pi / 4, n))
+    bands = rng.standard_normal((n, steps * 8))
+    chains = rng.standard_normal((n_chain, 8 * 2))  # the mean and one leading field
+    mean, var, size = np.empty((8, n)), np.empty((8, n)), np.empty(n)
+    image_moments(w, np.arange(n), bands, chains, mean, var, size)
+    M = image_matrix()
+
+    def images(coef, rows):  # coef[k, part * 4 + r] -> the eight values Re sum ... at w
+        P = np.array([[sum(coef[k, part * 4 + r] * w[j] ** (4 * k + r) for k in range(rows))
+                       for part in range(2) for r in range(4)] for j in range(n)])
+        parts = np.stack([P.real, P.imag], axis=-1).reshape(n, 16)  # (part, r, re/im)
+        return parts @ M.T
+
+    ref_band = np.array([images(bands[j].reshape(steps, 8), steps)[j] for j in range(n)])
+    field0 = images(chains.reshape(n_chain, 8, 2)[:, :, 0], n_chain)
+    field1 = images(chains.reshape(n_chain, 8, 2)[:, :, 1], n_chain)
+    np.testing.assert_allclose(mean, field0.T, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(var, (ref_band + field1**2).T, rtol=0, atol=1e-12)

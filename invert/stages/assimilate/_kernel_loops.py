@@ -15,6 +15,9 @@ import numpy as np
 __all__ = ["backward_pass", "forward_pass"]
 
 _LOG2PI = math.log(2.0 * math.pi)
+#: Smallest weight of a reading judged faulty: its variance grows at most 1e10-fold (the
+#: reading then moves the state by less than 1e-5 of its innovation in sds).
+_W_MIN = 1e-10
 # Reassociation lets the row dot products run as SIMD reductions (rounding order only); no
 # "nnan"/"ninf" flags: the kernel tests readings for NaN.
 _JIT = {"cache": True, "nogil": True, "fastmath": {"reassoc", "contract"}}
@@ -73,13 +76,39 @@ def _sym_matvec(P, x, out):
 
 
 @numba.njit(**_JIT)
-def _update(H, r, y, m, P, u, gains, svar, innov, sens):
+def _fault_weight(v, s, r_i, eps, rbad_i, bad_row, i):
+    r"""Robust variance of one reading under the good/faulty predictive mixture.
+
+    Returns ``(s_eff, log-likelihood term without the 2 pi)``: :math:`w = P(\text{good} \mid
+    \nu)` under :math:`(1-\varepsilon) N(\nu; 0, s) + \varepsilon N(\nu; 0, s + b_i)`, the
+    reading's variance :math:`r_i / w` (floored weight ``_W_MIN``), so
+    :math:`s_{\text{eff}} = s + r_i (1/w - 1)`; the fault probability :math:`1 - w` goes to
+    ``bad_row[i]``.
+    """
+    sb = s + rbad_i
+    lg = math.log1p(-eps) - 0.5 * (math.log(s) + v * v / s)
+    lb = math.log(eps) - 0.5 * (math.log(sb) + v * v / sb)
+    top = max(lg, lb)
+    ll = top + math.log(math.exp(lg - top) + math.exp(lb - top))
+    d = lb - lg
+    pbad = 1.0 / (1.0 + math.exp(-d)) if d > -700.0 else 0.0
+    w = 1.0 / (1.0 + math.exp(d)) if d < 700.0 else 0.0
+    bad_row[i] = pbad
+    w = max(w, _W_MIN)
+    return s + r_i * (1.0 / w - 1.0), ll
+
+
+@numba.njit(**_JIT)
+def _update(H, r, y, m, P, u, gains, svar, innov, sens, eps, rbad, bad_row):
     """Sequential scalar updates over the observed readings of one frame.
 
     Records per reading the gain ``k`` (rows of ``gains``), ``s``, the innovation and the
     sensor index; returns (number used, log-likelihood term, chi-square). One pass over
     ``P`` per reading: the rank-one update of row ``a`` and that row's share of the next
     reading's :math:`u = P h` are done together (``P`` symmetric, so rows are columns).
+    With ``eps > 0`` each reading's variance is first replaced by its robust value
+    (:func:`_fault_weight`, decided from the prediction only, so a recomputed pass makes the
+    same decisions); ``eps = 0`` leaves every operation of the plain update unchanged.
     """
     ns, p = H.shape
     n = 0
@@ -90,6 +119,7 @@ def _update(H, r, y, m, P, u, gains, svar, innov, sens):
     if n == 0:
         return 0, 0.0, 0.0
     un = np.empty(p)
+    lrob = 0.0
     ll = 0.0
     chi2 = 0.0
     _sym_matvec(P, H[sens[0]], u)
@@ -102,6 +132,8 @@ def _update(H, r, y, m, P, u, gains, svar, innov, sens):
             s += h[b] * u[b]
             hm += h[b] * m[b]
         v = y[i] - hm
+        if eps > 0.0:
+            s, lrob = _fault_weight(v, s, r[i], eps, rbad[i], bad_row, i)
         inv = 1.0 / s
         k = gains[o]
         for b in range(p):
@@ -126,7 +158,10 @@ def _update(H, r, y, m, P, u, gains, svar, innov, sens):
                     P[a, b] -= ka * u[b]
         svar[o] = s
         innov[o] = v
-        ll -= 0.5 * (_LOG2PI + math.log(s) + v * v * inv)
+        if eps > 0.0:
+            ll += lrob - 0.5 * _LOG2PI
+        else:
+            ll -= 0.5 * (_LOG2PI + math.log(s) + v * v * inv)
         chi2 += v * v * inv
     return n, ll, chi2
 
@@ -195,13 +230,15 @@ def _info_update(H, r, y, m, P, dprior, mprior):
 
 
 @numba.njit(**_JIT)
-def _step(H, r, drift, rw, T, dt, y, m, P, f, q, u, gains, svar, innov, sens, informed,
-          dprior, mprior):
+def _step(H, r, drift, rw, T, eps, rbad, dt, y, m, P, f, q, u, gains, svar, innov, sens,
+          informed, dprior, mprior, bad_row):
     """Predict (if ``dt`` is a number) and update one frame.
 
     Until the first reading of the log (``informed`` false) the covariance is diagonal and the
     update is done in information form (:func:`_info_update`), which keeps its accuracy under
-    the broad prior of the mean level. Returns (n_used, loglik, chi2, informed, info_frame).
+    the broad prior of the mean level (that frame's readings are not screened for faults:
+    there is no prediction to judge them by). Returns (n_used, loglik, chi2, informed,
+    info_frame).
     """
     if dt == dt:
         _transition(dt, T, rw, drift, f, q)
@@ -212,17 +249,19 @@ def _step(H, r, drift, rw, T, dt, y, m, P, f, q, u, gains, svar, innov, sens, in
     if not informed:
         n, ll, c2 = _info_update(H, r, y, m, P, dprior, mprior)
         return n, ll, c2, n > 0, n > 0
-    n, ll, c2 = _update(H, r, y, m, P, u, gains, svar, innov, sens)
+    n, ll, c2 = _update(H, r, y, m, P, u, gains, svar, innov, sens, eps, rbad, bad_row)
     return n, ll, c2, True, False
 
 
 @numba.njit(**_JIT)
-def forward_pass(H, r, drift, rw, T, t, Y, m, P, tp, informed, every, cp_m, cp_P, cp_t, cp_i,
-             chi2, n_used, frame_ll):
+def forward_pass(H, r, drift, rw, T, eps, rbad, t, Y, m, P, tp, informed, every, cp_m, cp_P,
+             cp_t, cp_i, chi2, n_used, frame_ll, fault):
     """Filter over all frames in place on (m, P); checkpoints before every ``every``-th frame.
 
     Returns (summed log-likelihood, informed). ``tp`` is the time of the frame before ``t[0]``
-    (NaN at the start of the log: the first frame has no dynamics step).
+    (NaN at the start of the log: the first frame has no dynamics step). With ``eps > 0``,
+    ``fault`` (shape ``(n_frames, n_sensors)``, zero on entry) receives each reading's fault
+    probability; else it may have no rows.
     """
     ns, p = H.shape
     f = np.empty(p)
@@ -234,6 +273,7 @@ def forward_pass(H, r, drift, rw, T, t, Y, m, P, tp, informed, every, cp_m, cp_P
     svar = np.empty(ns)
     innov = np.empty(ns)
     sens = np.empty(ns, np.int64)
+    scratch = np.zeros(ns)
     total = 0.0
     for k in range(t.size):
         if k % every == 0:
@@ -242,8 +282,10 @@ def forward_pass(H, r, drift, rw, T, t, Y, m, P, tp, informed, every, cp_m, cp_P
             cp_P[c] = P
             cp_t[c] = tp
             cp_i[c] = informed
-        n, ll, c2, informed, _ = _step(H, r, drift, rw, T, t[k] - tp, Y[k], m, P, f, q, u,
-                                       gains, svar, innov, sens, informed, dprior, mprior)
+        row = fault[k] if eps > 0.0 else scratch
+        n, ll, c2, informed, _ = _step(H, r, drift, rw, T, eps, rbad, t[k] - tp, Y[k], m, P, f,
+                                       q, u, gains, svar, innov, sens, informed, dprior, mprior,
+                                       row)
         n_used[k] = n
         frame_ll[k] = ll
         chi2[k] = c2
@@ -363,8 +405,8 @@ def _adjoint_info(m, P, lam, Lam, dprior, mprior):
 
 
 @numba.njit(**_JIT)
-def backward_pass(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, cp_i, every, lam, Lam, Hq, level,
-              out_m, out_qm, out_qs, out_lm, out_ls):
+def backward_pass(H, r, drift, rw, T, eps, rbad, t, Y, cp_m, cp_P, cp_t, cp_i, every, lam, Lam,
+              Hq, level, out_m, out_qm, out_qs, out_lm, out_ls):
     """Backward over all segments (last first), recomputing each one's forward pass.
 
     ``lam``, ``Lam`` enter as the adjoint after the last frame (zero at the end of the log)
@@ -388,6 +430,7 @@ def backward_pass(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, cp_i, every, lam, 
     mprior = np.empty(p)
     m = np.empty(p)
     P = np.empty((p, p))
+    scratch = np.zeros(ns)
     n_seg = (n + every - 1) // every
     for c in range(n_seg - 1, -1, -1):
         a = c * every
@@ -399,8 +442,8 @@ def backward_pass(H, r, drift, rw, T, t, Y, cp_m, cp_P, cp_t, cp_i, every, lam, 
         j_info = -1
         for k in range(a, b):
             j = k - a
-            res = _step(H, r, drift, rw, T, t[k] - tp, Y[k], m, P, Fb[j], q, u, Gb[j], Sb[j],
-                        Vb[j], Ib[j], informed, dprior, mprior)
+            res = _step(H, r, drift, rw, T, eps, rbad, t[k] - tp, Y[k], m, P, Fb[j], q, u,
+                        Gb[j], Sb[j], Vb[j], Ib[j], informed, dprior, mprior, scratch)
             Nb[j] = res[0]
             informed = res[3]
             if res[4]:

@@ -117,6 +117,16 @@ class KernelModel:
     random_walk : ndarray of bool, shape (n_coef,)
     time_scale : float
         :math:`T`, in the unit of the frame times.
+    fault_prior : float, default=0.0
+        :math:`\varepsilon`, prior probability that a reading is faulty; 0 (the default): the
+        plain Gaussian update. With :math:`\varepsilon > 0` every reading after the first
+        informed frame is weighted by its posterior probability of being good (see
+        :mod:`.health`).
+    fault_var : ndarray of shape (n_sensors,), optional
+        :math:`b_i`, the extra predictive variance of a faulty reading (with ``fault_prior``).
+    level : ndarray of int, optional
+        Columns whose smoothed moments are returned as the mean level; default every
+        random-walk column (an augmented model names only its mean-level columns).
 
     See Also
     --------
@@ -129,6 +139,9 @@ class KernelModel:
     drift_var: np.ndarray
     random_walk: np.ndarray
     time_scale: float
+    fault_prior: float = 0.0
+    fault_var: np.ndarray | None = None
+    level: np.ndarray | None = None
 
     @classmethod
     def build(cls, H, noise_var, prior_var, drift_var, random_walk, time_scale):
@@ -172,7 +185,9 @@ class KernelModel:
 
     @property
     def level_columns(self) -> np.ndarray:
-        """Indices of the random-walk (mean-level) columns."""
+        """Indices of the mean-level columns (default: the random-walk columns)."""
+        if self.level is not None:
+            return np.asarray(self.level, dtype=np.int64)
         return np.flatnonzero(self.random_walk)
 
     @property
@@ -202,7 +217,9 @@ class KernelModel:
 
     def _args(self):
         H, r, _, drift, rw = self.padded
-        return (H, r, drift, rw, self.time_scale)
+        rbad = (np.zeros(r.size) if self.fault_var is None
+                else np.ascontiguousarray(self.fault_var, dtype=float))
+        return (H, r, drift, rw, self.time_scale, float(self.fault_prior), rbad)
 
 
 @dataclass(frozen=True)
@@ -325,7 +342,7 @@ def default_segment(n_frames) -> int:
     return int(min(4096, max(64, math.ceil(math.sqrt(max(n_frames, 1))))))
 
 
-def filter_chunk(model, carry, t, Y, *, every=None):
+def filter_chunk(model, carry, t, Y, *, every=None, faults=False):
     """Filter one chunk of frames from ``carry``; checkpoints for :func:`smooth_chunk`.
 
     Parameters
@@ -339,6 +356,8 @@ def filter_chunk(model, carry, t, Y, *, every=None):
         Readings, NaN where missing.
     every : int, optional
         Checkpoint spacing; default :func:`default_segment` of the chunk length.
+    faults : bool, default=False
+        Also return each reading's fault probability (a model with ``fault_prior > 0``).
 
     Returns
     -------
@@ -347,6 +366,9 @@ def filter_chunk(model, carry, t, Y, *, every=None):
     checkpoints : Checkpoints
     chi2, frame_loglik : ndarray of shape (n_frames,)
     n_used : ndarray of int, shape (n_frames,)
+    fault : ndarray of shape (n_frames, n_sensors)
+        Only with ``faults=True``: the posterior probability that each reading is faulty
+        (0 where missing, or when the model has no fault prior).
     """
     model = _as_kernel_model(model)
     t, Y = _check_log(model, t, Y, carry.t)
@@ -358,12 +380,17 @@ def filter_chunk(model, carry, t, Y, *, every=None):
     chi2, ll, n_used = np.zeros(n), np.zeros(n), np.zeros(n, np.int64)
     m, P = carry.m.astype(float).copy(), np.array(carry.P, dtype=float, order="C")
     total, informed = 0.0, bool(carry.informed)
+    fault = np.zeros((n if model.fault_prior > 0 else 0, model.H.shape[0]))
     if n:
-        total, informed = forward_pass(*model._args(), t, Y, m, P, float(carry.t), informed, every,
-                                   cp.m, cp.P, cp.t, cp.informed, chi2, n_used, ll)
+        total, informed = forward_pass(*model._args(), t, Y, m, P, float(carry.t), informed,
+                                       every, cp.m, cp.P, cp.t, cp.informed, chi2, n_used, ll,
+                                       fault)
     t_last = float(t[-1]) if n else carry.t
-    return (FilterCarry(m, P, t_last, carry.loglik + total, bool(informed)), cp, chi2, ll,
-            n_used)
+    out = (FilterCarry(m, P, t_last, carry.loglik + total, bool(informed)), cp, chi2, ll,
+           n_used)
+    if faults:
+        return (*out, fault if fault.shape[0] == n else np.zeros((n, model.H.shape[0])))
+    return out
 
 
 def smooth_chunk(model, checkpoints, back, t, Y, Hq=None):
