@@ -154,3 +154,32 @@ def write_health_log(folder, log, *, trusted=False):
     frame.insert(0, "time", log["t"])
     frame.to_csv(folder / "log.csv", index=False, float_format="%.10g")
     return folder / "log.csv", folder / "layout.csv"
+
+
+def stacked_values(model, t, Y):
+    """Covariance of the stacked observed values and the values (covariance form).
+
+    The dense joint Gaussian of a linear-Gaussian state-space model with diagonal transitions
+    (``model.transition(dt) -> (f, q)``, ``model.H``, ``model.noise_var``, ``model.prior_var``):
+    states are sums of independent innovations, readings rows of the stacked design.
+    """
+    n, p = len(t), model.n_coef
+    f = [np.ones(p)] + [model.transition(t[k] - t[k - 1])[0] for k in range(1, n)]
+    q = [model.prior_var] + [model.transition(t[k] - t[k - 1])[1] for k in range(1, n)]
+    B = np.zeros((n * p, n * p))  # c = B w, w the independent innovations
+    for k in range(n):
+        phi = np.ones(p)
+        for j in range(k, -1, -1):
+            B[k * p:(k + 1) * p, j * p:(j + 1) * p] = np.diag(phi)
+            phi = phi * f[j]
+    Sx = (B * np.concatenate(q)) @ B.T
+    rows, yo, rv = [], [], []
+    for k in range(n):
+        for i in np.flatnonzero(np.isfinite(Y[k])):
+            r = np.zeros(n * p)
+            r[k * p:(k + 1) * p] = model.H[i]
+            rows.append(r)
+            yo.append(Y[k, i])
+            rv.append(model.noise_var[i])
+    Hs = np.array(rows)
+    return Hs @ Sx @ Hs.T + np.diag(rv), np.array(yo)

@@ -17,6 +17,7 @@ Oracles, both outside the kernel's algebra:
 
 import numpy as np
 import pytest
+from scenarios import stacked_values
 from scipy import linalg, stats
 
 from invert.geometry.disk import Disk
@@ -83,30 +84,6 @@ def _joint_posterior(model, t, Y):
     cf = linalg.cho_factor(Om)
     cov = linalg.cho_solve(cf, np.eye(n * p))
     return linalg.cho_solve(cf, rhs).reshape(n, p), cov
-
-
-def _stacked_values(model, t, Y):
-    """Covariance of the stacked observed values and the values (covariance form)."""
-    n, p = len(t), model.n_coef
-    f = [np.ones(p)] + [model.transition(t[k] - t[k - 1])[0] for k in range(1, n)]
-    q = [model.prior_var] + [model.transition(t[k] - t[k - 1])[1] for k in range(1, n)]
-    B = np.zeros((n * p, n * p))  # c = B w, w the independent innovations
-    for k in range(n):
-        phi = np.ones(p)
-        for j in range(k, -1, -1):
-            B[k * p:(k + 1) * p, j * p:(j + 1) * p] = np.diag(phi)
-            phi = phi * f[j]
-    Sx = (B * np.concatenate(q)) @ B.T
-    rows, yo, rv = [], [], []
-    for k in range(n):
-        for i in np.flatnonzero(np.isfinite(Y[k])):
-            r = np.zeros(n * p)
-            r[k * p:(k + 1) * p] = model.H[i]
-            rows.append(r)
-            yo.append(Y[k, i])
-            rv.append(model.noise_var[i])
-    Hs = np.array(rows)
-    return Hs @ Sx @ Hs.T + np.diag(rv), np.array(yo)
 
 
 @pytest.fixture(params=[0, 1, 2])
@@ -219,7 +196,7 @@ def test_loglik_and_chi2_equal_stacked_density(case):
     # shared by ~300 values against noise variance 0.01: condition ~1e6) rounds to ~1e-11,
     # measured up to 4e-11 over six seeds; the kernel agrees with the NumPy recursion to ~1e-12.
     model, t, Y, _ = case
-    C, yo = _stacked_values(model, t, Y)
+    C, yo = stacked_values(model, t, Y)
     ref = stats.multivariate_normal(np.zeros(len(yo)), C).logpdf(yo)
     out = kernel.smooth_model(model, t, Y)
     assert out.loglik == pytest.approx(ref, rel=1e-9)

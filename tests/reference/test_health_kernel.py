@@ -16,6 +16,7 @@ Oracles outside the kernel's algebra:
 
 import numpy as np
 import pytest
+from scenarios import stacked_values
 from scipy import linalg, stats
 
 from invert.geometry.disk import Disk
@@ -132,26 +133,8 @@ def test_augmented_smoother_equals_joint_posterior(trusted, seed):
 
 
 def _stacked_logpdf(dyn, t, Y):
-    n, p = len(t), dyn.n_coef
-    f = [np.ones(p)] + [dyn.transition(t[k] - t[k - 1])[0] for k in range(1, n)]
-    q = [dyn.prior_var] + [dyn.transition(t[k] - t[k - 1])[1] for k in range(1, n)]
-    B = np.zeros((n * p, n * p))  # stacked states = B (independent innovations)
-    for k in range(n):
-        phi = np.ones(p)
-        for j in range(k, -1, -1):
-            B[k * p:(k + 1) * p, j * p:(j + 1) * p] = np.diag(phi)
-            phi = phi * f[j]
-    Sx = (B * np.concatenate(q)) @ B.T
-    rows, yo, rv = [], [], []
-    for k in range(n):
-        for i in np.flatnonzero(np.isfinite(Y[k])):
-            r = np.zeros(n * p)
-            r[k * p:(k + 1) * p] = dyn.H[i]
-            rows.append(r)
-            yo.append(Y[k, i])
-            rv.append(dyn.noise_var[i])
-    Hs = np.array(rows)
-    return stats.multivariate_normal(np.zeros(len(yo)), Hs @ Sx @ Hs.T + np.diag(rv)).logpdf(yo)
+    C, yo = stacked_values(dyn, t, Y)
+    return stats.multivariate_normal(np.zeros(len(yo)), C).logpdf(yo)
 
 
 def test_fault_weight_of_one_reading_matches_the_mixture():
