@@ -148,6 +148,13 @@ def merge_health(work, n_chunks, out, fmt, *, sensors, z, kind, settings):
                "flag_rule": f"|offset_mean| >= (z + {FLAG_MARGIN:g}) offset_sd, z = {z:.4g}",
                "spike_rule": f"fault probability > {SPIKE_PROBABILITY:g}",
                "n_blocks": int(len(n)), "spikes": n_spikes, "flagged": flagged}
+    if flagged and str(settings.get("reference", "")).startswith("zero sum"):
+        bias = sum(abs(f["largest_offset"]) for f in flagged) / len(sensors)
+        warnings.append(f"no sensor is marked trusted, so offsets are relative to the average of "
+                        f"all {len(sensors)} sensors: the field's mean level absorbs 1/"
+                        f"{len(sensors)} of each flagged offset (here up to {bias:.3g}), which "
+                        f"its intervals do not include; mark trusted sensors in a 'trusted' "
+                        f"column of the layout")
     if n_spikes:
         warnings.append(f"{n_spikes} reading(s) judged faulty (probability > "
                         f"{SPIKE_PROBABILITY:g}) were down-weighted; see spikes table")

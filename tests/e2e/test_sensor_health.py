@@ -167,3 +167,15 @@ def test_without_the_option_no_health_outputs(seeded, tmp_path):
     s = run_batch(lp, lay, out=tmp_path / "out", chunk_rows=300, **kw)
     assert "sensor_health" not in s
     assert not (Path(tmp_path / "out") / "sensors.parquet").exists()
+
+
+def test_zero_sum_reference_warns_of_the_mean_level_bias(seeded, tmp_path):
+    # No sensor marked trusted: offsets sum to zero, so the field's mean level takes 1/n of
+    # each flagged offset (health module Notes); the warnings must say so.
+    log, _, _ = seeded
+    lp, lay = scenarios.write_health_log(tmp_path, log, trusted=False)
+    s = run_batch(lp, lay, out=tmp_path / "out", fmt="csv", **KW)
+    assert s["sensor_health"]["reference"].startswith("zero sum")
+    assert s["sensor_health"]["flagged"]
+    assert any("no sensor is marked trusted" in w and "absorbs 1/26" in w
+               for w in s["warnings"])
