@@ -245,6 +245,13 @@ def _fit_rows(estimate, problem, u):
                      ("chi2", "χ² of the residuals alone"), ("residual_dof", "residual dof")):
         if info.get(k) is not None:
             rows.append([label, _fmt(info[k])])
+    cal = info.get("calibration")
+    if cal:
+        how = (f"intervals widened: covariance × {cal['factor']:.3g}" if cal["factor"] > 1
+               else "no widening needed")
+        rows.append(["held-out check (blocks of nearby readings left out in turn)",
+                     f"mean squared standardised error {cal['mean_z2']:.3g} (threshold "
+                     f"{cal['threshold']:.3g}): {how}"])
     rows.append(["readings used / sensors without reading",
                  f"{problem.n_readings} / {len(problem.gap_sensor)}"])
     if len(problem.gap_sensor):
