@@ -6,6 +6,7 @@ that calls them in the same order as before reproduces the same numbers.
 """
 
 import numpy as np
+from scipy import linalg
 
 from invert import LinearProblem, SmoothnessPrior
 
@@ -183,3 +184,33 @@ def stacked_values(model, t, Y):
             rv.append(model.noise_var[i])
     Hs = np.array(rows)
     return Hs @ Sx @ Hs.T + np.diag(rv), np.array(yo)
+
+
+def joint_posterior(dyn, t, Y, rvar=None):
+    """Smoothed means and covariance of the stacked states (information form).
+
+    The dense joint Gaussian posterior of a state-space model with diagonal transitions
+    (Rauch, Tung & Striebel 1965 give the same moments recursively); readings' variances
+    ``rvar`` (n_frames x n_sensors, default ``dyn.noise_var`` for every frame).
+    """
+    n, p = len(t), dyn.n_coef
+    if rvar is None:
+        rvar = np.broadcast_to(dyn.noise_var, Y.shape)
+    Om = np.zeros((n * p, n * p))
+    Om[:p, :p] += np.diag(1.0 / dyn.prior_var)
+    for k in range(1, n):
+        f, q = dyn.transition(t[k] - t[k - 1])
+        a, b = slice(k * p, (k + 1) * p), slice((k - 1) * p, k * p)
+        Om[a, a] += np.diag(1.0 / q)
+        Om[b, b] += np.diag(f * f / q)
+        Om[a, b] -= np.diag(f / q)
+        Om[b, a] -= np.diag(f / q)
+    rhs = np.zeros(n * p)
+    for k in range(n):
+        o = np.isfinite(Y[k])
+        Ho, w = dyn.H[o], 1.0 / rvar[k, o]
+        a = slice(k * p, (k + 1) * p)
+        Om[a, a] += (Ho.T * w) @ Ho
+        rhs[a] += Ho.T @ (w * Y[k, o])
+    cf = linalg.cho_factor(Om)
+    return linalg.cho_solve(cf, rhs).reshape(n, p), linalg.cho_solve(cf, np.eye(n * p))

@@ -17,7 +17,7 @@ Oracles, both outside the kernel's algebra:
 
 import numpy as np
 import pytest
-from scenarios import stacked_values
+from scenarios import joint_posterior, stacked_values
 from scipy import linalg, stats
 
 from invert.geometry.disk import Disk
@@ -62,30 +62,6 @@ def _log(model, n=40, rng=0, leading_empty=False):
     return t, Y
 
 
-def _joint_posterior(model, t, Y):
-    """Smoothed means and variances of every coefficient from the stacked information form."""
-    n, p = len(t), model.n_coef
-    Om = np.zeros((n * p, n * p))
-    Om[:p, :p] += np.diag(1.0 / model.prior_var)
-    for k in range(1, n):
-        f, q = model.transition(t[k] - t[k - 1])
-        a, b = slice(k * p, (k + 1) * p), slice((k - 1) * p, k * p)
-        Om[a, a] += np.diag(1.0 / q)
-        Om[b, b] += np.diag(f * f / q)
-        Om[a, b] -= np.diag(f / q)
-        Om[b, a] -= np.diag(f / q)
-    rhs = np.zeros(n * p)
-    for k in range(n):
-        o = np.isfinite(Y[k])
-        Ho, w = model.H[o], 1.0 / model.noise_var[o]
-        a = slice(k * p, (k + 1) * p)
-        Om[a, a] += (Ho.T * w) @ Ho
-        rhs[a] += Ho.T @ (w * Y[k, o])
-    cf = linalg.cho_factor(Om)
-    cov = linalg.cho_solve(cf, np.eye(n * p))
-    return linalg.cho_solve(cf, rhs).reshape(n, p), cov
-
-
 @pytest.fixture(params=[0, 1, 2])
 def case(request):
     d, model = _model()
@@ -126,7 +102,7 @@ def test_equals_joint_posterior(mean_var):
     # precision down to 1e-8) ~1e4 for the smoothed moments.
     d, model = _model(mean_var=mean_var)
     t, Y = _log(model, rng=5)
-    mean, cov = _joint_posterior(model, t, Y)
+    mean, cov = joint_posterior(model, t, Y)
     p = model.n_coef
     var = np.diag(cov).reshape(len(t), p)
     Hq = d.design(np.array([[0.0, 0.0], [0.5, 0.2]]))
@@ -151,7 +127,7 @@ def test_exact_recursion_under_broad_prior_equals_joint_posterior(seed):
     # over six seeds. (The block covariance form at the first frame was off by ~0.2 sd.)
     d, model = _model(mean_var=None)
     t, Y = _log(model, rng=seed)
-    mean, cov = _joint_posterior(model, t, Y)
+    mean, cov = joint_posterior(model, t, Y)
     p = model.n_coef
     var = np.diag(cov).reshape(len(t), p)
     Hq = d.design(np.array([[0.0, 0.0], [0.5, 0.2]]))
@@ -176,7 +152,7 @@ def test_frames_before_the_first_reading():
     # and the NumPy exact recursion. Tolerance as in test_equals_numpy_exact_recursion.
     d, model = _model()
     t, Y = _log(model, rng=3, leading_empty=True)
-    mean, cov = _joint_posterior(model, t, Y)
+    mean, cov = joint_posterior(model, t, Y)
     p = model.n_coef
     var = np.diag(cov).reshape(len(t), p)
     out = kernel.smooth_model(model, t, Y, segment=4)

@@ -16,8 +16,8 @@ Oracles outside the kernel's algebra:
 
 import numpy as np
 import pytest
-from scenarios import stacked_values
-from scipy import linalg, stats
+from scenarios import joint_posterior, stacked_values
+from scipy import stats
 
 from invert.geometry.disk import Disk
 from invert.prior import SmoothnessPrior
@@ -63,30 +63,6 @@ def _log(model, n=30, rng=0, offsets=True):
     return t, Y
 
 
-def _joint_posterior(dyn, t, Y, rvar):
-    """Smoothed means and covariance of the stacked states (information form), readings'
-    variances ``rvar`` (n_frames x n_sensors)."""
-    n, p = len(t), dyn.n_coef
-    Om = np.zeros((n * p, n * p))
-    Om[:p, :p] += np.diag(1.0 / dyn.prior_var)
-    for k in range(1, n):
-        f, q = dyn.transition(t[k] - t[k - 1])
-        a, b = slice(k * p, (k + 1) * p), slice((k - 1) * p, k * p)
-        Om[a, a] += np.diag(1.0 / q)
-        Om[b, b] += np.diag(f * f / q)
-        Om[a, b] -= np.diag(f / q)
-        Om[b, a] -= np.diag(f / q)
-    rhs = np.zeros(n * p)
-    for k in range(n):
-        o = np.isfinite(Y[k])
-        Ho, w = dyn.H[o], 1.0 / rvar[k, o]
-        a = slice(k * p, (k + 1) * p)
-        Om[a, a] += (Ho.T * w) @ Ho
-        rhs[a] += Ho.T @ (w * Y[k, o])
-    cf = linalg.cho_factor(Om)
-    return linalg.cho_solve(cf, rhs).reshape(n, p), linalg.cho_solve(cf, np.eye(n * p))
-
-
 def _moments(cov, rows, n, p):
     """Per frame: sds of ``rows @ x_k`` from the stacked covariance."""
     return np.sqrt(np.array([np.diag(rows @ cov[k * p:(k + 1) * p, k * p:(k + 1) * p] @ rows.T)
@@ -103,7 +79,7 @@ def test_contrast_basis_is_orthonormal_with_zero_sums():
 
 @pytest.mark.parametrize("trusted", [None, np.array([1, 0, 0, 1, 0, 0, 1, 0], bool)])
 @pytest.mark.parametrize("seed", [0, 1])
-def test_augmented_smoother_equals_joint_posterior(trusted, seed):
+def test_augmented_smoother_equalsjoint_posterior(trusted, seed):
     # Joint Gaussian posterior of the stacked model with offsets (module docstring). Faults
     # off (fault_prior 0): the plain Gaussian update. Tolerance 1e-10 in sd units for means,
     # 1e-10 relative for sds: exact algebra, stacked precision conditioned ~1e4-1e6 (prior
@@ -114,7 +90,7 @@ def test_augmented_smoother_equals_joint_posterior(trusted, seed):
     dyn = _as_dynamics(km)
     t, Y = _log(model, rng=seed)
     n, p = len(t), km.n_coef
-    mean, cov = _joint_posterior(dyn, t, Y, np.broadcast_to(km.noise_var, Y.shape))
+    mean, cov = joint_posterior(dyn, t, Y, np.broadcast_to(km.noise_var, Y.shape))
     field = np.hstack([d.design(np.array([[0.0, 0.0], [0.5, 0.2]])),
                        np.zeros((2, p - model.n_coef))])
     rows = np.vstack([field, health.offset_rows(model.n_coef, len(model.H), trusted)])
@@ -178,7 +154,7 @@ def test_screened_smoother_equals_joint_posterior_with_effective_variances():
     *_, fault = kernel.filter_chunk(km, kernel.FilterCarry.initial(km), t, Y, faults=True)
     assert fault[12, 4] > 0.999 and fault[20, 1] > 0.01
     w = np.maximum(1.0 - fault, 1e-10)
-    mean, cov = _joint_posterior(dyn, t, Y, km.noise_var / w)
+    mean, cov = joint_posterior(dyn, t, Y, km.noise_var / w)
     rows = np.hstack([d.design(np.array([[0.0, 0.0]])), np.zeros((1, p - model.n_coef))])
     out = kernel.smooth_model(km, t, Y, rows, segment=5)
     sd = np.sqrt(np.diag(cov).reshape(n, p))
